@@ -1,0 +1,3 @@
+from climodes.cli import main
+
+raise SystemExit(main())

@@ -1,0 +1,69 @@
+"""The ``climodes`` command: subcommands, exit codes and what is printed; no science here.
+
+Exit codes: 0 success, 2 a problem with the user's input (one line each, no
+traceback), 1 an internal error (a bug: the traceback is printed to report it),
+130 interrupted.
+"""
+
+from __future__ import annotations
+
+import argparse
+import signal
+import sys
+import traceback
+
+from climodes import __version__
+from climodes.errors import ConfigError, UserError
+
+
+def _parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="climodes",
+        description="Dominant modes of variability (EOFs and PCs) of gridded climate fields.",
+    )
+    parser.add_argument("--version", action="version", version=f"climodes {__version__}")
+    commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    check = commands.add_parser("check", help="validate a config and print it with every default filled in")
+    check.add_argument("config", help="YAML run configuration")
+    run = commands.add_parser("run", help="run a config: write modes.nc, figures and run.log")
+    run.add_argument("config", help="YAML run configuration")
+    run.add_argument("-q", "--quiet", action="store_true", help="print nothing but errors")
+    return parser
+
+
+def _interrupt(signum, frame):  # noqa: ARG001  (signal handler signature)
+    raise KeyboardInterrupt
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point of the ``climodes`` console script; returns the exit code."""
+    args = _parser().parse_args(argv)
+    signal.signal(signal.SIGTERM, _interrupt)
+    from climodes.config import load_spec
+
+    try:
+        spec = load_spec(args.config)
+        if args.command == "check":
+            print(spec.to_yaml(), end="")
+            return 0
+        from climodes.pipeline import run
+
+        say = (lambda line: None) if args.quiet else (lambda line: print(line, file=sys.stderr))
+        summary = run(spec, say)
+        if not args.quiet:
+            print(summary.text())
+        return 0
+    except ConfigError as err:
+        for problem in err.problems:
+            print(problem, file=sys.stderr)
+        return 2
+    except UserError as err:
+        print(f"climodes: error: {err}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("climodes: interrupted; no results were written", file=sys.stderr)
+        return 130
+    except Exception:  # a bug: show everything needed to report it
+        traceback.print_exc()
+        print("climodes: internal error (a bug in climodes); please report it with the lines above", file=sys.stderr)
+        return 1

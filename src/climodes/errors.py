@@ -1,0 +1,22 @@
+"""User-facing errors.
+
+Every problem a user can fix (a bad config key, a missing file, a selection
+that leaves nothing) is raised as a :class:`UserError`.  The command line turns
+it into one line on stderr and exit code 2; anything else is a bug and exits 1.
+"""
+
+
+class UserError(Exception):
+    """A problem with the user's input, reported as one line without a traceback.
+
+    The message names the file, variable or config key at fault and says what
+    to do about it.
+    """
+
+
+class ConfigError(UserError):
+    """One or more problems in a YAML config; ``problems`` holds one line each."""
+
+    def __init__(self, problems: list[str]):
+        self.problems = problems
+        super().__init__("\n".join(problems))

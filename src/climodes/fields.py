@@ -1,0 +1,225 @@
+"""Open a field lazily from one or many NetCDF files, and select from it.
+
+The field comes back as a dask-backed :class:`xarray.DataArray` with dimensions
+renamed to ``(time, lat, lon)`` in that order, whatever the files call them or
+however they order them; :class:`OpenedField` remembers the files' own names
+so the results can use them again.  Nothing here reads the field's values:
+only coordinates, which are small.
+
+Axes are found from CF attributes first (``axis``, ``standard_name``,
+``units``), then from common names.
+"""
+
+from __future__ import annotations
+
+import glob
+import os
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import xarray as xr
+
+from climodes.config import InputSection, SelectSection
+from climodes.errors import UserError
+
+_LAT_UNITS = {"degrees_north", "degree_north", "degree_n", "degrees_n", "degreen", "degreesn"}
+_LON_UNITS = {"degrees_east", "degree_east", "degree_e", "degrees_e", "degreee", "degreese"}
+_NAMES = {
+    "time": ("time", "t", "date", "valid_time"),
+    "lat": ("lat", "latitude", "lats", "nav_lat", "y_lat"),
+    "lon": ("lon", "longitude", "lons", "nav_lon", "x_lon"),
+}
+
+
+@dataclass(frozen=True)
+class InputFile:
+    """One input file as it was when read: for provenance."""
+
+    path: str
+    size: int
+    modified: float
+
+
+@dataclass
+class OpenedField:
+    """A lazily opened field and what the results need to know about where it came from."""
+
+    data: xr.DataArray
+    files: list[InputFile]
+    names: dict[str, str]
+    time_encoding: dict = field(default_factory=dict)
+    notes: list[str] = field(default_factory=list)
+
+
+def expand_paths(patterns: list[str]) -> list[str]:
+    """Expand glob patterns into a sorted, duplicate-free list of existing files.
+
+    Raises
+    ------
+    UserError
+        If a plain path does not exist or a pattern matches no file.
+    """
+    files: list[str] = []
+    for pattern in patterns:
+        if glob.has_magic(pattern):
+            matches = sorted(glob.glob(pattern))
+            if not matches:
+                raise UserError(f"input.paths: {pattern!r} matches no file; check the folder and the pattern")
+        elif os.path.isfile(pattern):
+            matches = [pattern]
+        else:
+            raise UserError(f"input.paths: {pattern}: no such file; check the path (relative paths are read "
+                            "from the config file's folder)")
+        files.extend(m for m in matches if m not in files)
+    return files
+
+
+def _is_axis(coord: xr.DataArray, axis: str) -> bool:
+    attrs = {k: str(v).strip().lower() for k, v in coord.attrs.items()}
+    if axis == "time":
+        return (
+            attrs.get("axis") == "t"
+            or attrs.get("standard_name") == "time"
+            or np.issubdtype(coord.dtype, np.datetime64)
+            or (coord.dtype == object and coord.size > 0 and hasattr(coord.values.flat[0], "calendar"))
+        )
+    units = _LAT_UNITS if axis == "lat" else _LON_UNITS
+    standard = "latitude" if axis == "lat" else "longitude"
+    return attrs.get("standard_name") == standard or attrs.get("units") in units
+
+
+def find_axes(da: xr.DataArray, where: str) -> dict[str, str]:
+    """Map ``time``, ``lat`` and ``lon`` to the names of ``da``'s dimensions.
+
+    CF attributes are tried first, then common names; every other dimension
+    must have length 1.
+    """
+    found: dict[str, str] = {}
+    for axis in ("time", "lat", "lon"):
+        by_attrs = [d for d in da.dims if d in da.coords and _is_axis(da[d], axis) and d not in found.values()]
+        by_name = [d for d in da.dims if str(d).lower() in _NAMES[axis] and d not in found.values()]
+        candidates = by_attrs or by_name
+        if not candidates:
+            looked = {"time": "axis=T, standard_name=time or a CF time unit",
+                      "lat": "standard_name=latitude or units=degrees_north",
+                      "lon": "standard_name=longitude or units=degrees_east"}[axis]
+            raise UserError(
+                f"{where}: variable {da.name!r} has dimensions ({', '.join(map(str, da.dims))}) and none is "
+                f"{'a' if axis == 'time' else 'the'} {dict(time='time', lat='latitude', lon='longitude')[axis]} "
+                f"axis (looked for {looked}, or a name like {_NAMES[axis][0]}); fix the file's attributes"
+            )
+        found[axis] = str(candidates[0])
+    extra = [d for d in da.dims if d not in found.values() and da.sizes[d] > 1]
+    if extra:
+        raise UserError(
+            f"{where}: variable {da.name!r} has dimensions besides time, latitude and longitude: "
+            f"{', '.join(f'{d} ({da.sizes[d]})' for d in extra)}; climodes needs a field of time, lat and lon only"
+        )
+    return found
+
+
+def _open_one(path: str, variable: str) -> tuple[xr.DataArray, xr.Dataset]:
+    try:
+        ds = xr.open_dataset(path, decode_timedelta=False)
+    except Exception as err:  # netCDF4, h5py and xarray each raise their own types
+        reason = str(err).splitlines()[0] if str(err) else type(err).__name__
+        raise UserError(f"{path}: cannot be read as NetCDF ({reason}); check that the file is complete") from None
+    if variable not in ds.data_vars:
+        names = ", ".join(sorted(map(str, ds.data_vars))) or "none"
+        raise UserError(f"{path}: no variable {variable!r}; variables there: {names}; set input.variable")
+    da = ds[variable]
+    if not np.issubdtype(da.dtype, np.number) or np.issubdtype(da.dtype, np.complexfloating):
+        raise UserError(f"{path}: variable {variable!r} holds {da.dtype} values, not numbers; choose another")
+    return da, ds
+
+
+def open_field(spec: InputSection) -> OpenedField:
+    """Open ``spec.variable`` from every file of ``spec.paths`` as one lazy field.
+
+    Files are ordered by their first time step; their grids must agree and
+    their time steps must not overlap.
+    """
+    paths = expand_paths(spec.paths)
+    pieces = []
+    names: dict[str, str] = {}
+    for path in paths:
+        da, ds = _open_one(path, spec.variable)
+        axes = find_axes(da, path)
+        if names and axes != names:
+            raise UserError(f"{path}: axes are named {axes}, but {paths[0]} names them {names}; make them agree")
+        names = axes
+        da = da.squeeze([d for d in da.dims if d not in axes.values()], drop=True)
+        da = da.rename({v: k for k, v in axes.items()}).transpose("time", "lat", "lon")
+        pieces.append((path, da, ds[axes["time"]].encoding))
+    pieces.sort(key=lambda p: p[1]["time"].values[0])
+    for (path_a, a, _), (path_b, b, _) in zip(pieces, pieces[1:]):
+        for axis in ("lat", "lon"):
+            if a[axis].shape != b[axis].shape or not np.allclose(a[axis].values, b[axis].values):
+                raise UserError(f"{path_b}: its {names[axis]} grid differs from that of {path_a}; "
+                                "regrid the files to one grid")
+        if b["time"].values[0] <= a["time"].values[-1]:
+            raise UserError(f"{path_b}: its time steps overlap those of {path_a}; remove the duplicate steps")
+    data = xr.concat([p[1] for p in pieces], dim="time", coords="minimal", compat="override", join="override")
+    data = data.chunk({axis: spec.chunks.get(axis, -1) for axis in ("time", "lat", "lon")})
+    files = [InputFile(str(Path(p).resolve()), os.stat(p).st_size, os.stat(p).st_mtime) for p in paths]
+    opened = OpenedField(data, files, names, {k: v for k, v in pieces[0][2].items() if k in ("units", "calendar")})
+    _drop_repeated_longitude(opened)
+    return opened
+
+
+def _drop_repeated_longitude(opened: OpenedField) -> None:
+    lon = opened.data["lon"].values
+    if lon.size > 2 and np.isclose((lon[-1] - lon[0]) % 360, 0) and not np.isclose(lon[-1], lon[0]):
+        opened.data = opened.data.isel(lon=slice(0, -1))
+        opened.notes.append(f"dropped longitude {lon[-1]:g}: it repeats {lon[0]:g} on a global grid")
+
+
+def select(opened: OpenedField, spec: SelectSection) -> xr.DataArray:
+    """Cut the region, period and months of ``spec`` out of the opened field.
+
+    ``lon: [W, E]`` works with 0..360 and -180..180 data alike; with W > E the
+    box crosses the dateline.  The selected longitudes are put in increasing
+    order, counting east from W, so the result is always a monotonic axis.
+    """
+    da = opened.data
+    if spec.lat is not None:
+        lat = da["lat"].values
+        da = da.isel(lat=np.flatnonzero((lat >= spec.lat[0]) & (lat <= spec.lat[1])))
+        if da.sizes["lat"] == 0:
+            raise UserError(f"select.lat: {spec.lat} holds no latitude of the grid "
+                            f"({lat.min():g} to {lat.max():g}); widen the band")
+    if spec.lon is not None:
+        da = _select_lon(da, *spec.lon)
+    if spec.period is not None:
+        da = da.sel(time=slice(*spec.period))
+        if da.sizes["time"] == 0:
+            raise UserError(f"select.period: {spec.period} holds no time step of the input; "
+                            f"it runs {_date(opened.data['time'].values[0])} to {_date(opened.data['time'].values[-1])}")
+    if spec.months is not None:
+        da = da.isel(time=np.flatnonzero(np.isin(da["time"].dt.month.values, spec.months)))
+        if da.sizes["time"] == 0:
+            raise UserError(f"select.months: {spec.months} holds no time step of the selected period")
+    return da
+
+
+def _select_lon(da: xr.DataArray, west: float, east: float) -> xr.DataArray:
+    lon = da["lon"].values
+    width = east - west if west < east else east - west + 360
+    offset = (lon - west) % 360
+    if width >= 360:
+        keep = np.argsort(offset, kind="stable")
+    else:
+        inside = np.flatnonzero(offset <= width + 1e-9)
+        keep = inside[np.argsort(offset[inside], kind="stable")]
+    if keep.size == 0:
+        raise UserError(f"select.lon: [{west:g}, {east:g}] holds no longitude of the grid "
+                        f"({lon.min():g} to {lon.max():g}); widen the box")
+    out = da.isel(lon=keep)
+    if not np.all(np.diff(lon[keep]) > 0):
+        out = out.assign_coords(lon=("lon", west + offset[keep], da["lon"].attrs))
+    return out
+
+
+def _date(value) -> str:
+    return str(value)[:10]

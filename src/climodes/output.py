@@ -1,0 +1,157 @@
+"""Write the results: a CF-1.10 ``modes.nc`` with its provenance, atomically.
+
+A results folder appears complete or not at all: everything is written into a
+hidden folder beside it and renamed into place at the end; on any failure the
+hidden folder is removed.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import datetime as dt
+import hashlib
+import os
+import shlex
+import shutil
+import sys
+import tempfile
+from pathlib import Path
+from typing import Iterator
+
+import numpy as np
+import pyproj
+import xarray as xr
+
+from climodes import __version__
+from climodes.config import OutputSection, RunSpec
+from climodes.errors import UserError
+from climodes.fields import OpenedField
+
+FILL = 9.969209968386869e36  # the netCDF default fill for doubles
+
+
+def check_output_dir(spec: OutputSection) -> None:
+    """Fail early, before any data are read, if the results could not be written."""
+    final = Path(spec.dir)
+    if final.exists() and not final.is_dir():
+        raise UserError(f"output.dir: {final} is a file, not a folder; choose another output.dir")
+    if final.exists() and not spec.overwrite:
+        raise UserError(f"output.dir: {final} exists already; set output.overwrite: true or choose another folder")
+    ancestor = final.parent
+    while not ancestor.exists():
+        ancestor = ancestor.parent
+    if not os.access(ancestor, os.W_OK | os.X_OK):
+        raise UserError(f"output.dir: cannot write in {ancestor}; choose a folder you can write to")
+
+
+@contextlib.contextmanager
+def staged_dir(final: Path) -> Iterator[Path]:
+    """Yield a hidden folder to write into; rename it to ``final`` when the block succeeds."""
+    created = [p for p in reversed(final.parents) if not p.exists()]
+    final.parent.mkdir(parents=True, exist_ok=True)
+    stage = Path(tempfile.mkdtemp(prefix=f".{final.name}.partial-", dir=final.parent))
+    try:
+        yield stage
+        if final.exists():
+            old = Path(tempfile.mkdtemp(prefix=f".{final.name}.old-", dir=final.parent))
+            os.replace(final, old / final.name)
+            os.replace(stage, final)
+            shutil.rmtree(old)
+        else:
+            os.replace(stage, final)
+    except BaseException:
+        shutil.rmtree(stage, ignore_errors=True)
+        for folder in reversed(created):
+            with contextlib.suppress(OSError):
+                folder.rmdir()
+        raise
+
+
+def _squared_units(units: str | None) -> dict:
+    return {"units": f"({units})^2"} if units else {}
+
+
+def results_dataset(modes: xr.Dataset, opened: OpenedField, spec: RunSpec, extra: dict) -> xr.Dataset:
+    """Dress the solver's modes as the CF results of the contract.
+
+    ``extra`` carries ``errors``, ``separated``, ``n_eff``, ``n_eff_how``,
+    ``method``, ``notes`` and ``units``.
+    """
+    units = extra["units"]
+    field_name = spec.input.variable
+    long_name = opened.data.attrs.get("long_name", field_name)
+    ds = modes.copy()
+    ds["mode"].attrs = {"long_name": "mode number, in order of decreasing variance", "units": "1"}
+    ds["lat"].attrs = {**opened.data["lat"].attrs, "standard_name": "latitude", "units": "degrees_north", "axis": "Y"}
+    ds["lon"].attrs = {**opened.data["lon"].attrs, "standard_name": "longitude", "units": "degrees_east", "axis": "X"}
+    ds["time"].attrs = {k: v for k, v in opened.data["time"].attrs.items() if k not in ("units", "calendar", "bounds")}
+    ds["time"].attrs.update(standard_name="time", axis="T")
+    ds["eof"].attrs = {
+        "long_name": f"EOF map of {long_name}: regression of the anomaly on the standardised PC",
+        **({"units": units} if units else {}),
+        "grid_mapping": "crs",
+        "comment": "anomaly ~= sum over mode of pc * eof; NaN where the point was not used. "
+                   "The sign of a mode is arbitrary; climodes makes the largest absolute value of each map positive.",
+    }
+    ds["pc"].attrs = {"long_name": f"standardised principal component of {long_name}", "units": "1",
+                      "comment": "zero mean and unit variance (ddof=1) over the analysed time steps"}
+    ds["eigenvalue"].attrs = {"long_name": "eigenvalue of the area-weighted covariance matrix",
+                              **_squared_units(units),
+                              "total_variance": float(extra["total_variance"])}
+    ds["variance_explained"].attrs = {"long_name": "fraction of the weighted total variance explained by the mode",
+                                      "units": "1"}
+    ds["variance_explained_error"] = ("mode", extra["errors"] / extra["total_variance"])
+    ds["variance_explained_error"].attrs = {
+        "long_name": "sampling error of variance_explained (North et al. 1982)",
+        "units": "1",
+        "effective_sample_size": float(extra["n_eff"]),
+        "comment": f"variance_explained * sqrt(2 / effective_sample_size); effective sample size: {extra['n_eff_how']}",
+    }
+    ds["separated"] = ("mode", extra["separated"].astype(np.int8))
+    ds["separated"].attrs = {
+        "long_name": "mode separated from its neighbours by more than its sampling error (North's rule of thumb)",
+        "flag_values": np.array([0, 1], dtype=np.int8),
+        "flag_meanings": "mixed_with_a_neighbour separated",
+    }
+    ds["crs"] = xr.DataArray(np.int32(0), attrs=pyproj.CRS("EPSG:4326").to_cf())
+    ds = ds.rename({k: v for k, v in opened.names.items() if k != v})
+    ds.attrs = provenance(spec, opened, extra)
+    return ds
+
+
+def provenance(spec: RunSpec, opened: OpenedField, extra: dict) -> dict:
+    """Global attributes that say where the results came from and how to make them again."""
+    config_text = spec.to_yaml()
+    now = dt.datetime.now(dt.timezone.utc).replace(microsecond=0).isoformat()
+    files = "\n".join(
+        f"{f.path} size={f.size} modified="
+        f"{dt.datetime.fromtimestamp(f.modified, dt.timezone.utc).replace(microsecond=0).isoformat()}"
+        for f in opened.files
+    )
+    return {
+        "Conventions": "CF-1.10",
+        "title": f"Leading modes of variability of {spec.input.variable}",
+        "institution": "unknown (produced by climodes)",
+        "source": f"climodes {__version__}",
+        "history": f"{now}: climodes run {shlex.quote(str(spec.source))}",
+        "references": "North et al. 1982, Mon. Wea. Rev. 110, 699-706 (sampling errors)",
+        "date_created": now,
+        "climodes_method": extra["method"],
+        "climodes_config": config_text,
+        "climodes_config_sha256": hashlib.sha256(config_text.encode()).hexdigest(),
+        "climodes_input_files": files,
+        "climodes_notes": "\n".join(extra["notes"]) or "none",
+        "climodes_python": sys.version.split()[0],
+    }
+
+
+def write_netcdf(ds: xr.Dataset, path: Path, time_encoding: dict) -> None:
+    """Write ``ds`` as NetCDF-4 with CF-friendly encodings (no fill values on coordinates)."""
+    encoding = {name: {"_FillValue": None} for name in ds.coords}
+    for name, var in ds.data_vars.items():
+        encoding[name] = {"_FillValue": FILL if var.dtype.kind == "f" else None}
+        if var.ndim >= 2:
+            encoding[name].update(zlib=True, complevel=4)
+    time_name = next(d for d in ds["pc"].dims if d != "mode")
+    encoding[time_name].update(time_encoding)
+    ds.to_netcdf(path, format="NETCDF4", encoding=encoding)

@@ -1,0 +1,85 @@
+"""A whole run, stage after stage: open, select, prepare, weight, solve, diagnose, write.
+
+Each stage is a function of the previous one's result (see ``GUIDE``'s flow);
+this module only calls them in order and collects what the user should hear.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable
+
+from climodes.config import RunSpec
+from climodes.diagnostics import effective_sample_size, north_errors, separated
+from climodes.errors import UserError
+from climodes.fields import open_field, select
+from climodes.output import check_output_dir, results_dataset, staged_dir, write_netcdf
+from climodes.prepare import prepare
+from climodes.solvers import solve
+from climodes.weights import area_weights
+
+
+@dataclass
+class RunSummary:
+    """What a finished run tells the user."""
+
+    output_dir: Path
+    headline: str
+    table: list[str]
+    notes: list[str] = field(default_factory=list)
+
+    def text(self) -> str:
+        return "\n".join([self.headline, *self.table])
+
+
+def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None) -> RunSummary:
+    """Run ``spec`` end to end and write its results folder.
+
+    Parameters
+    ----------
+    spec
+        A validated run (see :func:`climodes.config.load_spec`).
+    say
+        Called with each note worth telling the user as the run goes.
+    """
+    check_output_dir(spec.output)
+    opened = open_field(spec.input)
+    notes = list(opened.notes)
+    selected = select(opened, spec.select)
+    anomaly = prepare(selected, spec.prepare, spec.select.months, notes)
+    steps = anomaly.sizes["time"]
+    if steps < spec.modes.count + 1:
+        raise UserError(f"modes.count: {spec.modes.count} modes need at least {spec.modes.count + 1} time steps, "
+                        f"but the prepared field has {steps}; lower modes.count or lengthen select.period")
+    weights = area_weights(anomaly["lat"], anomaly["lon"], spec.prepare.weighting)
+    modes, result, counts = solve(anomaly, weights, spec.modes.count, spec.prepare.max_missing)
+    notes += counts.notes
+    n_eff, n_eff_how = effective_sample_size(result.pcs, spec.modes.effective_sample_size)
+    errors = north_errors(result.eigenvalues, n_eff)
+    apart = separated(result.eigenvalues, errors, result.next_eigenvalue)
+    for line in notes:
+        say(f"note: {line}")
+
+    units = "1" if spec.prepare.standardize else opened.data.attrs.get("units")
+    extra = dict(errors=errors, separated=apart, n_eff=n_eff, n_eff_how=n_eff_how, method=result.method,
+                 notes=notes, units=units, total_variance=result.total_variance)
+    results = results_dataset(modes, opened, spec, extra)
+    out = Path(spec.output.dir)
+    headline = (f"climodes: {spec.modes.count} modes of {spec.input.variable} from {len(opened.files)} file(s), "
+                f"{steps} time steps x {counts.used} points ({result.method.split(':')[0]} solver) -> {out}")
+    table = ["mode  variance explained  separated (North)"]
+    for k in range(spec.modes.count):
+        frac = 100 * float(results["variance_explained"][k])
+        err = 100 * float(results["variance_explained_error"][k])
+        table.append(f"{k + 1:>4}  {frac:8.1f}% \u00b1 {err:4.1f}%   {'yes' if apart[k] else 'no, mixed'}")
+    table.append(f"effective sample size {n_eff:.0f} of {steps} steps")
+    with staged_dir(out) as stage:
+        write_netcdf(results, stage / "modes.nc", opened.time_encoding)
+        if spec.output.figures:
+            from climodes.figures import draw_all  # the numeric path never imports matplotlib
+
+            draw_all(results, stage)
+        log = [headline, *table, *(f"note: {n}" for n in notes), "", "resolved config:", spec.to_yaml()]
+        (stage / "run.log").write_text("\n".join(log), encoding="utf-8")
+    return RunSummary(out, headline, table, notes)
