@@ -1,0 +1,73 @@
+"""Shared helpers: small NetCDF fields written on the fly, configs, and the CLI run in-process."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+import xarray as xr
+import yaml
+
+from climodes.cli import main
+
+
+def field_dataset(values: np.ndarray, lat: np.ndarray, lon: np.ndarray, time=None, name: str = "tas",
+                  units: str = "K") -> xr.Dataset:
+    """A CF-described (time, lat, lon) field as an archive would store it."""
+    if time is None:
+        time = pd.date_range("1980-01-15", periods=values.shape[0], freq="MS") + pd.Timedelta(days=14)
+    return xr.Dataset(
+        {name: (("time", "lat", "lon"), values, {"units": units, "long_name": "test field"})},
+        coords={
+            "time": ("time", time, {"standard_name": "time", "axis": "T"}),
+            "lat": ("lat", lat, {"standard_name": "latitude", "units": "degrees_north"}),
+            "lon": ("lon", lon, {"standard_name": "longitude", "units": "degrees_east"}),
+        },
+    )
+
+
+def red_field(shape: tuple[int, int, int], seed: int = 0) -> np.ndarray:
+    """Random field with a few spatially coherent, well-separated modes plus noise."""
+    rng = np.random.default_rng(seed)
+    nt, ny, nx = shape
+    out = 0.3 * rng.standard_normal(shape)
+    for k, amp in enumerate([4.0, 2.5, 1.5]):
+        pattern = rng.standard_normal((ny, nx)).cumsum(0).cumsum(1)
+        pattern /= np.abs(pattern).max()
+        out += amp * rng.standard_normal(nt)[:, None, None] * pattern
+    return out
+
+
+def write_config(folder: Path, files, variable: str = "tas", **sections) -> Path:
+    """Write a config for ``files`` with any section overrides; return its path."""
+    body = {"input": {"paths": [str(f) for f in files], "variable": variable},
+            "output": {"dir": str(folder / "out"), "figures": False}}
+    for section, values in sections.items():
+        body.setdefault(section, {}).update(values)
+    path = folder / "run.yaml"
+    path.write_text(yaml.safe_dump(body, sort_keys=False))
+    return path
+
+
+@pytest.fixture
+def cli(capsys):
+    """Run ``climodes ARGS`` in-process; return (exit code, stdout, stderr)."""
+
+    def call(*args: str) -> tuple[int, str, str]:
+        code = main([str(a) for a in args])
+        out = capsys.readouterr()
+        return code, out.out, out.err
+
+    return call
+
+
+@pytest.fixture
+def small_field(tmp_path) -> Path:
+    """A 10-degree global field of 60 months, stored in one file."""
+    lat = np.arange(-85.0, 90, 10)
+    lon = np.arange(5.0, 360, 10)
+    path = tmp_path / "field.nc"
+    field_dataset(red_field((60, lat.size, lon.size)), lat, lon).to_netcdf(path)
+    return path

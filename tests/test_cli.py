@@ -1,0 +1,115 @@
+"""The command line: check, run, and one clear line with exit code 2 for each bad input."""
+
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+import xarray as xr
+import yaml
+
+from conftest import field_dataset, red_field, write_config
+
+
+def test_check_prints_the_resolved_config(tmp_path, small_field, cli):
+    config = write_config(tmp_path, [small_field], modes={"count": 3})
+    code, out, err = cli("check", config)
+    assert code == 0 and err == ""
+    resolved = yaml.safe_load(out)
+    assert resolved["modes"] == {"count": 3, "effective_sample_size": "auto"}
+    assert resolved["prepare"]["weighting"] == "coslat"
+
+
+def test_run_writes_results_and_prints_a_table(tmp_path, small_field, cli):
+    config = write_config(tmp_path, [small_field], modes={"count": 3})
+    code, out, err = cli("run", config)
+    assert code == 0, err
+    assert out.splitlines()[0].startswith("climodes: 3 modes of tas from 1 file(s), 60 time steps x 648 points")
+    assert out.splitlines()[1].split() == ["mode", "variance", "explained", "separated", "(North)"]
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["modes.nc", "run.log"]
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # no staging folder left
+
+
+def test_quiet_run_prints_nothing(tmp_path, small_field, cli):
+    code, out, err = cli("run", "--quiet", write_config(tmp_path, [small_field], modes={"count": 2}))
+    assert (code, out, err) == (0, "", "")
+
+
+def test_console_script_and_module_entry_points(tmp_path, small_field):
+    config = write_config(tmp_path, [small_field], modes={"count": 2})
+    for command in ([sys.executable, "-m", "climodes", "check", str(config)],
+                    [str(__import__("shutil").which("climodes") or sys.executable), "--version"]):
+        done = subprocess.run(command, capture_output=True, text=True, timeout=120)
+        assert done.returncode == 0, done.stderr
+    bad = subprocess.run([sys.executable, "-m", "climodes", "run", str(tmp_path / "none.yaml")],
+                         capture_output=True, text=True, timeout=120)
+    assert bad.returncode == 2 and len(bad.stderr.strip().splitlines()) == 1 and "Traceback" not in bad.stderr
+
+
+# --- the bad-input catalogue: every case exits 2 with one line naming the culprit, and writes nothing
+
+
+def _no_latlon(tmp_path):
+    path = tmp_path / "nolatlon.nc"
+    xr.Dataset({"tas": (("time", "a", "b"), np.random.rand(20, 3, 4))},
+               coords={"time": np.arange(20.0)}).to_netcdf(path)
+    return [path], {}
+
+
+def _constant(tmp_path):
+    path = tmp_path / "constant.nc"
+    field_dataset(np.full((30, 4, 5), 280.0), np.linspace(-30, 30, 4), np.arange(0, 50.0, 10)).to_netcdf(path)
+    return [path], {"modes": {"count": 2}}
+
+
+def _ok(tmp_path):
+    path = tmp_path / "ok.nc"
+    field_dataset(red_field((24, 5, 6)), np.linspace(-40, 40, 5), np.arange(0, 60.0, 10)).to_netcdf(path)
+    return path
+
+
+CATALOGUE = {
+    "missing file": (lambda t: ([t / "absent.nc"], {}), "absent.nc: no such file"),
+    "empty glob": (lambda t: ([t / "nothing_*.nc"], {}), "matches no file"),
+    "variable not in file": (lambda t: ([_ok(t)], {"input": {"variable": "pr"}}), "no variable 'pr'; variables there: tas"),
+    "no latitude or longitude": (_no_latlon, "none is the latitude axis"),
+    "region without points": (lambda t: ([_ok(t)], {"select": {"lat": [41, 45]}}), "select.lat: [41.0, 45.0] holds no latitude"),
+    "region without longitudes": (lambda t: ([_ok(t)], {"select": {"lon": [200, 210]}}), "select.lon: [200, 210] holds no longitude"),
+    "period without steps": (lambda t: ([_ok(t)], {"select": {"period": [2050, 2060]}}), "select.period: ['2050', '2060'] holds no time step"),
+    "fewer steps than modes + 1": (lambda t: ([_ok(t)], {"modes": {"count": 30}}), "modes.count: 30 modes need at least 31 time steps"),
+    "constant field": (_constant, "constant in time at every point"),
+    "not netcdf": (lambda t: ([(t / "text.nc").write_text("hello") and t / "text.nc"], {}), "text.nc: cannot be read as NetCDF"),
+    "unknown key": (lambda t: ([_ok(t)], {"modes": {"cont": 3}}), "modes.cont: unknown key; did you mean count?"),
+}
+
+
+@pytest.mark.parametrize("case", list(CATALOGUE))
+def test_bad_input_gives_one_line_and_exit_2(tmp_path, cli, case):
+    make, expected = CATALOGUE[case]
+    files, sections = make(tmp_path)
+    config = write_config(tmp_path, files, **sections)
+    code, out, err = cli("run", config)
+    assert code == 2
+    assert len(err.strip().splitlines()) == 1, err
+    assert expected in err and "Traceback" not in err
+    assert not (tmp_path / "out").exists()
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".out")]
+
+
+def test_existing_output_dir_needs_overwrite(tmp_path, small_field, cli):
+    config = write_config(tmp_path, [small_field], modes={"count": 2})
+    (tmp_path / "out").mkdir()
+    (tmp_path / "out" / "keep.txt").write_text("mine")
+    code, _, err = cli("run", config)
+    assert code == 2 and "output.dir:" in err and "overwrite: true" in err and len(err.strip().splitlines()) == 1
+    assert (tmp_path / "out" / "keep.txt").read_text() == "mine"
+    config = write_config(tmp_path, [small_field], modes={"count": 2}, output={"overwrite": True})
+    code, _, err = cli("run", config)
+    assert code == 0, err
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["modes.nc", "run.log"]
+
+
+def test_input_files_are_left_unchanged(tmp_path, small_field, cli):
+    before = small_field.read_bytes(), small_field.stat().st_mtime
+    assert cli("run", write_config(tmp_path, [small_field], modes={"count": 2}))[0] == 0
+    assert (small_field.read_bytes(), small_field.stat().st_mtime) == before
