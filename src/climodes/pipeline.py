@@ -72,7 +72,7 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None) -> RunSum
     for k in range(spec.modes.count):
         frac = 100 * float(results["variance_explained"][k])
         err = 100 * float(results["variance_explained_error"][k])
-        table.append(f"{k + 1:>4}  {frac:8.1f}% \u00b1 {err:4.1f}%   {'yes' if apart[k] else 'no, mixed'}")
+        table.append(f"{k + 1:>4}  {frac:8.1f}% +/- {err:4.1f}%   {'yes' if apart[k] else 'no, mixed'}")
     table.append(f"effective sample size {n_eff:.0f} of {steps} steps")
     with staged_dir(out) as stage:
         write_netcdf(results, stage / "modes.nc", opened.time_encoding)
