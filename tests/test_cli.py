@@ -113,3 +113,37 @@ def test_input_files_are_left_unchanged(tmp_path, small_field, cli):
     before = small_field.read_bytes(), small_field.stat().st_mtime
     assert cli("run", write_config(tmp_path, [small_field], modes={"count": 2}))[0] == 0
     assert (small_field.read_bytes(), small_field.stat().st_mtime) == before
+
+
+def test_show_summarises_a_results_folder(tmp_path, small_field, cli):
+    config = write_config(tmp_path, [small_field], modes={"count": 3})
+    assert cli("run", config)[0] == 0
+    code, out, err = cli("show", tmp_path / "out")
+    assert code == 0, err
+    lines = out.splitlines()
+    assert len(lines) <= 24  # one screen
+    assert "lat -85 to 85 (18 rows), lon 5 to 355 (36 columns)" in out
+    assert "648 of 648 grid points used" in out
+    assert "60 steps" in out and "exact: LAPACK" in out
+    assert f"rerun       climodes run {config}" in out
+    assert sum(1 for line in lines if line.strip()[:1].isdigit() and "%" in line) == 3
+    assert cli("show", tmp_path / "out" / "modes.nc")[1] == out.replace(str(tmp_path / "out"),
+                                                                       str(tmp_path / "out" / "modes.nc"), 1)
+
+
+@pytest.mark.parametrize("target, expected", [
+    ("missing", "no such results file"),
+    ("field.nc", "not a climodes results file"),
+    ("text.nc", "cannot be read as NetCDF"),
+])
+def test_show_refuses_what_is_not_results(tmp_path, small_field, cli, target, expected):
+    (tmp_path / "text.nc").write_text("not netcdf")
+    code, out, err = cli("show", tmp_path / target)
+    assert code == 2 and expected in err and len(err.strip().splitlines()) == 1 and out == ""
+
+
+def test_overwrite_flag(tmp_path, small_field, cli):
+    config = write_config(tmp_path, [small_field], modes={"count": 2})
+    assert cli("run", config)[0] == 0
+    assert cli("run", config)[0] == 2
+    assert cli("run", "--overwrite", config)[0] == 0

@@ -1,7 +1,11 @@
 """The demo end to end: planted modes recovered, the same modes as the eofs package, figures
 drawn with the network unreachable."""
 
+import shutil
 import socket
+import subprocess
+import sys
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -78,6 +82,15 @@ def test_demo_matches_the_eofs_package(demo_run):
         theirs = maps[k][keep]
         sign = np.sign(theirs[np.argmax(np.abs(theirs))])
         np.testing.assert_allclose(ours, sign * theirs, rtol=1e-5, atol=1e-8)
+
+
+def test_demo_results_are_cf_compliant(demo_run):
+    """IOOS compliance-checker, CF-1.10, strict criteria."""
+    root, _ = demo_run
+    tool = shutil.which("compliance-checker") or str(Path(sys.executable).parent / "compliance-checker")
+    done = subprocess.run([tool, "-t", "cf:1.10", "-c", "strict", str(root / "results" / "demo" / "modes.nc")],
+                          capture_output=True, text=True, timeout=300)
+    assert done.returncode == 0 and "All tests passed!" in done.stdout, done.stdout[-3000:]
 
 
 def test_demo_figures_exist_and_are_pictures(demo_run):

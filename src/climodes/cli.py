@@ -8,6 +8,7 @@ traceback), 1 an internal error (a bug: the traceback is printed to report it),
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import signal
 import sys
 import traceback
@@ -28,6 +29,9 @@ def _parser() -> argparse.ArgumentParser:
     run = commands.add_parser("run", help="run a config: write modes.nc, figures and run.log")
     run.add_argument("config", help="YAML run configuration")
     run.add_argument("-q", "--quiet", action="store_true", help="print nothing but errors")
+    run.add_argument("--overwrite", action="store_true", help="replace an existing results folder")
+    show = commands.add_parser("show", help="summarise a results folder or modes.nc on one screen")
+    show.add_argument("results", help="results folder or its modes.nc")
     return parser
 
 
@@ -42,11 +46,19 @@ def main(argv: list[str] | None = None) -> int:
     from climodes.config import load_spec
 
     try:
+        if args.command == "show":
+            from climodes.report import summary
+
+            print(summary(args.results))
+            return 0
         spec = load_spec(args.config)
         if args.command == "check":
             print(spec.to_yaml(), end="")
             return 0
         from climodes.pipeline import run
+
+        if args.overwrite:
+            spec = dataclasses.replace(spec, output=dataclasses.replace(spec.output, overwrite=True))
 
         say = (lambda line: None) if args.quiet else (lambda line: print(line, file=sys.stderr))
         summary = run(spec, say)

@@ -150,6 +150,17 @@ def _sample_size(value: Any) -> int | str:
     return value
 
 
+def _formats(value: Any) -> list[str]:
+    if isinstance(value, str):
+        value = [value]
+    allowed = ("netcdf", "geotiff")
+    if not isinstance(value, list) or not all(v in allowed for v in value) or len(set(value)) != len(value):
+        raise ValueError(f"expected a list drawn from {', '.join(allowed)}; got {value!r}")
+    if "netcdf" not in value:
+        raise ValueError("netcdf is always written (modes.nc is the results file); list geotiff beside it")
+    return value
+
+
 def _key(check: Callable[[Any], Any], doc: str, default: Any = dataclasses.MISSING) -> Any:
     """Declare a config key: its check, a one-line description and its default."""
     if isinstance(default, (list, dict)):
@@ -206,6 +217,7 @@ class ModesSection:
 @dataclass(frozen=True)
 class OutputSection:
     dir: str = _key(_text, "results folder, read from the config's folder", "results")
+    formats: list[str] = _key(_formats, "files to write: netcdf (always), geotiff (modes.tif)", ["netcdf"])
     figures: bool = _key(_boolean, "draw a map per mode, the PC series and the variance spectrum", True)
     overwrite: bool = _key(_boolean, "replace an existing results folder", False)
 

@@ -140,6 +140,8 @@ def provenance(spec: RunSpec, opened: OpenedField, extra: dict) -> dict:
         "climodes_config": config_text,
         "climodes_config_sha256": hashlib.sha256(config_text.encode()).hexdigest(),
         "climodes_input_files": files,
+        "climodes_effective_sample_size": float(extra["n_eff"]),
+        "climodes_points": extra["points"],
         "climodes_notes": "\n".join(extra["notes"]) or "none",
         "climodes_python": sys.version.split()[0],
     }
@@ -155,3 +157,47 @@ def write_netcdf(ds: xr.Dataset, path: Path, time_encoding: dict) -> None:
     time_name = next(d for d in ds["pc"].dims if d != "mode")
     encoding[time_name].update(time_encoding)
     ds.to_netcdf(path, format="NETCDF4", encoding=encoding)
+
+
+def _regular(values: np.ndarray) -> bool:
+    steps = np.diff(values)
+    return values.size < 2 or bool(np.allclose(steps, steps[0], rtol=1e-5, atol=1e-8))
+
+
+def check_geotiff_grid(lat: np.ndarray, lon: np.ndarray) -> None:
+    """A GeoTIFF holds a regular grid only; say so before any work is done."""
+    for name, values in (("latitude", lat), ("longitude", lon)):
+        if not _regular(values):
+            raise UserError(f"output.formats: geotiff needs a regularly spaced grid, but the {name} spacing "
+                            f"varies ({np.diff(values).min():g} to {np.diff(values).max():g} degrees); "
+                            "drop geotiff or regrid the input")
+
+
+def geotiff_layout(eof: xr.DataArray) -> xr.DataArray:
+    """``eof`` north-up on longitudes -180..180, unless that would split a box across the dateline."""
+    _, lat, lon = eof.dims
+    wrapped = (eof[lon].values + 180) % 360 - 180
+    order = np.argsort(wrapped, kind="stable")
+    if _regular(wrapped[order]):
+        eof = eof.isel({lon: order}).assign_coords({lon: (lon, wrapped[order], eof[lon].attrs)})
+    return eof.sortby(lat, ascending=False)
+
+
+def write_geotiff(ds: xr.Dataset, path: Path) -> None:
+    """Write the EOF maps as one north-up, DEFLATE-compressed GeoTIFF band per mode (EPSG:4326, NaN nodata)."""
+    import rasterio
+    import rioxarray  # noqa: F401  (registers the .rio accessor)
+
+    eof = geotiff_layout(ds["eof"])
+    _, lat, lon = eof.dims
+    bands = xr.DataArray(eof.values.astype(np.float32), dims=("band", "y", "x"),
+                         coords={"band": ds["mode"].values, "y": eof[lat].values, "x": eof[lon].values})
+    bands = bands.rio.write_crs("EPSG:4326").rio.write_nodata(np.nan)
+    bands.rio.to_raster(path, driver="GTiff", compress="DEFLATE", tags={
+        "source": ds.attrs["source"], "climodes_config_sha256": ds.attrs["climodes_config_sha256"],
+        "units": ds["eof"].attrs.get("units", "")})
+    units = ds["eof"].attrs.get("units", "")
+    with rasterio.open(path, "r+") as raster:
+        for k in range(ds.sizes["mode"]):
+            share = 100 * float(ds["variance_explained"][k])
+            raster.set_band_description(k + 1, f"mode {k + 1} EOF ({units}), {share:.1f}% of variance")

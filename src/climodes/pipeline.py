@@ -14,7 +14,14 @@ from climodes.config import RunSpec
 from climodes.diagnostics import effective_sample_size, north_errors, separated
 from climodes.errors import UserError
 from climodes.fields import open_field, select
-from climodes.output import check_output_dir, results_dataset, staged_dir, write_netcdf
+from climodes.output import (
+    check_geotiff_grid,
+    check_output_dir,
+    results_dataset,
+    staged_dir,
+    write_geotiff,
+    write_netcdf,
+)
 from climodes.prepare import prepare
 from climodes.solvers import solve
 from climodes.weights import area_weights
@@ -52,6 +59,8 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None) -> RunSum
     if steps < spec.modes.count + 1:
         raise UserError(f"modes.count: {spec.modes.count} modes need at least {spec.modes.count + 1} time steps, "
                         f"but the prepared field has {steps}; lower modes.count or lengthen select.period")
+    if "geotiff" in spec.output.formats:
+        check_geotiff_grid(anomaly["lat"].values, anomaly["lon"].values)
     weights = area_weights(anomaly["lat"], anomaly["lon"], spec.prepare.weighting)
     modes, result, counts = solve(anomaly, weights, spec.modes.count, spec.prepare.max_missing)
     notes += counts.notes
@@ -63,7 +72,10 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None) -> RunSum
 
     units = "1" if spec.prepare.standardize else opened.data.attrs.get("units")
     extra = dict(errors=errors, separated=apart, n_eff=n_eff, n_eff_how=n_eff_how, method=result.method,
-                 notes=notes, units=units, total_variance=result.total_variance)
+                 notes=notes, units=units, total_variance=result.total_variance,
+                 points=(f"{counts.used} of {counts.grid} grid points used; {counts.always_missing} missing at every "
+                         f"step; {counts.too_often_missing} missing too often; {counts.filled_values} missing "
+                         "values set to zero anomaly"))
     results = results_dataset(modes, opened, spec, extra)
     out = Path(spec.output.dir)
     headline = (f"climodes: {spec.modes.count} modes of {spec.input.variable} from {len(opened.files)} file(s), "
@@ -76,6 +88,8 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None) -> RunSum
     table.append(f"effective sample size {n_eff:.0f} of {steps} steps")
     with staged_dir(out) as stage:
         write_netcdf(results, stage / "modes.nc", opened.time_encoding)
+        if "geotiff" in spec.output.formats:
+            write_geotiff(results, stage / "modes.tif")
         if spec.output.figures:
             from climodes.figures import draw_all  # the numeric path never imports matplotlib
 
