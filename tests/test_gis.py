@@ -95,6 +95,9 @@ def test_gdal_reads_the_geotiff_georeferenced(variant):
         assert raster.profile["compress"].lower() == "deflate"
         assert np.isnan(raster.nodata)
         assert raster.descriptions[0].startswith("mode 1 EOF (K), ")
+        tags = raster.tags()  # the same provenance as the NetCDF
+        for name in ("source", "history", "climodes_config", "climodes_config_sha256", "climodes_input_files"):
+            assert tags[name] == str(ds.attrs[name])
         half = raster.res[0] / 2
         if rolled:  # cell centres within -180..180
             assert raster.bounds.left + half >= -180 and raster.bounds.right - half < 180

@@ -193,10 +193,9 @@ def write_geotiff(ds: xr.Dataset, path: Path) -> None:
     bands = xr.DataArray(eof.values.astype(np.float32), dims=("band", "y", "x"),
                          coords={"band": ds["mode"].values, "y": eof[lat].values, "x": eof[lon].values})
     bands = bands.rio.write_crs("EPSG:4326").rio.write_nodata(np.nan)
-    bands.rio.to_raster(path, driver="GTiff", compress="DEFLATE", tags={
-        "source": ds.attrs["source"], "climodes_config_sha256": ds.attrs["climodes_config_sha256"],
-        "units": ds["eof"].attrs.get("units", "")})
     units = ds["eof"].attrs.get("units", "")
+    tags = {name: str(value) for name, value in ds.attrs.items() if name != "Conventions"}
+    bands.rio.to_raster(path, driver="GTiff", compress="DEFLATE", tags={**tags, "units": units})
     with rasterio.open(path, "r+") as raster:
         for k in range(ds.sizes["mode"]):
             share = 100 * float(ds["variance_explained"][k])
