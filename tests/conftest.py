@@ -71,3 +71,21 @@ def small_field(tmp_path) -> Path:
     path = tmp_path / "field.nc"
     field_dataset(red_field((60, lat.size, lon.size)), lat, lon).to_netcdf(path)
     return path
+
+
+@pytest.fixture
+def values_read(monkeypatch):
+    """Count the data values read from NetCDF files (through xarray's netCDF4 backend)."""
+    from xarray.backends.netCDF4_ import NetCDF4ArrayWrapper
+
+    counter = {"values": 0}
+    original = NetCDF4ArrayWrapper._getitem
+
+    def counting(self, key):
+        array = original(self, key)
+        if np.ndim(array) >= 2:  # field reads, not coordinates
+            counter["values"] += int(np.size(array))
+        return array
+
+    monkeypatch.setattr(NetCDF4ArrayWrapper, "_getitem", counting)
+    return counter

@@ -29,8 +29,18 @@ def test_open_is_lazy_and_ordered_time_lat_lon(tmp_path):
     opened = _open([path], chunks={"time": 5})
     assert opened.data.dims == ("time", "lat", "lon")
     assert opened.data.chunks[0] == (5, 5, 2)
+
     np.testing.assert_allclose(opened.data.values, ds["tas"].values)
     assert opened.files[0].size == path.stat().st_size
+
+
+def test_opening_many_files_reads_no_values(tmp_path, values_read):
+    lon = np.arange(0.0, 360, 90)
+    paths = [_grid_file(tmp_path / f"{y}.nc", lon, start=f"{y}-01-01") for y in (2000, 2001, 2002)]
+    opened = _open(paths, chunks={"time": 5})
+    assert values_read["values"] == 0
+    opened.data.isel(time=slice(0, 5)).values
+    assert values_read["values"] == 5 * 3 * 4  # only the chunk asked for
 
 
 def test_axes_found_by_cf_attributes_whatever_their_names(tmp_path):

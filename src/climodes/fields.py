@@ -151,6 +151,7 @@ def open_field(spec: InputSection) -> OpenedField:
         names = axes
         da = da.squeeze([d for d in da.dims if d not in axes.values()], drop=True)
         da = da.rename({v: k for k, v in axes.items()}).transpose("time", "lat", "lon")
+        da = da.chunk({axis: spec.chunks.get(axis, -1) for axis in ("time", "lat", "lon")})  # lazy from here on
         pieces.append((path, da, ds[axes["time"]].encoding))
     pieces.sort(key=lambda p: p[1]["time"].values[0])
     for (path_a, a, _), (path_b, b, _) in zip(pieces, pieces[1:]):
@@ -161,7 +162,6 @@ def open_field(spec: InputSection) -> OpenedField:
         if b["time"].values[0] <= a["time"].values[-1]:
             raise UserError(f"{path_b}: its time steps overlap those of {path_a}; remove the duplicate steps")
     data = xr.concat([p[1] for p in pieces], dim="time", coords="minimal", compat="override", join="override")
-    data = data.chunk({axis: spec.chunks.get(axis, -1) for axis in ("time", "lat", "lon")})
     files = [InputFile(str(Path(p).resolve()), os.stat(p).st_size, os.stat(p).st_mtime) for p in paths]
     opened = OpenedField(data, files, names, {k: v for k, v in pieces[0][2].items() if k in ("units", "calendar")})
     _drop_repeated_longitude(opened)
