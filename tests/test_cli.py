@@ -16,7 +16,8 @@ def test_check_prints_the_resolved_config(tmp_path, small_field, cli):
     code, out, err = cli("check", config)
     assert code == 0 and err == ""
     resolved = yaml.safe_load(out)
-    assert resolved["modes"] == {"count": 3, "effective_sample_size": "auto"}
+    assert resolved["modes"] == {"count": 3, "effective_sample_size": "auto", "method": "auto", "seed": 0}
+    assert resolved["compute"] == {"memory": "4GB", "workers": "auto", "scheduler": "threads"}
     assert resolved["prepare"]["weighting"] == "coslat"
 
 

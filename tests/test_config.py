@@ -31,7 +31,7 @@ def test_defaults_are_filled_in_and_paths_resolved(tmp_path):
     assert spec.modes.count == 10 and spec.output.overwrite is False
     assert spec.output.dir == str(tmp_path / "results")
     resolved = yaml.safe_load(spec.to_yaml())
-    assert set(resolved) == {"input", "select", "prepare", "modes", "output"}
+    assert set(resolved) == {"input", "select", "prepare", "modes", "compute", "output"}
     assert resolved["select"] == {"lat": None, "lon": None, "period": None, "months": None}
 
 

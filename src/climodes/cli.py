@@ -55,13 +55,14 @@ def main(argv: list[str] | None = None) -> int:
         if args.command == "check":
             print(spec.to_yaml(), end="")
             return 0
+        from climodes.cluster import show_progress
         from climodes.pipeline import run
 
         if args.overwrite:
             spec = dataclasses.replace(spec, output=dataclasses.replace(spec.output, overwrite=True))
 
         say = (lambda line: None) if args.quiet else (lambda line: print(line, file=sys.stderr))
-        summary = run(spec, say)
+        summary = run(spec, say, progress=show_progress(args.quiet))
         if not args.quiet:
             print(summary.text())
         return 0

@@ -53,10 +53,16 @@ def _boolean(value: Any) -> bool:
     return value
 
 
-def _positive_int(value: Any) -> int:
-    if isinstance(value, bool) or not isinstance(value, int) or value < 1:
-        raise ValueError(f"expected a whole number of 1 or more; got {value!r}")
-    return value
+def _whole(minimum: int) -> Callable[[Any], int]:
+    def check(value: Any) -> int:
+        if isinstance(value, bool) or not isinstance(value, int) or value < minimum:
+            raise ValueError(f"expected a whole number of {minimum} or more; got {value!r}")
+        return value
+
+    return check
+
+
+_positive_int = _whole(1)
 
 
 def _text(value: Any) -> str:
@@ -161,6 +167,29 @@ def _formats(value: Any) -> list[str]:
     return value
 
 
+_SIZE = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*(B|KB|MB|GB|TB|KiB|MiB|GiB|TiB)\s*$", re.IGNORECASE)
+_FACTORS = {"b": 1, "kb": 1e3, "mb": 1e6, "gb": 1e9, "tb": 1e12, "kib": 2**10, "mib": 2**20, "gib": 2**30,
+            "tib": 2**40}
+
+
+def memory_bytes(text: str) -> int:
+    """Bytes in a size such as ``"4GB"`` (10^9) or ``"1.5GiB"`` (2^30)."""
+    number, unit = _SIZE.match(text).groups()
+    return int(float(number) * _FACTORS[unit.lower()])
+
+
+def _memory(value: Any) -> str:
+    if not isinstance(value, str) or not _SIZE.match(value) or memory_bytes(value) < 50e6:
+        raise ValueError(f"expected a size of at least 50MB such as \"4GB\" or \"1.5GiB\"; got {value!r}")
+    return value.strip()
+
+
+def _workers(value: Any) -> int | str:
+    if value == "auto":
+        return value
+    return _positive_int(value)
+
+
 def _key(check: Callable[[Any], Any], doc: str, default: Any = dataclasses.MISSING) -> Any:
     """Declare a config key: its check, a one-line description and its default."""
     if isinstance(default, (list, dict)):
@@ -209,9 +238,19 @@ class PrepareSection:
 @dataclass(frozen=True)
 class ModesSection:
     count: int = _key(_positive_int, "number of modes to keep", 10)
+    method: str = _key(_choice("auto", "exact", "gram", "randomized"),
+                       "solver: auto chooses from the matrix shape and compute.memory", "auto")
+    seed: int = _key(_whole(0), "random seed of the randomized solver", 0)
     effective_sample_size: int | str = _key(
         _sample_size, "sample size for North's errors: auto (from PC autocorrelation) or a number", "auto"
     )
+
+
+@dataclass(frozen=True)
+class ComputeSection:
+    memory: str = _key(_memory, "memory the run may use, e.g. 4GB; streaming solvers size their blocks by it", "4GB")
+    workers: int | str = _key(_workers, "parallel dask workers: auto (one per core) or a number", "auto")
+    scheduler: str = _key(_choice("threads", "processes", "synchronous"), "where dask runs the work", "threads")
 
 
 @dataclass(frozen=True)
@@ -231,6 +270,7 @@ class RunSpec:
     select: SelectSection
     prepare: PrepareSection
     modes: ModesSection
+    compute: ComputeSection
     output: OutputSection
 
     def to_yaml(self) -> str:
@@ -244,6 +284,7 @@ SECTIONS = {
     "select": SelectSection,
     "prepare": PrepareSection,
     "modes": ModesSection,
+    "compute": ComputeSection,
     "output": OutputSection,
 }
 

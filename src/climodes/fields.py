@@ -134,12 +134,16 @@ def _open_one(path: str, variable: str) -> tuple[xr.DataArray, xr.Dataset]:
     return da, ds
 
 
-def open_field(spec: InputSection) -> OpenedField:
+def open_field(spec: InputSection, chunks: dict[str, int] | None = None) -> OpenedField:
     """Open ``spec.variable`` from every file of ``spec.paths`` as one lazy field.
 
     Files are ordered by their first time step; their grids must agree and
-    their time steps must not overlap.
+    their time steps must not overlap.  ``chunks`` (axis to length, -1 for
+    whole) overrides ``spec.chunks``: the streaming solvers read blocks of
+    latitude rows with every time step, and the blocks must be cut as the
+    files are opened, since cutting a dask chunk later still reads all of it.
     """
+    chunks = spec.chunks if chunks is None else chunks
     paths = expand_paths(spec.paths)
     pieces = []
     names: dict[str, str] = {}
@@ -151,7 +155,7 @@ def open_field(spec: InputSection) -> OpenedField:
         names = axes
         da = da.squeeze([d for d in da.dims if d not in axes.values()], drop=True)
         da = da.rename({v: k for k, v in axes.items()}).transpose("time", "lat", "lon")
-        da = da.chunk({axis: spec.chunks.get(axis, -1) for axis in ("time", "lat", "lon")})  # lazy from here on
+        da = da.chunk({axis: chunks.get(axis, -1) for axis in ("time", "lat", "lon")})  # lazy from here on
         pieces.append((path, da, ds[axes["time"]].encoding))
     pieces.sort(key=lambda p: p[1]["time"].values[0])
     for (path_a, a, _), (path_b, b, _) in zip(pieces, pieces[1:]):

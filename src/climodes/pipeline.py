@@ -10,10 +10,13 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable
 
-from climodes.config import RunSpec
+import xarray as xr
+
+from climodes.cluster import dask_settings, progress_reporter, worker_count
+from climodes.config import RunSpec, memory_bytes
 from climodes.diagnostics import effective_sample_size, north_errors, separated
 from climodes.errors import UserError
-from climodes.fields import open_field, select
+from climodes.fields import OpenedField, open_field, select
 from climodes.output import (
     check_geotiff_grid,
     check_output_dir,
@@ -23,7 +26,7 @@ from climodes.output import (
     write_netcdf,
 )
 from climodes.prepare import prepare
-from climodes.solvers import solve
+from climodes.solvers import plan_solver, solve
 from climodes.weights import area_weights
 
 
@@ -40,7 +43,15 @@ class RunSummary:
         return "\n".join([self.headline, *self.table])
 
 
-def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None) -> RunSummary:
+def _prepared(spec: RunSpec, chunks: dict | None = None) -> tuple[OpenedField, xr.DataArray, list[str]]:
+    """Open, select and prepare the field, lazily: only coordinates are read."""
+    opened = open_field(spec.input, chunks)
+    notes = list(opened.notes)
+    anomaly = prepare(select(opened, spec.select), spec.prepare, spec.select.months, notes)
+    return opened, anomaly, notes
+
+
+def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress: bool = False) -> RunSummary:
     """Run ``spec`` end to end and write its results folder.
 
     Parameters
@@ -49,12 +60,15 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None) -> RunSum
         A validated run (see :func:`climodes.config.load_spec`).
     say
         Called with each note worth telling the user as the run goes.
+    progress
+        Draw a progress bar on stderr for each pass over the data.
     """
     check_output_dir(spec.output)
-    opened = open_field(spec.input)
-    notes = list(opened.notes)
-    selected = select(opened, spec.select)
-    anomaly = prepare(selected, spec.prepare, spec.select.months, notes)
+    opened, anomaly, notes = _prepared(spec)
+    workers = worker_count(spec.compute)
+    plan = plan_solver(anomaly.shape, spec.modes.count, spec.modes.method, memory_bytes(spec.compute.memory), workers)
+    if plan.lat_rows:
+        opened, anomaly, notes = _prepared(spec, {"time": -1, "lat": plan.lat_rows, "lon": -1})
     steps = anomaly.sizes["time"]
     if steps < spec.modes.count + 1:
         raise UserError(f"modes.count: {spec.modes.count} modes need at least {spec.modes.count + 1} time steps, "
@@ -62,7 +76,9 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None) -> RunSum
     if "geotiff" in spec.output.formats:
         check_geotiff_grid(anomaly["lat"].values, anomaly["lon"].values)
     weights = area_weights(anomaly["lat"], anomaly["lon"], spec.prepare.weighting)
-    modes, result, counts = solve(anomaly, weights, spec.modes.count, spec.prepare.max_missing)
+    with dask_settings(spec.compute):
+        modes, result, counts = solve(anomaly, weights, spec.modes.count, spec.prepare.max_missing, plan,
+                                      spec.modes.seed, progress_reporter(progress))
     notes += counts.notes
     n_eff, n_eff_how = effective_sample_size(result.pcs, spec.modes.effective_sample_size)
     errors = north_errors(result.eigenvalues, n_eff)
@@ -71,7 +87,8 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None) -> RunSum
         say(f"note: {line}")
 
     units = "1" if spec.prepare.standardize else opened.data.attrs.get("units")
-    extra = dict(errors=errors, separated=apart, n_eff=n_eff, n_eff_how=n_eff_how, method=result.method,
+    extra = dict(errors=errors, separated=apart, n_eff=n_eff, n_eff_how=n_eff_how,
+                 method=f"{result.method} (chosen because: {plan.reason})",
                  notes=notes, units=units, total_variance=result.total_variance,
                  points=(f"{counts.used} of {counts.grid} grid points used; {counts.always_missing} missing at every "
                          f"step; {counts.too_often_missing} missing too often; {counts.filled_values} missing "
@@ -94,6 +111,7 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None) -> RunSum
             from climodes.figures import draw_all  # the numeric path never imports matplotlib
 
             draw_all(results, stage)
-        log = [headline, *table, *(f"note: {n}" for n in notes), "", "resolved config:", spec.to_yaml()]
+        log = [headline, *table, f"solver: {plan.method} ({plan.reason})", *(f"note: {n}" for n in notes), "",
+               "resolved config:", spec.to_yaml()]
         (stage / "run.log").write_text("\n".join(log), encoding="utf-8")
     return RunSummary(out, headline, table, notes)

@@ -1,4 +1,4 @@
-"""The decomposition: weighted anomalies in, eigenvalues, PCs and EOF maps out.
+"""The decompositions: weighted anomalies in, eigenvalues, PCs and EOF maps out.
 
 Conventions (they are the results contract):
 
@@ -12,19 +12,46 @@ Conventions (they are the results contract):
   ``A ~= sum_k pc_k eof_k``.  Computed from ``A`` rather than by dividing by
   ``w``, it stays defined where a weight is zero (a pole).
 - sign: see :func:`sign_rule`.
+
+Three solvers, one result:
+
+- ``exact``: LAPACK SVD of the whole matrix in memory, for small problems.
+- ``gram``: the (time x time) cross-product ``X X^T`` summed block by block
+  over grid points in float64, eigendecomposed, then the maps in a second pass:
+  two passes over the data, memory ``O(n^2 + a block)``.
+- ``randomized``: a randomized range finder with oversampling and power
+  iterations (Halko, Martinsson and Tropp 2011, SIAM Review 53(2), 217-288,
+  algorithms 4.4 and 5.1), for both dimensions large: ``2 + q`` passes for
+  ``q`` power iterations.  The random test matrix is drawn once over the whole
+  grid from the seed, so the result does not depend on the blocks.
+
+The streaming solvers see the field as blocks of ``(all time steps, some
+latitude rows)``, in which the missing-data rule, centring and weighting are
+local; blocks are read as the dask graph runs and never gathered.
 """
 
 from __future__ import annotations
 
+import contextlib
 import warnings
 from dataclasses import dataclass, field
+from functools import reduce
+from typing import Callable, ContextManager
 
+import dask
 import numpy as np
 import scipy.linalg
 import xarray as xr
 
 from climodes.errors import UserError
 from climodes.weights import usable_points
+
+OVERSAMPLING = 10
+POWER_ITERATIONS = 3
+EXACT_MAX_VALUES = 5_000_000  # time steps x points up to which the exact solver is chosen
+GRAM_MAX_STEPS = 8_000  # the Gram matrix's eigendecomposition costs steps^3
+BLOCK_MAX_BYTES = 64e6  # float32 bytes of one block as read
+BYTES_PER_BLOCK_VALUE = 28  # read pieces + joined block (float32) + float64 working copies
 
 
 @dataclass
@@ -51,6 +78,149 @@ class PointCounts:
     notes: list[str] = field(default_factory=list)
 
 
+@dataclass(frozen=True)
+class SolverPlan:
+    """Which solver runs, why, and (for the streaming ones) how many latitude rows a block holds."""
+
+    method: str
+    reason: str
+    lat_rows: int | None = None
+
+    @property
+    def passes(self) -> int:
+        return {"exact": 1, "gram": 2, "randomized": 2 + POWER_ITERATIONS}[self.method]
+
+
+def _size(nbytes: float) -> str:
+    return f"{nbytes / 1e9:.2f} GB" if nbytes >= 1e8 else f"{nbytes / 1e6:.0f} MB"
+
+
+def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: int, workers: int) -> SolverPlan:
+    """Choose the solver for a ``(time, lat, lon)`` field and a memory budget in bytes.
+
+    ``auto`` takes ``exact`` for small matrices that fit, ``gram`` while the
+    time x time matrix is small, and ``randomized`` beyond.
+    """
+    steps, nlat, nlon = shape
+    points = nlat * nlon
+    exact_bytes = 3 * steps * points * 8 + steps * min(steps, points) * 8
+    gram_bytes = (workers + 3) * steps * steps * 8
+    rank = min(count + OVERSAMPLING, steps, points)
+    randomized_bytes = 3 * points * rank * 8 + (workers + 2) * steps * rank * 8
+    shape_text = f"{steps} steps x {points} points ({_size(steps * points * 4)} in float32)"
+    if method == "auto":
+        if steps * points <= EXACT_MAX_VALUES and exact_bytes <= budget:
+            method, why = "exact", f"{shape_text} is small: the whole matrix fits in memory"
+        elif steps <= GRAM_MAX_STEPS and gram_bytes <= budget / 2:
+            method, why = "gram", f"{shape_text}; its {steps} x {steps} Gram matrix ({_size(steps**2 * 8)}) is small"
+        else:
+            method, why = "randomized", f"{shape_text} is large in both dimensions"
+    else:
+        why = f"{shape_text}; chosen in the config (modes.method)"
+    if method == "exact":
+        if exact_bytes > budget:
+            raise UserError(f"modes.method: exact needs about {_size(exact_bytes)} for {shape_text}, more than "
+                            f"compute.memory ({_size(budget)}); use method auto or gram, or raise compute.memory")
+        return SolverPlan("exact", why)
+    fixed = gram_bytes if method == "gram" else randomized_bytes
+    room = 0.7 * budget - fixed
+    per_row = workers * BYTES_PER_BLOCK_VALUE * steps * nlon
+    if room < per_row:
+        need = (fixed + per_row) / 0.7
+        raise UserError(f"compute.memory: {_size(budget)} is too small for the {method} solver on {shape_text}; "
+                        f"give at least {_size(need)}")
+    rows = int(min(room // per_row, BLOCK_MAX_BYTES // (4 * steps * nlon) or 1, nlat))
+    rows = max(rows, 1)
+    blocks = -(-nlat // rows)
+    why += f"; {blocks} block(s) of {rows} latitude rows within compute.memory {_size(budget)}"
+    return SolverPlan(method, why, rows)
+
+
+# --- the shared block arithmetic
+
+
+def prepare_block(values: np.ndarray, max_missing: float) -> tuple[np.ndarray, np.ndarray]:
+    """Apply the missing-data rule to a ``(time, point)`` block and centre it.
+
+    Returns the float64 anomaly block (missing values set to zero, then
+    centred; unusable points all zero) and each point's missing fraction.
+    """
+    block = np.array(values, dtype=np.float64).reshape(values.shape[0], -1)  # a copy: never change the input
+    missing = np.isnan(block)
+    fraction = missing.mean(axis=0)
+    keep = usable_points(fraction, max_missing)
+    block[missing] = 0.0
+    block -= block.mean(axis=0)
+    block[:, ~keep] = 0.0
+    return block, fraction
+
+
+def _quietly(function: Callable) -> Callable:
+    """Run ``function`` with 0/0 warnings silenced: all-missing points make them on the way."""
+
+    def wrapped(*args):
+        with warnings.catch_warnings(), np.errstate(invalid="ignore", divide="ignore"):
+            warnings.simplefilter("ignore", RuntimeWarning)
+            return function(*args)
+
+    return wrapped
+
+
+def _gram_part(values, weights, max_missing):
+    block, fraction = prepare_block(values, max_missing)
+    weighted = block * weights
+    gram = scipy.linalg.blas.dsyrk(1.0, weighted.T, trans=1)  # upper triangle of X X^T, float64, no copy
+    return gram, float(np.sum(weighted**2)), [fraction]
+
+
+def _range_part(values, weights, max_missing, omega):
+    block, fraction = prepare_block(values, max_missing)
+    weighted = block * weights
+    return weighted @ omega, float(np.sum(weighted**2)), [fraction]
+
+
+def _power_part(values, weights, max_missing, basis):
+    block, _ = prepare_block(values, max_missing)
+    weighted = block * weights
+    return weighted @ (weighted.T @ basis)
+
+
+def _regression_part(values, max_missing, series):
+    block, fraction = prepare_block(values, max_missing)
+    maps = block.T @ series
+    maps[~usable_points(fraction, max_missing)] = np.nan
+    return maps
+
+
+def _add(a, b):
+    if isinstance(a, tuple):
+        return tuple(x + y for x, y in zip(a, b))
+    return a + b
+
+
+def _tree_sum(parts: list):
+    """Pairwise sums as a dask graph: memory for a few partial sums, not for all of them."""
+    while len(parts) > 1:
+        paired = [dask.delayed(_add)(a, b) for a, b in zip(parts[::2], parts[1::2])]
+        parts = paired + (parts[-1:] if len(parts) % 2 else [])
+    return parts[0]
+
+
+def _blocks(anomaly: xr.DataArray) -> list:
+    """The field as delayed ``(time, lat rows, lon)`` blocks, all time steps in each."""
+    data = anomaly.data.rechunk({0: -1, 2: -1})
+    return list(data.to_delayed().ravel())
+
+
+def _row_slices(anomaly: xr.DataArray) -> list[slice]:
+    starts = np.cumsum((0,) + anomaly.data.rechunk({0: -1, 2: -1}).chunks[1])
+    nlon = anomaly.sizes["lon"]
+    return [slice(a * nlon, b * nlon) for a, b in zip(starts[:-1], starts[1:])]
+
+
+# --- the solvers
+
+
 def exact_modes(anomaly: np.ndarray, weights: np.ndarray, count: int) -> Decomposition:
     """The ``count`` leading modes by a full LAPACK SVD (``gesdd``) of the weighted matrix.
 
@@ -68,15 +238,91 @@ def exact_modes(anomaly: np.ndarray, weights: np.ndarray, count: int) -> Decompo
     u, s, _ = scipy.linalg.svd(weighted, full_matrices=False, lapack_driver="gesdd", check_finite=False)
     spectrum = s**2 / n
     pcs = u[:, :count] * np.sqrt(n)
-    patterns = anomaly.T @ pcs / n
     return Decomposition(
         eigenvalues=spectrum[:count],
         pcs=pcs,
-        patterns=patterns,
+        patterns=anomaly.T @ pcs / n,
         total_variance=float(np.sum(weighted**2) / n),
         next_eigenvalue=float(spectrum[count]) if spectrum.size > count else 0.0,
         method="exact: LAPACK gesdd SVD of the in-memory weighted (time x point) matrix",
     )
+
+
+def _exact(anomaly, weights, count, max_missing, progress):
+    with progress("reading the field (1 pass)"):
+        values = _quietly(lambda: anomaly.values)()
+    block, fraction = prepare_block(values, max_missing)
+    _check_points(fraction, max_missing, count)
+    keep = usable_points(fraction, max_missing)
+    result = exact_modes(block[:, keep], weights[keep], count)
+    patterns = np.full((keep.size, result.patterns.shape[1]), np.nan)
+    patterns[keep] = result.patterns
+    result.patterns = patterns
+    return result, fraction
+
+
+def _gram(anomaly, weights, count, max_missing, progress):
+    n = anomaly.sizes["time"] - 1
+    blocks, rows = _blocks(anomaly), _row_slices(anomaly)
+    parts = [dask.delayed(_quietly(_gram_part))(b, weights[r], max_missing) for b, r in zip(blocks, rows)]
+    with progress("pass 1 of 2: time x time cross-products"):
+        upper, total, fractions = dask.compute(_tree_sum(parts))[0]
+    fraction = np.concatenate(fractions)
+    _check_points(fraction, max_missing, count)
+    steps = n + 1
+    wanted = min(count + 1, steps)  # the modes and the next eigenvalue, for North's rule
+    values, vectors = scipy.linalg.eigh(upper, lower=False, subset_by_index=[steps - wanted, steps - 1],
+                                        driver="evr", check_finite=False)
+    values, vectors = np.clip(values[::-1], 0, None), vectors[:, ::-1]
+    pcs = vectors[:, :count] * np.sqrt(n)
+    with progress("pass 2 of 2: EOF maps"):
+        maps = dask.compute(*[dask.delayed(_quietly(_regression_part))(b, max_missing, pcs) for b in blocks])
+    result = Decomposition(
+        eigenvalues=values[:count] / n,
+        pcs=pcs,
+        patterns=np.concatenate(maps) / n,
+        total_variance=total / n,
+        next_eigenvalue=float(values[count] / n) if values.size > count else 0.0,
+        method="gram: eigendecomposition of the float64 time x time cross-product, streamed over grid blocks",
+    )
+    return result, fraction
+
+
+def _randomized(anomaly, weights, count, max_missing, progress, seed):
+    n = anomaly.sizes["time"] - 1
+    blocks, rows = _blocks(anomaly), _row_slices(anomaly)
+    rank = min(count + OVERSAMPLING, n + 1, weights.size)
+    omega = np.random.default_rng(seed).standard_normal((weights.size, rank))
+    passes = 2 + POWER_ITERATIONS
+    parts = [dask.delayed(_quietly(_range_part))(b, weights[r], max_missing, omega[r]) for b, r in zip(blocks, rows)]
+    with progress(f"pass 1 of {passes}: random projection"):
+        sample, total, fractions = dask.compute(_tree_sum(parts))[0]
+    fraction = np.concatenate(fractions)
+    _check_points(fraction, max_missing, count)
+    for q in range(POWER_ITERATIONS):
+        basis = np.linalg.qr(sample)[0]
+        parts = [dask.delayed(_quietly(_power_part))(b, weights[r], max_missing, basis) for b, r in zip(blocks, rows)]
+        with progress(f"pass {q + 2} of {passes}: power iteration"):
+            sample = dask.compute(_tree_sum(parts))[0]
+    basis = np.linalg.qr(sample)[0]
+    with progress(f"pass {passes} of {passes}: projection onto the range"):
+        projected = np.concatenate(dask.compute(*[dask.delayed(_quietly(_regression_part))(b, max_missing, basis)
+                                                  for b in blocks]))
+    keep = usable_points(fraction, max_missing)
+    small = np.where(keep[:, None], projected, 0.0) * weights[:, None]  # (X^T Q): points x rank
+    _, s, right = np.linalg.svd(small, full_matrices=False)
+    rotation = right.T  # X ~= (Q R) S P^T with R = right.T
+    pcs = basis @ rotation[:, :count] * np.sqrt(n)
+    result = Decomposition(
+        eigenvalues=s[:count] ** 2 / n,
+        pcs=pcs,
+        patterns=projected @ rotation[:, :count] / np.sqrt(n),
+        total_variance=total / n,
+        next_eigenvalue=float(s[count] ** 2 / n) if s.size > count else 0.0,
+        method=(f"randomized: range finder with {OVERSAMPLING} extra vectors and {POWER_ITERATIONS} power iterations "
+                f"(Halko et al. 2011), seed {seed}, streamed over grid blocks"),
+    )
+    return result, fraction
 
 
 def sign_rule(patterns: np.ndarray, lat: np.ndarray, lon: np.ndarray) -> np.ndarray:
@@ -91,62 +337,71 @@ def sign_rule(patterns: np.ndarray, lat: np.ndarray, lon: np.ndarray) -> np.ndar
     Parameters
     ----------
     patterns
-        ``(point, mode)`` EOF maps.
+        ``(point, mode)`` EOF maps; NaN at unused points.
     lat, lon
         ``(point,)`` coordinates of the points.
     """
     signs = np.ones(patterns.shape[1])
     for k in range(patterns.shape[1]):
-        size = np.abs(patterns[:, k])
+        size = np.nan_to_num(np.abs(patterns[:, k]), nan=-1.0)
         near_top = np.flatnonzero(size >= size.max() * (1 - 1e-6))
         first = near_top[np.lexsort((lon[near_top] % 360, lat[near_top]))[0]]
         signs[k] = 1.0 if patterns[first, k] >= 0 else -1.0
     return signs
 
 
-def load_matrix(anomaly: xr.DataArray, max_missing: float) -> tuple[np.ndarray, np.ndarray, PointCounts]:
-    """Read the prepared field into a centred ``(time, point)`` matrix of usable points.
-
-    This is where the data are read: the one ``compute`` of the run.
-
-    Returns
-    -------
-    matrix, keep, counts
-        The matrix of usable points (missing anomalies set to zero, then
-        centred), the boolean mask of usable points over the flattened grid,
-        and the counts of the missing-data rule.
-    """
-    with warnings.catch_warnings():  # all-missing points divide 0 by 0 on the way; they are dropped below
-        warnings.simplefilter("ignore", RuntimeWarning)
-        values = np.asarray(anomaly.values, dtype=np.float64).reshape(anomaly.sizes["time"], -1)
-    missing = np.isnan(values)
-    fraction = missing.mean(axis=0)
+def _check_points(fraction: np.ndarray, max_missing: float, count: int) -> None:
+    """Stop before any more work if too few points have data."""
     keep = usable_points(fraction, max_missing)
+    if not keep.any():
+        raise UserError("select: no grid point has enough data "
+                        f"({np.sum(fraction == 1)} missing at every step, {np.sum((fraction < 1) & ~keep)} at more "
+                        f"than prepare.max_missing={max_missing:g} of the steps); widen the region or raise max_missing")
+    if keep.sum() < count:
+        raise UserError(f"modes.count: {count} modes asked for, but only {keep.sum()} grid points have data; "
+                        "lower modes.count or widen the region")
+
+
+def _counts(fraction: np.ndarray, max_missing: float, steps: int) -> PointCounts:
+    keep = usable_points(fraction, max_missing)
+    steps_missing = fraction[keep]
     counts = PointCounts(
-        grid=values.shape[1],
+        grid=fraction.size,
         used=int(keep.sum()),
         always_missing=int(np.sum(fraction == 1)),
         too_often_missing=int(np.sum((fraction < 1) & ~keep)),
-        filled_values=int(missing[:, keep].sum()),
+        filled_values=int(round(float(np.sum(steps_missing)) * steps)),
     )
-    if counts.used == 0:
-        raise UserError("select: no grid point has enough data "
-                        f"({counts.always_missing} missing at every step, {counts.too_often_missing} at more than "
-                        f"prepare.max_missing={max_missing:g} of the steps); widen the region or raise max_missing")
-    matrix = np.where(missing[:, keep], 0.0, values[:, keep])
-    matrix -= matrix.mean(axis=0)
     if counts.too_often_missing:
         counts.notes.append(f"dropped {counts.too_often_missing} points missing at more than "
                             f"{max_missing:.0%} of the steps")
-    if counts.filled_values:
-        counts.notes.append(f"set {counts.filled_values} missing values at {np.sum(missing[:, keep].any(0))} "
-                            "points to zero anomaly")
-    return matrix, keep, counts
+    gappy = int(np.sum(steps_missing > 0))
+    if gappy:
+        counts.notes.append(f"set {counts.filled_values} missing values at {gappy} points to zero anomaly")
+    return counts
 
 
-def solve(anomaly: xr.DataArray, weights: xr.DataArray, count: int, max_missing: float
-          ) -> tuple[xr.Dataset, Decomposition, PointCounts]:
+def solve(anomaly: xr.DataArray, weights: xr.DataArray, count: int, max_missing: float,
+          plan: SolverPlan = SolverPlan("exact", "default"), seed: int = 0,
+          progress: Callable[[str], ContextManager] | None = None) -> tuple[xr.Dataset, Decomposition, PointCounts]:
     """Decompose a prepared ``(time, lat, lon)`` field into its ``count`` leading modes.
+
+    Parameters
+    ----------
+    anomaly
+        The prepared field, lazy; for a streaming plan, chunked in latitude rows.
+    weights
+        ``(lat, lon)`` square-root area weights.
+    count
+        Number of modes.
+    max_missing
+        The missing-data rule's limit (see :func:`climodes.weights.usable_points`).
+    plan
+        From :func:`plan_solver`.
+    seed
+        Seed of the randomized solver.
+    progress
+        Progress bar factory, called with a label for each pass.
 
     Returns
     -------
@@ -154,30 +409,34 @@ def solve(anomaly: xr.DataArray, weights: xr.DataArray, count: int, max_missing:
         ``modes`` holds ``eof(mode, lat, lon)`` (NaN at unused points),
         ``pc(mode, time)``, ``eigenvalue(mode)`` and ``variance_explained(mode)``.
     """
-    matrix, keep, counts = load_matrix(anomaly, max_missing)
-    if matrix.shape[1] < count:
-        raise UserError(f"modes.count: {count} modes asked for, but only {matrix.shape[1]} grid points have data; "
-                        "lower modes.count or widen the region")
-    lat2d, lon2d = xr.broadcast(anomaly["lat"], anomaly["lon"])
-    w = weights.values.reshape(-1)[keep]
-    result = exact_modes(matrix, w, count)
+    progress = progress or (lambda label: contextlib.nullcontext())
+    w = np.asarray(weights.values, dtype=np.float64).reshape(-1)
+    if plan.method != "exact" and anomaly.chunks is None:
+        anomaly = anomaly.chunk({"lat": plan.lat_rows or -1})
+    if plan.method == "exact":
+        result, fraction = _exact(anomaly, w, count, max_missing, progress)
+    elif plan.method == "gram":
+        result, fraction = _gram(anomaly, w, count, max_missing, progress)
+    else:
+        result, fraction = _randomized(anomaly, w, count, max_missing, progress, seed)
+    counts = _counts(fraction, max_missing, anomaly.sizes["time"])
     if result.total_variance == 0 or result.eigenvalues[0] <= 1e-12 * max(result.total_variance, 1e-300):
         raise UserError("input.variable: the prepared field is constant in time at every point, "
                         "so it has no modes; check the variable and prepare settings")
-    signs = sign_rule(result.patterns, lat2d.values.reshape(-1)[keep], lon2d.values.reshape(-1)[keep])
+    lat2d, lon2d = (c.values.reshape(-1) for c in xr.broadcast(anomaly["lat"], anomaly["lon"]))
+    signs = sign_rule(result.patterns, lat2d, lon2d)
     result.pcs *= signs
     result.patterns *= signs
 
-    maps = np.full((count, keep.size), np.nan)
-    maps[:, keep] = result.patterns.T
-    mode = xr.DataArray(np.arange(1, count + 1), dims="mode")
+    maps = result.patterns.T.reshape(count, anomaly.sizes["lat"], anomaly.sizes["lon"])
     modes = xr.Dataset(
         {
-            "eof": (("mode", "lat", "lon"), maps.reshape(count, anomaly.sizes["lat"], anomaly.sizes["lon"])),
+            "eof": (("mode", "lat", "lon"), maps),
             "pc": (("mode", "time"), result.pcs.T),
             "eigenvalue": ("mode", result.eigenvalues),
             "variance_explained": ("mode", result.eigenvalues / result.total_variance),
         },
-        coords={"mode": mode, "time": anomaly["time"], "lat": anomaly["lat"], "lon": anomaly["lon"]},
+        coords={"mode": np.arange(1, count + 1), "time": anomaly["time"], "lat": anomaly["lat"],
+                "lon": anomaly["lon"]},
     )
     return modes, result, counts

@@ -1,0 +1,53 @@
+"""Where dask runs the work, and what the user sees while it does.
+
+``threads`` (the default) suits numpy work that releases the GIL; ``processes``
+isolates workers; ``synchronous`` runs everything in the calling thread, for
+debugging.  A batch job on a shared cluster runs ``climodes run`` inside its
+allocation with ``compute.workers`` set to the cores it was given.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import sys
+from typing import Callable, ContextManager, Iterator
+
+import dask
+from dask.diagnostics import ProgressBar
+
+from climodes.config import ComputeSection
+
+
+def worker_count(spec: ComputeSection) -> int:
+    """The number of workers ``spec`` asks for (``auto``: the cores this process may use)."""
+    if spec.workers != "auto":
+        return int(spec.workers)
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # not every platform has affinity
+        return max(1, os.cpu_count() or 1)
+
+
+@contextlib.contextmanager
+def dask_settings(spec: ComputeSection) -> Iterator[None]:
+    """Run the enclosed computations on ``spec``'s scheduler with its worker count."""
+    with dask.config.set(scheduler=spec.scheduler, num_workers=worker_count(spec)):
+        yield
+
+
+def progress_reporter(enabled: bool) -> Callable[[str], ContextManager]:
+    """A factory of progress bars, one per pass over the data, drawn on stderr when ``enabled``."""
+
+    def report(label: str) -> ContextManager:
+        if not enabled:
+            return contextlib.nullcontext()
+        print(label, file=sys.stderr)
+        return ProgressBar(minimum=0.5, width=40, out=sys.stderr)
+
+    return report
+
+
+def show_progress(quiet: bool) -> bool:
+    """Progress bars go to a terminal only, and never with ``--quiet``."""
+    return not quiet and sys.stderr.isatty()

@@ -1,0 +1,132 @@
+"""The streaming solvers: the same modes as the exact one, whatever the blocks, workers or
+scheduler, within a memory plan, and in as few reads as the algorithm needs.
+
+References: the exact LAPACK SVD (checked against eofs and scikit-learn in test_solvers.py) and
+Halko, Martinsson and Tropp (2011, SIAM Review 53(2)) for what a randomized range finder with power
+iterations achieves on a matrix with a decaying spectrum.
+"""
+
+import dask
+import numpy as np
+import pytest
+import xarray as xr
+
+from climodes.errors import UserError
+from climodes.solvers import SolverPlan, plan_solver, solve
+from climodes.weights import area_weights
+from conftest import field_dataset, red_field, write_config
+
+K = 3
+
+
+@pytest.fixture(scope="module")
+def field():
+    lat = np.linspace(-80, 80, 33)
+    lon = np.arange(0, 360, 7.5)
+    values = red_field((150, lat.size, lon.size), 21).astype(np.float32)  # float32, as archives store it
+    values[:, 10:14, 5:12] = np.nan  # land
+    values[::9, 20, 30] = np.nan  # a gappy point, filled
+    values[::3, 22, 31] = np.nan  # too gappy: dropped
+    return xr.DataArray(values, dims=("time", "lat", "lon"),
+                        coords={"time": np.arange(150), "lat": lat, "lon": lon})
+
+
+def _solve(field, method, rows=None, seed=0):
+    data = field.chunk({"lat": rows or -1, "time": -1})
+    weights = area_weights(field["lat"], field["lon"], "coslat")
+    return solve(data, weights, K, 0.2, SolverPlan(method, "test", rows), seed)
+
+
+@pytest.fixture(scope="module")
+def exact(field):
+    return _solve(field, "exact")
+
+
+def _close(a: xr.Dataset, b: xr.Dataset, rtol: float) -> None:
+    np.testing.assert_allclose(a["eigenvalue"], b["eigenvalue"], rtol=rtol)
+    np.testing.assert_allclose(a["variance_explained"], b["variance_explained"], rtol=rtol)
+    scale = np.nanmax(np.abs(b["eof"].values))
+    np.testing.assert_allclose(a["eof"].values, b["eof"].values, rtol=0, atol=rtol * scale)  # NaN where b has NaN
+    np.testing.assert_allclose(a["pc"].values, b["pc"].values, rtol=0, atol=rtol * 10)
+
+
+@pytest.mark.parametrize("rows", [1, 4, 33])
+def test_gram_equals_exact_whatever_the_blocks(field, exact, rows):
+    modes, result, counts = _solve(field, "gram", rows)
+    _close(modes, exact[0], 1e-8)
+    assert counts == exact[2]
+    assert result.method.startswith("gram")
+
+
+@pytest.mark.parametrize("scheduler, workers", [("synchronous", 1), ("threads", 1), ("threads", 2),
+                                                ("processes", 2)])
+def test_gram_equals_exact_whatever_the_scheduler(field, exact, scheduler, workers):
+    with dask.config.set(scheduler=scheduler, num_workers=workers):
+        modes, _, _ = _solve(field, "gram", 5)
+    _close(modes, exact[0], 1e-8)
+
+
+def test_randomized_is_within_its_stated_tolerance(field, exact):
+    """Stated tolerance: 1e-6 relative on eigenvalues and maps of well-separated leading modes."""
+    modes, result, _ = _solve(field, "randomized", 6)
+    _close(modes, exact[0], 1e-6)
+    assert "seed 0" in result.method
+
+
+def test_randomized_does_not_depend_on_blocks_or_threads(field):
+    one, _, _ = _solve(field, "randomized", 3, seed=5)
+    with dask.config.set(scheduler="threads", num_workers=2):
+        two, _, _ = _solve(field, "randomized", 11, seed=5)
+    _close(one, two, 1e-10)
+
+
+def test_the_input_array_is_not_changed(field):
+    before = field.values.copy()
+    for method in ("exact", "gram", "randomized"):
+        _solve(field, method, 8)
+    np.testing.assert_array_equal(field.values, before)
+
+
+@pytest.mark.parametrize("shape, budget, expected", [
+    ((120, 20, 30), 4e9, "exact"),
+    ((720, 181, 360), 4e9, "gram"),
+    ((3650, 361, 720), 2e9, "gram"),
+    ((20000, 721, 1440), 4e9, "randomized"),
+])
+def test_auto_choice(shape, budget, expected):
+    plan = plan_solver(shape, 10, "auto", int(budget), 2)
+    assert plan.method == expected
+    if expected != "exact":
+        steps, nlat, nlon = shape
+        block_bytes = plan.lat_rows * nlon * steps * 4
+        one_row = nlon * steps * 4
+        assert block_bytes <= max(64e6, one_row)  # blocks are at most 64 MB, or one latitude row
+        assert 2 * 28 / 4 * block_bytes < budget  # two workers' blocks in flight fit the budget
+
+
+def test_a_budget_too_small_is_a_clear_error():
+    with pytest.raises(UserError, match="compute.memory: .* is too small for the gram solver"):
+        plan_solver((3650, 361, 720), 10, "gram", int(60e6), 2)
+    with pytest.raises(UserError, match="modes.method: exact needs about"):
+        plan_solver((3650, 361, 720), 10, "exact", int(2e9), 2)
+
+
+@pytest.mark.parametrize("method, passes", [("exact", 1), ("gram", 2), ("randomized", 5)])
+def test_reads_per_solver(tmp_path, cli, values_read, method, passes):
+    """Count the values read from the files: one pass per pass of the algorithm, no more."""
+    lat = np.linspace(-60, 60, 25)
+    lon = np.arange(0, 360, 10.0)
+    paths = []
+    for part in range(3):
+        time = xr.date_range(f"{1990 + 4 * part}-01-01", periods=48, freq="MS")
+        path = tmp_path / f"f{part}.nc"
+        field_dataset(red_field((48, lat.size, lon.size), part).astype(np.float32), lat, lon, time=time).to_netcdf(path)
+        paths.append(path)
+    config = write_config(tmp_path, paths, modes={"count": 3, "method": method}, compute={"memory": "60MB"},
+                          prepare={"detrend": "linear"})
+    code, out, err = cli("run", config)
+    assert code == 0, err
+    assert values_read["values"] == passes * 144 * lat.size * lon.size
+    ds = xr.open_dataset(tmp_path / "out" / "modes.nc")
+    assert ds.attrs["climodes_method"].startswith(method)
+    assert "chosen because" in ds.attrs["climodes_method"]
