@@ -23,3 +23,6 @@ test: $(STAMP)
 
 clean:
 	rm -rf $(VENV) results build src/*.egg-info demo_fields/*.nc
+
+bench: $(STAMP)
+	$(BIN)/python benchmarks/run.py

@@ -67,9 +67,9 @@ def test_gram_equals_exact_whatever_the_scheduler(field, exact, scheduler, worke
 
 
 def test_randomized_is_within_its_stated_tolerance(field, exact):
-    """Stated tolerance: 1e-6 relative on eigenvalues and maps of well-separated leading modes."""
+    """Stated tolerance: 1e-4 relative on eigenvalues, maps and PCs of well-separated leading modes."""
     modes, result, _ = _solve(field, "randomized", 6)
-    _close(modes, exact[0], 1e-6)
+    _close(modes, exact[0], 1e-4)
     assert "seed 0" in result.method
 
 
@@ -100,7 +100,8 @@ def test_auto_choice(shape, budget, expected):
         steps, nlat, nlon = shape
         block_bytes = plan.lat_rows * nlon * steps * 4
         one_row = nlon * steps * 4
-        assert block_bytes <= max(64e6, one_row)  # blocks are at most 64 MB, or one latitude row
+        assert block_bytes <= max(128e6, one_row)  # blocks are at most 128 MB, or one latitude row
+        assert -(-nlat // plan.lat_rows) >= 8  # at least 4 blocks a worker
         assert 2 * 28 / 4 * block_bytes < budget  # two workers' blocks in flight fit the budget
 
 

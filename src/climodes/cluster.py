@@ -14,7 +14,7 @@ import sys
 from typing import Callable, ContextManager, Iterator
 
 import dask
-from dask.diagnostics import ProgressBar
+from threadpoolctl import threadpool_limits
 
 from climodes.config import ComputeSection
 
@@ -36,16 +36,23 @@ def dask_settings(spec: ComputeSection) -> Iterator[None]:
         yield
 
 
-def progress_reporter(enabled: bool) -> Callable[[str], ContextManager]:
-    """A factory of progress bars, one per pass over the data, drawn on stderr when ``enabled``."""
+def pass_context(progress: bool, workers: int) -> Callable[[str], ContextManager]:
+    """What surrounds each pass over the data: a progress bar on stderr (when ``progress``), and BLAS
+    limited to its share of the cores, since the dask workers already run blocks side by side."""
+    cores = worker_count(ComputeSection())
 
-    def report(label: str) -> ContextManager:
-        if not enabled:
-            return contextlib.nullcontext()
-        print(label, file=sys.stderr)
-        return ProgressBar(minimum=0.5, width=40, out=sys.stderr)
+    @contextlib.contextmanager
+    def during(label: str) -> Iterator[None]:
+        with contextlib.ExitStack() as stack:
+            stack.enter_context(threadpool_limits(max(1, cores // max(workers, 1)), user_api="blas"))
+            if progress:
+                from dask.diagnostics import ProgressBar
 
-    return report
+                print(label, file=sys.stderr)
+                stack.enter_context(ProgressBar(minimum=0.5, width=40, out=sys.stderr))
+            yield
+
+    return during
 
 
 def show_progress(quiet: bool) -> bool:

@@ -12,6 +12,7 @@ Axes are found from CF attributes first (``axis``, ``standard_name``,
 
 from __future__ import annotations
 
+import dataclasses
 import glob
 import os
 from dataclasses import dataclass, field
@@ -49,6 +50,7 @@ class OpenedField:
     files: list[InputFile]
     names: dict[str, str]
     time_encoding: dict = field(default_factory=dict)
+    pieces: list[xr.DataArray] = field(default_factory=list)  # each file's lazy array, in time order
     notes: list[str] = field(default_factory=list)
 
 
@@ -121,7 +123,7 @@ def find_axes(da: xr.DataArray, where: str) -> dict[str, str]:
 
 def _open_one(path: str, variable: str) -> tuple[xr.DataArray, xr.Dataset]:
     try:
-        ds = xr.open_dataset(path, decode_timedelta=False)
+        ds = xr.open_dataset(path, engine="netcdf4", decode_timedelta=False)
     except Exception as err:  # netCDF4, h5py and xarray each raise their own types
         reason = str(err).splitlines()[0] if str(err) else type(err).__name__
         raise UserError(f"{path}: cannot be read as NetCDF ({reason}); check that the file is complete") from None
@@ -134,16 +136,13 @@ def _open_one(path: str, variable: str) -> tuple[xr.DataArray, xr.Dataset]:
     return da, ds
 
 
-def open_field(spec: InputSection, chunks: dict[str, int] | None = None) -> OpenedField:
+def open_field(spec: InputSection) -> OpenedField:
     """Open ``spec.variable`` from every file of ``spec.paths`` as one lazy field.
 
     Files are ordered by their first time step; their grids must agree and
-    their time steps must not overlap.  ``chunks`` (axis to length, -1 for
-    whole) overrides ``spec.chunks``: the streaming solvers read blocks of
-    latitude rows with every time step, and the blocks must be cut as the
-    files are opened, since cutting a dask chunk later still reads all of it.
+    their time steps must not overlap.  The field is chunked as
+    ``spec.chunks`` says; :func:`rechunked` cuts it otherwise.
     """
-    chunks = spec.chunks if chunks is None else chunks
     paths = expand_paths(spec.paths)
     pieces = []
     names: dict[str, str] = {}
@@ -155,7 +154,6 @@ def open_field(spec: InputSection, chunks: dict[str, int] | None = None) -> Open
         names = axes
         da = da.squeeze([d for d in da.dims if d not in axes.values()], drop=True)
         da = da.rename({v: k for k, v in axes.items()}).transpose("time", "lat", "lon")
-        da = da.chunk({axis: chunks.get(axis, -1) for axis in ("time", "lat", "lon")})  # lazy from here on
         pieces.append((path, da, ds[axes["time"]].encoding))
     pieces.sort(key=lambda p: p[1]["time"].values[0])
     for (path_a, a, _), (path_b, b, _) in zip(pieces, pieces[1:]):
@@ -165,18 +163,29 @@ def open_field(spec: InputSection, chunks: dict[str, int] | None = None) -> Open
                                 "regrid the files to one grid")
         if b["time"].values[0] <= a["time"].values[-1]:
             raise UserError(f"{path_b}: its time steps overlap those of {path_a}; remove the duplicate steps")
-    data = xr.concat([p[1] for p in pieces], dim="time", coords="minimal", compat="override", join="override")
     files = [InputFile(str(Path(p).resolve()), os.stat(p).st_size, os.stat(p).st_mtime) for p in paths]
-    opened = OpenedField(data, files, names, {k: v for k, v in pieces[0][2].items() if k in ("units", "calendar")})
-    _drop_repeated_longitude(opened)
-    return opened
+    encoding = {k: v for k, v in pieces[0][2].items() if k in ("units", "calendar", "dtype")}
+    opened = OpenedField(xr.DataArray(), files, names, encoding, pieces=[p[1] for p in pieces])
+    return rechunked(opened, spec.chunks)
 
 
-def _drop_repeated_longitude(opened: OpenedField) -> None:
-    lon = opened.data["lon"].values
+def rechunked(opened: OpenedField, chunks: dict[str, int]) -> OpenedField:
+    """The same field with dask chunks of ``chunks`` (axis to length; -1 or absent: whole).
+
+    Chunks are cut on each file's lazy array before the files are joined, so a
+    chunk reads only its own part of a file; cutting a dask chunk afterwards
+    would still read all of it.  The streaming solvers use this for their
+    blocks of latitude rows with every time step.
+    """
+    sizes = {axis: chunks.get(axis, -1) for axis in ("time", "lat", "lon")}
+    data = xr.concat([piece.chunk(sizes) for piece in opened.pieces], dim="time", coords="minimal",
+                     compat="override", join="override")
+    notes = []
+    lon = data["lon"].values
     if lon.size > 2 and np.isclose((lon[-1] - lon[0]) % 360, 0) and not np.isclose(lon[-1], lon[0]):
-        opened.data = opened.data.isel(lon=slice(0, -1))
-        opened.notes.append(f"dropped longitude {lon[-1]:g}: it repeats {lon[0]:g} on a global grid")
+        data = data.isel(lon=slice(0, -1))
+        notes.append(f"dropped longitude {lon[-1]:g}: it repeats {lon[0]:g} on a global grid")
+    return dataclasses.replace(opened, data=data, notes=notes)
 
 
 def select(opened: OpenedField, spec: SelectSection) -> xr.DataArray:

@@ -19,7 +19,6 @@ from pathlib import Path
 from typing import Iterator
 
 import numpy as np
-import pyproj
 import xarray as xr
 
 from climodes import __version__
@@ -113,6 +112,8 @@ def results_dataset(modes: xr.Dataset, opened: OpenedField, spec: RunSpec, extra
         "flag_values": np.array([0, 1], dtype=np.int8),
         "flag_meanings": "mixed_with_a_neighbour separated",
     }
+    import pyproj
+
     ds["crs"] = xr.DataArray(np.int32(0), attrs=pyproj.CRS("EPSG:4326").to_cf())
     ds = ds.rename({k: v for k, v in opened.names.items() if k != v})
     ds.attrs = provenance(spec, opened, extra)

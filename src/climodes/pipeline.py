@@ -12,11 +12,11 @@ from typing import Callable
 
 import xarray as xr
 
-from climodes.cluster import dask_settings, progress_reporter, worker_count
+from climodes.cluster import dask_settings, pass_context, worker_count
 from climodes.config import RunSpec, memory_bytes
 from climodes.diagnostics import effective_sample_size, north_errors, separated
 from climodes.errors import UserError
-from climodes.fields import OpenedField, open_field, select
+from climodes.fields import OpenedField, open_field, rechunked, select
 from climodes.output import (
     check_geotiff_grid,
     check_output_dir,
@@ -43,12 +43,11 @@ class RunSummary:
         return "\n".join([self.headline, *self.table])
 
 
-def _prepared(spec: RunSpec, chunks: dict | None = None) -> tuple[OpenedField, xr.DataArray, list[str]]:
-    """Open, select and prepare the field, lazily: only coordinates are read."""
-    opened = open_field(spec.input, chunks)
+def _prepared(spec: RunSpec, opened: OpenedField) -> tuple[xr.DataArray, list[str]]:
+    """Select and prepare the opened field, lazily: only coordinates are read."""
     notes = list(opened.notes)
     anomaly = prepare(select(opened, spec.select), spec.prepare, spec.select.months, notes)
-    return opened, anomaly, notes
+    return anomaly, notes
 
 
 def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress: bool = False) -> RunSummary:
@@ -64,11 +63,13 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
         Draw a progress bar on stderr for each pass over the data.
     """
     check_output_dir(spec.output)
-    opened, anomaly, notes = _prepared(spec)
+    opened = open_field(spec.input)
+    anomaly, notes = _prepared(spec, opened)
     workers = worker_count(spec.compute)
     plan = plan_solver(anomaly.shape, spec.modes.count, spec.modes.method, memory_bytes(spec.compute.memory), workers)
     if plan.lat_rows:
-        opened, anomaly, notes = _prepared(spec, {"time": -1, "lat": plan.lat_rows, "lon": -1})
+        opened = rechunked(opened, {"time": -1, "lat": plan.lat_rows, "lon": -1})
+        anomaly, notes = _prepared(spec, opened)
     steps = anomaly.sizes["time"]
     if steps < spec.modes.count + 1:
         raise UserError(f"modes.count: {spec.modes.count} modes need at least {spec.modes.count + 1} time steps, "
@@ -78,7 +79,7 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
     weights = area_weights(anomaly["lat"], anomaly["lon"], spec.prepare.weighting)
     with dask_settings(spec.compute):
         modes, result, counts = solve(anomaly, weights, spec.modes.count, spec.prepare.max_missing, plan,
-                                      spec.modes.seed, progress_reporter(progress))
+                                      spec.modes.seed, pass_context(progress, workers))
     notes += counts.notes
     n_eff, n_eff_how = effective_sample_size(result.pcs, spec.modes.effective_sample_size)
     errors = north_errors(result.eigenvalues, n_eff)

@@ -8,6 +8,8 @@ coordinate is looked at in memory.
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 import xarray as xr
 
@@ -87,55 +89,105 @@ def _calendar_keys(time: xr.DataArray, per_year: float) -> tuple[np.ndarray, str
     return time.dt.dayofyear.values, "day of year"
 
 
+def _along_time(kernel, da: xr.DataArray, **kwargs) -> xr.DataArray:
+    """Apply a numpy ``kernel(values, **kwargs)`` that works along the first axis (time), lazily.
+
+    Each dask block holds every time step of some points (the time axis is
+    joined into one chunk), so anomalies, trends and standard deviations are
+    computed block by block in plain numpy, in the field's own dtype, on
+    C-ordered ``(time, lat, lon)`` blocks.
+    """
+    if da.dims[0] != "time":
+        raise ValueError("fields are (time, lat, lon) from climodes.fields on")
+    if da.chunks:
+        data = da.data.rechunk({0: -1}).map_blocks(kernel, dtype=da.dtype, **kwargs)
+    else:
+        data = kernel(np.asarray(da.values), **kwargs)
+    return da.copy(data=data)
+
+
+def _quiet_nanmean(values: np.ndarray) -> np.ndarray:
+    with warnings.catch_warnings():  # points missing at every step have no mean: NaN, as they should
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return np.nanmean(values, axis=0, keepdims=True)
+
+
+def _minus_group_means(values: np.ndarray, keys: np.ndarray, in_base: np.ndarray) -> np.ndarray:
+    """``values`` minus, at each step, the mean over the baseline steps with the same key (NaN skipped).
+
+    The baseline steps are sorted by key once, so the sums of all groups are a
+    single ``np.add.reduceat`` pass, however many groups (366 days of year) there are.
+    """
+    groups, group_of = np.unique(keys, return_inverse=True)
+    rows = np.flatnonzero(in_base)
+    rows = rows[np.argsort(group_of[rows], kind="stable")]
+    starts = np.searchsorted(group_of[rows], np.arange(groups.size))
+    base = values[rows]  # a copy, in the field's dtype
+    missing = np.isnan(base)
+    if missing.any():
+        base[missing] = 0
+        counts = np.add.reduceat((~missing).astype(values.dtype), starts, axis=0)
+    else:
+        counts = np.diff(np.append(starts, rows.size)).astype(values.dtype).reshape((-1,) + (1,) * (values.ndim - 1))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        means = np.add.reduceat(base, starts, axis=0) / counts
+    return values - means[group_of]
+
+
 def anomalies(da: xr.DataArray, how: str, baseline: list[str] | None) -> xr.DataArray:
     """Subtract the baseline climatology (``"climatology"``) or mean (``"mean"``).
 
     The climatology is per calendar month for monthly data, per day of year
     for daily data, and the plain mean for one step a year.  Missing values
-    are skipped in the means.  It is computed as a product with a (group x
-    time) indicator matrix, which keeps the dask graph to a few tasks a chunk.
+    are skipped in the means.
     """
     if how == "none":
         return da
-    base = da if baseline is None else da.sel(time=slice(*baseline))
-    if base.sizes["time"] == 0:
+    in_base = np.ones(da.sizes["time"], dtype=bool)
+    if baseline is not None:
+        in_base[:] = False
+        in_base[da["time"].to_index().slice_indexer(*baseline)] = True
+    if not in_base.any():
         raise UserError(f"prepare.baseline: {baseline} holds no time step of the selected data; "
                         "choose a baseline inside select.period")
     per_year = _steps_per_year(da["time"])
     if how == "mean" or per_year < 1.5:
-        return (da - base.mean("time")).assign_attrs(da.attrs)
-    keys, which = _calendar_keys(da["time"], per_year)
-    base_keys, _ = _calendar_keys(base["time"], per_year)
-    groups = np.unique(keys)
-    if missing := sorted(set(groups) - set(base_keys)):
-        raise UserError(f"prepare.baseline: {baseline} has no data for {which} {missing[0]}, "
-                        "so its climatology is undefined; lengthen the baseline")
-    indicator = xr.DataArray((base_keys[None, :] == groups[:, None]).astype(da.dtype), dims=("group", "time"),
-                             coords={"time": base["time"]})
-    totals = xr.dot(indicator, base.fillna(0), dim="time")
-    counts = xr.dot(indicator, base.notnull().astype(da.dtype), dim="time")
-    climatology = totals / counts.where(counts > 0)
-    per_step = climatology.isel(group=xr.DataArray(np.searchsorted(groups, keys), dims="time"))
-    per_step = per_step.chunk({"time": da.chunksizes.get("time", -1)}) if da.chunks else per_step
-    return (da - per_step.assign_coords(time=da["time"])).assign_attrs(da.attrs)
+        keys = np.zeros(da.sizes["time"], dtype=int)
+    else:
+        keys, which = _calendar_keys(da["time"], per_year)
+        if missing := sorted(set(keys) - set(keys[in_base])):
+            raise UserError(f"prepare.baseline: {baseline} has no data for {which} {missing[0]}, "
+                            "so its climatology is undefined; lengthen the baseline")
+    return _along_time(_minus_group_means, da, keys=keys, in_base=in_base)
+
+
+def _minus_line(values: np.ndarray, days: np.ndarray) -> np.ndarray:
+    days = days.reshape((-1,) + (1,) * (values.ndim - 1))
+    valid = ~np.isnan(values)
+    t = np.where(valid, days, np.nan)
+    t_mean = _quiet_nanmean(t)
+    x_mean = _quiet_nanmean(values)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        slope = np.nansum((t - t_mean) * (values - x_mean), axis=0, keepdims=True) / np.nansum(
+            (t - t_mean) ** 2, axis=0, keepdims=True)
+    return (values - x_mean - slope * (days - t_mean)).astype(values.dtype)
 
 
 def detrend_linear(da: xr.DataArray) -> xr.DataArray:
-    """Remove the least-squares straight line in time at each point, skipping missing steps."""
-    t = xr.DataArray(days_since_start(da["time"]), dims="time", coords={"time": da["time"]})
-    t = t.where(da.notnull())
-    t_mean = t.mean("time")
-    x_mean = da.mean("time")
-    slope = ((t - t_mean) * (da - x_mean)).sum("time") / ((t - t_mean) ** 2).sum("time")
-    full_t = xr.DataArray(days_since_start(da["time"]), dims="time", coords={"time": da["time"]})
-    return (da - (x_mean + slope * (full_t - t_mean))).assign_attrs(da.attrs)
+    """Remove the least-squares straight line in time (in days) at each point, skipping missing steps."""
+    return _along_time(_minus_line, da, days=days_since_start(da["time"]))
+
+
+def _scaled(values: np.ndarray) -> np.ndarray:
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        std = np.nanstd(values, axis=0, ddof=1, keepdims=True)
+    return values / np.where(std > 0, std, np.nan)
 
 
 def standardize(da: xr.DataArray) -> xr.DataArray:
     """Divide each point by its standard deviation in time; constant points become missing."""
-    std = da.std("time", ddof=1)
-    out = da / std.where(std > 0)
-    return out.assign_attrs({**da.attrs, "units": "1"})
+    return _along_time(_scaled, da).assign_attrs({**da.attrs, "units": "1"})
 
 
 def prepare(da: xr.DataArray, spec: PrepareSection, months: list[int] | None, notes: list[str]) -> xr.DataArray:

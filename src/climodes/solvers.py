@@ -15,7 +15,7 @@ Conventions (they are the results contract):
 
 Three solvers, one result:
 
-- ``exact``: LAPACK SVD of the whole matrix in memory, for small problems.
+- ``exact``: LAPACK SVD (gesdd) of the whole matrix in memory, for small problems.
 - ``gram``: the (time x time) cross-product ``X X^T`` summed block by block
   over grid points in float64, eigendecomposed, then the maps in a second pass:
   two passes over the data, memory ``O(n^2 + a block)``.
@@ -40,17 +40,17 @@ from typing import Callable, ContextManager
 
 import dask
 import numpy as np
-import scipy.linalg
 import xarray as xr
 
 from climodes.errors import UserError
 from climodes.weights import usable_points
 
 OVERSAMPLING = 10
-POWER_ITERATIONS = 3
+POWER_ITERATIONS = 2
 EXACT_MAX_VALUES = 5_000_000  # time steps x points up to which the exact solver is chosen
 GRAM_MAX_STEPS = 8_000  # the Gram matrix's eigendecomposition costs steps^3
-BLOCK_MAX_BYTES = 64e6  # float32 bytes of one block as read
+BLOCK_MAX_BYTES = 128e6  # float32 bytes of one block as read
+BLOCKS_PER_WORKER = 4  # at least, where the grid has the rows: keeps the workers evenly busy
 BYTES_PER_BLOCK_VALUE = 28  # read pieces + joined block (float32) + float64 working copies
 
 
@@ -129,7 +129,7 @@ def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: in
         need = (fixed + per_row) / 0.7
         raise UserError(f"compute.memory: {_size(budget)} is too small for the {method} solver on {shape_text}; "
                         f"give at least {_size(need)}")
-    rows = int(min(room // per_row, BLOCK_MAX_BYTES // (4 * steps * nlon) or 1, nlat))
+    rows = int(min(room // per_row, BLOCK_MAX_BYTES // (4 * steps * nlon), nlat // (BLOCKS_PER_WORKER * workers)))
     rows = max(rows, 1)
     blocks = -(-nlat // rows)
     why += f"; {blocks} block(s) of {rows} latitude rows within compute.memory {_size(budget)}"
@@ -166,22 +166,24 @@ def _quietly(function: Callable) -> Callable:
     return wrapped
 
 
-def _gram_part(values, weights, max_missing):
+def _weighted_block(values, weights, max_missing):
     block, fraction = prepare_block(values, max_missing)
-    weighted = block * weights
-    gram = scipy.linalg.blas.dsyrk(1.0, weighted.T, trans=1)  # upper triangle of X X^T, float64, no copy
-    return gram, float(np.sum(weighted**2)), [fraction]
+    block *= weights  # in place: the block is our own copy
+    return block, float(np.vdot(block, block)), fraction
+
+
+def _gram_part(values, weights, max_missing):
+    weighted, total, fraction = _weighted_block(values, weights, max_missing)
+    return weighted @ weighted.T, total, [fraction]  # numpy hands X X^T to BLAS syrk, float64
 
 
 def _range_part(values, weights, max_missing, omega):
-    block, fraction = prepare_block(values, max_missing)
-    weighted = block * weights
-    return weighted @ omega, float(np.sum(weighted**2)), [fraction]
+    weighted, total, fraction = _weighted_block(values, weights, max_missing)
+    return weighted @ omega, total, [fraction]
 
 
 def _power_part(values, weights, max_missing, basis):
-    block, _ = prepare_block(values, max_missing)
-    weighted = block * weights
+    weighted, _, _ = _weighted_block(values, weights, max_missing)
     return weighted @ (weighted.T @ basis)
 
 
@@ -235,7 +237,7 @@ def exact_modes(anomaly: np.ndarray, weights: np.ndarray, count: int) -> Decompo
     """
     n = anomaly.shape[0] - 1
     weighted = anomaly * weights
-    u, s, _ = scipy.linalg.svd(weighted, full_matrices=False, lapack_driver="gesdd", check_finite=False)
+    u, s, _ = np.linalg.svd(weighted, full_matrices=False)  # LAPACK gesdd
     spectrum = s**2 / n
     pcs = u[:, :count] * np.sqrt(n)
     return Decomposition(
@@ -261,19 +263,33 @@ def _exact(anomaly, weights, count, max_missing, progress):
     return result, fraction
 
 
+def _leading_eigenpairs(matrix: np.ndarray, wanted: int) -> tuple[np.ndarray, np.ndarray]:
+    """The ``wanted`` largest eigenvalues (descending, floored at 0) and eigenvectors of a symmetric matrix.
+
+    Up to 2000 rows numpy's full ``eigh`` is quick; beyond, LAPACK's ``syevr``
+    for just the wanted ones (through scipy) saves most of the cost.
+    """
+    if matrix.shape[0] <= 2000:
+        values, vectors = np.linalg.eigh(matrix)
+        values, vectors = values[-wanted:], vectors[:, -wanted:]
+    else:
+        import scipy.linalg
+
+        last = matrix.shape[0] - 1
+        values, vectors = scipy.linalg.eigh(matrix, subset_by_index=[last + 1 - wanted, last], driver="evr",
+                                            check_finite=False)
+    return np.clip(values[::-1], 0, None), vectors[:, ::-1]
+
+
 def _gram(anomaly, weights, count, max_missing, progress):
     n = anomaly.sizes["time"] - 1
     blocks, rows = _blocks(anomaly), _row_slices(anomaly)
     parts = [dask.delayed(_quietly(_gram_part))(b, weights[r], max_missing) for b, r in zip(blocks, rows)]
     with progress("pass 1 of 2: time x time cross-products"):
-        upper, total, fractions = dask.compute(_tree_sum(parts))[0]
+        gram, total, fractions = dask.compute(_tree_sum(parts))[0]
     fraction = np.concatenate(fractions)
     _check_points(fraction, max_missing, count)
-    steps = n + 1
-    wanted = min(count + 1, steps)  # the modes and the next eigenvalue, for North's rule
-    values, vectors = scipy.linalg.eigh(upper, lower=False, subset_by_index=[steps - wanted, steps - 1],
-                                        driver="evr", check_finite=False)
-    values, vectors = np.clip(values[::-1], 0, None), vectors[:, ::-1]
+    values, vectors = _leading_eigenpairs(gram, min(count + 1, n + 1))  # + 1: the next one, for North's rule
     pcs = vectors[:, :count] * np.sqrt(n)
     with progress("pass 2 of 2: EOF maps"):
         maps = dask.compute(*[dask.delayed(_quietly(_regression_part))(b, max_missing, pcs) for b in blocks])
@@ -401,7 +417,7 @@ def solve(anomaly: xr.DataArray, weights: xr.DataArray, count: int, max_missing:
     seed
         Seed of the randomized solver.
     progress
-        Progress bar factory, called with a label for each pass.
+        Called with a label around each pass over the data (a progress bar, thread limits).
 
     Returns
     -------
