@@ -48,7 +48,7 @@ from climodes.weights import usable_points
 OVERSAMPLING = 10
 POWER_ITERATIONS = 2
 EXACT_MAX_VALUES = 5_000_000  # time steps x points up to which the exact solver is chosen
-GRAM_MAX_STEPS = 8_000  # the Gram matrix's eigendecomposition costs steps^3
+GRAM_MAX_STEPS = 2_000  # the Gram product costs steps^2 x points: beyond this, randomized passes are cheaper
 BLOCK_MAX_BYTES = 128e6  # float32 bytes of one block as read
 BLOCKS_PER_WORKER = 4  # at least, where the grid has the rows: keeps the workers evenly busy
 BYTES_PER_BLOCK_VALUE = 28  # read pieces + joined block (float32) + float64 working copies
