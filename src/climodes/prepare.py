@@ -106,32 +106,25 @@ def _along_time(kernel, da: xr.DataArray, **kwargs) -> xr.DataArray:
     return da.copy(data=data)
 
 
-def _quiet_nanmean(values: np.ndarray) -> np.ndarray:
+def _quiet_nanmean(values: np.ndarray, axis: int = 0, keepdims: bool = True) -> np.ndarray:
     with warnings.catch_warnings():  # points missing at every step have no mean: NaN, as they should
         warnings.simplefilter("ignore", RuntimeWarning)
-        return np.nanmean(values, axis=0, keepdims=True)
+        return np.nanmean(values, axis=axis, keepdims=keepdims)
 
 
 def _minus_group_means(values: np.ndarray, keys: np.ndarray, in_base: np.ndarray) -> np.ndarray:
     """``values`` minus, at each step, the mean over the baseline steps with the same key (NaN skipped).
 
-    The baseline steps are sorted by key once, so the sums of all groups are a
-    single ``np.add.reduceat`` pass, however many groups (366 days of year) there are.
+    Blocks are C-ordered ``(time, ...)``, so each group's rows are whole
+    contiguous rows: a loop over groups (12 months, or 366 days of year) costs
+    one pass over the block.
     """
-    groups, group_of = np.unique(keys, return_inverse=True)
-    rows = np.flatnonzero(in_base)
-    rows = rows[np.argsort(group_of[rows], kind="stable")]
-    starts = np.searchsorted(group_of[rows], np.arange(groups.size))
-    base = values[rows]  # a copy, in the field's dtype
-    missing = np.isnan(base)
-    if missing.any():
-        base[missing] = 0
-        counts = np.add.reduceat((~missing).astype(values.dtype), starts, axis=0)
-    else:
-        counts = np.diff(np.append(starts, rows.size)).astype(values.dtype).reshape((-1,) + (1,) * (values.ndim - 1))
-    with np.errstate(invalid="ignore", divide="ignore"):
-        means = np.add.reduceat(base, starts, axis=0) / counts
-    return values - means[group_of]
+    mean = np.mean if not np.isnan(values).any() else _quiet_nanmean
+    out = np.empty_like(values)
+    for key in np.unique(keys):
+        steps = np.flatnonzero(keys == key)
+        out[steps] = values[steps] - mean(values[steps[in_base[steps]]], axis=0, keepdims=True)
+    return out
 
 
 def anomalies(da: xr.DataArray, how: str, baseline: list[str] | None) -> xr.DataArray:

@@ -139,18 +139,18 @@ def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: in
 # --- the shared block arithmetic
 
 
-def prepare_block(values: np.ndarray, max_missing: float) -> tuple[np.ndarray, np.ndarray]:
+def prepare_block(values: np.ndarray, max_missing: float, dtype=np.float64) -> tuple[np.ndarray, np.ndarray]:
     """Apply the missing-data rule to a ``(time, point)`` block and centre it.
 
-    Returns the float64 anomaly block (missing values set to zero, then
+    Returns the anomaly block in ``dtype`` (missing values set to zero, then
     centred; unusable points all zero) and each point's missing fraction.
     """
-    block = np.array(values, dtype=np.float64).reshape(values.shape[0], -1)  # a copy: never change the input
+    block = np.array(values, dtype=dtype).reshape(values.shape[0], -1)  # a copy: never change the input
     missing = np.isnan(block)
     fraction = missing.mean(axis=0)
     keep = usable_points(fraction, max_missing)
     block[missing] = 0.0
-    block -= block.mean(axis=0)
+    block -= block.mean(axis=0, dtype=np.float64).astype(dtype)
     block[:, ~keep] = 0.0
     return block, fraction
 
@@ -166,10 +166,10 @@ def _quietly(function: Callable) -> Callable:
     return wrapped
 
 
-def _weighted_block(values, weights, max_missing):
-    block, fraction = prepare_block(values, max_missing)
-    block *= weights  # in place: the block is our own copy
-    return block, float(np.vdot(block, block)), fraction
+def _weighted_block(values, weights, max_missing, dtype=np.float64):
+    block, fraction = prepare_block(values, max_missing, dtype)
+    block *= weights.astype(dtype)  # in place: the block is our own copy
+    return block, float(np.sum(np.square(block), dtype=np.float64)), fraction
 
 
 def _gram_part(values, weights, max_missing):
@@ -177,19 +177,23 @@ def _gram_part(values, weights, max_missing):
     return weighted @ weighted.T, total, [fraction]  # numpy hands X X^T to BLAS syrk, float64
 
 
+# The randomized solver works in the field's precision (float32 stays float32 in flight); each block's
+# small product is returned in float64, so the sums over blocks accumulate in float64.
+
+
 def _range_part(values, weights, max_missing, omega):
-    weighted, total, fraction = _weighted_block(values, weights, max_missing)
-    return weighted @ omega, total, [fraction]
+    weighted, total, fraction = _weighted_block(values, weights, max_missing, omega.dtype)
+    return (weighted @ omega).astype(np.float64), total, [fraction]
 
 
 def _power_part(values, weights, max_missing, basis):
-    weighted, _, _ = _weighted_block(values, weights, max_missing)
-    return weighted @ (weighted.T @ basis)
+    weighted, _, _ = _weighted_block(values, weights, max_missing, basis.dtype)
+    return (weighted @ (weighted.T @ basis)).astype(np.float64)
 
 
 def _regression_part(values, max_missing, series):
-    block, fraction = prepare_block(values, max_missing)
-    maps = block.T @ series
+    block, fraction = prepare_block(values, max_missing, series.dtype)
+    maps = (block.T @ series).astype(np.float64)
     maps[~usable_points(fraction, max_missing)] = np.nan
     return maps
 
@@ -308,7 +312,8 @@ def _randomized(anomaly, weights, count, max_missing, progress, seed):
     n = anomaly.sizes["time"] - 1
     blocks, rows = _blocks(anomaly), _row_slices(anomaly)
     rank = min(count + OVERSAMPLING, n + 1, weights.size)
-    omega = np.random.default_rng(seed).standard_normal((weights.size, rank))
+    work = np.result_type(anomaly.dtype, np.float32)  # float32 fields are worked on in float32
+    omega = np.random.default_rng(seed).standard_normal((weights.size, rank)).astype(work)
     passes = 2 + POWER_ITERATIONS
     parts = [dask.delayed(_quietly(_range_part))(b, weights[r], max_missing, omega[r]) for b, r in zip(blocks, rows)]
     with progress(f"pass 1 of {passes}: random projection"):
@@ -316,13 +321,14 @@ def _randomized(anomaly, weights, count, max_missing, progress, seed):
     fraction = np.concatenate(fractions)
     _check_points(fraction, max_missing, count)
     for q in range(POWER_ITERATIONS):
-        basis = np.linalg.qr(sample)[0]
+        basis = np.linalg.qr(sample)[0].astype(work)
         parts = [dask.delayed(_quietly(_power_part))(b, weights[r], max_missing, basis) for b, r in zip(blocks, rows)]
         with progress(f"pass {q + 2} of {passes}: power iteration"):
             sample = dask.compute(_tree_sum(parts))[0]
     basis = np.linalg.qr(sample)[0]
     with progress(f"pass {passes} of {passes}: projection onto the range"):
-        projected = np.concatenate(dask.compute(*[dask.delayed(_quietly(_regression_part))(b, max_missing, basis)
+        projected = np.concatenate(dask.compute(*[dask.delayed(_quietly(_regression_part))(b, max_missing,
+                                                                                          basis.astype(work))
                                                   for b in blocks]))
     keep = usable_points(fraction, max_missing)
     small = np.where(keep[:, None], projected, 0.0) * weights[:, None]  # (X^T Q): points x rank
