@@ -69,6 +69,45 @@ def _ok(tmp_path):
     return path
 
 
+def _truncated(tmp_path):
+    path = _ok(tmp_path)
+    data = path.read_bytes()
+    path.write_bytes(data[: len(data) // 2])
+    return [path], {}
+
+
+def _plain_hdf5(tmp_path):
+    import h5py
+
+    path = tmp_path / "plain.h5"
+    with h5py.File(path, "w") as f:
+        f["tas"] = np.random.rand(10, 4, 5)
+    return [path], {}
+
+
+def _strings(tmp_path):
+    path = tmp_path / "names.nc"
+    xr.Dataset({"tas": (("time",), np.array(["a", "b", "c"], dtype=object))}).to_netcdf(path)
+    return [path], {}
+
+
+def _all_nan(tmp_path):
+    path = tmp_path / "nan.nc"
+    field_dataset(np.full((30, 4, 5), np.nan), np.linspace(-30, 30, 4), np.arange(0, 50.0, 10)).to_netcdf(path)
+    return [path], {"modes": {"count": 2}}
+
+
+def _one_step(tmp_path):
+    path = tmp_path / "one.nc"
+    field_dataset(np.random.rand(1, 4, 5), np.linspace(-30, 30, 4), np.arange(0, 50.0, 10)).to_netcdf(path)
+    return [path], {"modes": {"count": 1}}
+
+
+def _inside_a_file(tmp_path):
+    (tmp_path / "taken").write_text("a file")
+    return [_ok(tmp_path)], {"output": {"dir": str(tmp_path / "taken" / "out")}}
+
+
 CATALOGUE = {
     "missing file": (lambda t: ([t / "absent.nc"], {}), "absent.nc: no such file"),
     "empty glob": (lambda t: ([t / "nothing_*.nc"], {}), "matches no file"),
@@ -81,6 +120,14 @@ CATALOGUE = {
     "constant field": (_constant, "constant in time at every point"),
     "not netcdf": (lambda t: ([(t / "text.nc").write_text("hello") and t / "text.nc"], {}), "text.nc: cannot be read as NetCDF"),
     "unknown key": (lambda t: ([_ok(t)], {"modes": {"cont": 3}}), "modes.cont: unknown key; did you mean count?"),
+    "truncated netcdf": (_truncated, "ok.nc: cannot be read as NetCDF"),
+    "hdf5 without netcdf structure": (_plain_hdf5, "plain.h5: variable 'tas' has dimensions"),
+    "non-numeric variable": (_strings, "names.nc: variable 'tas' holds text values, not numbers"),
+    "nan everywhere": (_all_nan, "select: no grid point has enough data (20 missing at every step"),
+    "a single time step": (_one_step, "modes.count: 1 modes need at least 2 time steps, but the prepared field has 1"),
+    "negative mode count": (lambda t: ([_ok(t)], {"modes": {"count": -3}}), "modes.count: expected a whole number of 1"),
+    "wrong type in config": (lambda t: ([_ok(t)], {"select": {"lat": "north"}}), "select.lat: expected [SOUTH, NORTH]"),
+    "output inside a file": (_inside_a_file, "which is a file; choose another folder"),
 }
 
 
@@ -95,6 +142,22 @@ def test_bad_input_gives_one_line_and_exit_2(tmp_path, cli, case):
     assert expected in err and "Traceback" not in err
     assert not (tmp_path / "out").exists()
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".out")]
+
+
+def test_disk_full_leaves_nothing_behind(tmp_path, small_field, cli, monkeypatch):
+    import errno
+
+    import climodes.pipeline
+
+    def full_disk(ds, path, encoding):
+        path.write_bytes(b"half a file")
+        raise OSError(errno.ENOSPC, "No space left on device")
+
+    monkeypatch.setattr(climodes.pipeline, "write_netcdf", full_disk)
+    code, _, err = cli("run", write_config(tmp_path, [small_field], modes={"count": 2}))
+    assert code == 2 and len(err.strip().splitlines()) == 1
+    assert "output.dir: cannot write the results" in err and "No space left on device" in err
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["field.nc", "run.yaml"]
 
 
 def test_existing_output_dir_needs_overwrite(tmp_path, small_field, cli):

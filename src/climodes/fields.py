@@ -51,6 +51,7 @@ class OpenedField:
     names: dict[str, str]
     time_encoding: dict = field(default_factory=dict)
     pieces: list[xr.DataArray] = field(default_factory=list)  # each file's lazy array, in time order
+    restamped: bool = False  # stamps moved to the middles of time bounds
     notes: list[str] = field(default_factory=list)
 
 
@@ -132,8 +133,37 @@ def _open_one(path: str, variable: str) -> tuple[xr.DataArray, xr.Dataset]:
         raise UserError(f"{path}: no variable {variable!r}; variables there: {names}; set input.variable")
     da = ds[variable]
     if not np.issubdtype(da.dtype, np.number) or np.issubdtype(da.dtype, np.complexfloating):
-        raise UserError(f"{path}: variable {variable!r} holds {da.dtype} values, not numbers; choose another")
+        kind = "text" if da.dtype.kind in "USO" else str(da.dtype)
+        raise UserError(f"{path}: variable {variable!r} holds {kind} values, not numbers; set input.variable to a "
+                        "numeric field")
     return da, ds
+
+
+def _stamp_at_interval_middles(da: xr.DataArray, ds: xr.Dataset, time: str) -> tuple[xr.DataArray, bool]:
+    """Where the file gives time bounds (CF ``bounds``), stamp each step at the middle of its interval.
+
+    A monthly mean stamped at the end of its month (2000-02-01 00:00 for January) would otherwise be
+    counted as February by every month-based step; the middle always lies in the right month.
+    """
+    bounds = ds[time].attrs.get("bounds") or ds[time].encoding.get("bounds")
+    if not bounds or bounds not in ds or ds[bounds].ndim != 2:
+        return da, False
+    lower, upper = ds[bounds].values[:, 0], ds[bounds].values[:, 1]
+    middles = np.array([a + (b - a) / 2 for a, b in zip(lower, upper)])
+    if np.array_equal(middles, ds[time].values):
+        return da, False
+    return da.assign_coords({time: (time, middles, ds[time].attrs)}), True
+
+
+def _time_gaps(time: np.ndarray) -> list[str]:
+    """Steps more than 1.5 times the usual spacing apart, as notes (gaps are allowed)."""
+    if time.size < 3:
+        return []
+    days = np.array([(b - a) / np.timedelta64(1, "D") if isinstance(b - a, np.timedelta64)
+                     else (b - a).total_seconds() / 86400 for a, b in zip(time[:-1], time[1:])])
+    usual = np.median(days)
+    return [f"gap in time: nothing between {str(time[i])[:10]} and {str(time[i + 1])[:10]}"
+            for i in np.flatnonzero(days > 1.5 * usual)]
 
 
 def open_field(spec: InputSection) -> OpenedField:
@@ -144,7 +174,7 @@ def open_field(spec: InputSection) -> OpenedField:
     ``spec.chunks`` says; :func:`rechunked` cuts it otherwise.
     """
     paths = expand_paths(spec.paths)
-    pieces = []
+    pieces, moved = [], []
     names: dict[str, str] = {}
     for path in paths:
         da, ds = _open_one(path, spec.variable)
@@ -153,6 +183,8 @@ def open_field(spec: InputSection) -> OpenedField:
             raise UserError(f"{path}: axes are named {axes}, but {paths[0]} names them {names}; make them agree")
         names = axes
         da = da.squeeze([d for d in da.dims if d not in axes.values()], drop=True)
+        da, restamped = _stamp_at_interval_middles(da, ds, axes["time"])
+        moved.append(restamped)
         da = da.rename({v: k for k, v in axes.items()}).transpose("time", "lat", "lon")
         pieces.append((path, da, ds[axes["time"]].encoding))
     pieces.sort(key=lambda p: p[1]["time"].values[0])
@@ -166,6 +198,7 @@ def open_field(spec: InputSection) -> OpenedField:
     files = [InputFile(str(Path(p).resolve()), os.stat(p).st_size, os.stat(p).st_mtime) for p in paths]
     encoding = {k: v for k, v in pieces[0][2].items() if k in ("units", "calendar", "dtype")}
     opened = OpenedField(xr.DataArray(), files, names, encoding, pieces=[p[1] for p in pieces])
+    opened.restamped = any(moved)
     return rechunked(opened, spec.chunks)
 
 
@@ -180,7 +213,9 @@ def rechunked(opened: OpenedField, chunks: dict[str, int]) -> OpenedField:
     sizes = {axis: chunks.get(axis, -1) for axis in ("time", "lat", "lon")}
     data = xr.concat([piece.chunk(sizes) for piece in opened.pieces], dim="time", coords="minimal",
                      compat="override", join="override")
-    notes = []
+    notes = _time_gaps(data["time"].values)
+    if opened.restamped:
+        notes.append("time stamps moved to the middles of the files' time bounds")
     lon = data["lon"].values
     if lon.size > 2 and np.isclose((lon[-1] - lon[0]) % 360, 0) and not np.isclose(lon[-1], lon[0]):
         data = data.isel(lon=slice(0, -1))

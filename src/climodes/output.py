@@ -39,6 +39,8 @@ def check_output_dir(spec: OutputSection) -> None:
     ancestor = final.parent
     while not ancestor.exists():
         ancestor = ancestor.parent
+    if not ancestor.is_dir():
+        raise UserError(f"output.dir: {final} would lie inside {ancestor}, which is a file; choose another folder")
     if not os.access(ancestor, os.W_OK | os.X_OK):
         raise UserError(f"output.dir: cannot write in {ancestor}; choose a folder you can write to")
 

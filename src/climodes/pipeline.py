@@ -104,15 +104,20 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
         err = 100 * float(results["variance_explained_error"][k])
         table.append(f"{k + 1:>4}  {frac:8.1f}% +/- {err:4.1f}%   {'yes' if apart[k] else 'no, mixed'}")
     table.append(f"effective sample size {n_eff:.0f} of {steps} steps")
-    with staged_dir(out) as stage:
-        write_netcdf(results, stage / "modes.nc", opened.time_encoding)
-        if "geotiff" in spec.output.formats:
-            write_geotiff(results, stage / "modes.tif")
-        if spec.output.figures:
-            from climodes.figures import draw_all  # the numeric path never imports matplotlib
+    log = [headline, *table, f"solver: {plan.method} ({plan.reason})", *(f"note: {n}" for n in notes), "",
+           "resolved config:", spec.to_yaml()]
+    try:
+        with staged_dir(out) as stage:
+            write_netcdf(results, stage / "modes.nc", opened.time_encoding)
+            if "geotiff" in spec.output.formats:
+                write_geotiff(results, stage / "modes.tif")
+            if spec.output.figures:
+                from climodes.figures import draw_all  # the numeric path never imports matplotlib
 
-            draw_all(results, stage)
-        log = [headline, *table, f"solver: {plan.method} ({plan.reason})", *(f"note: {n}" for n in notes), "",
-               "resolved config:", spec.to_yaml()]
-        (stage / "run.log").write_text("\n".join(log), encoding="utf-8")
+                draw_all(results, stage)
+            (stage / "run.log").write_text("\n".join(log), encoding="utf-8")
+    except OSError as err:  # disk full, permissions, a vanished folder: nothing was left behind
+        reason = err.strerror or str(err)
+        raise UserError(f"output.dir: cannot write the results to {out} ({reason}); nothing was written; "
+                        "free some space or choose another output.dir") from None
     return RunSummary(out, headline, table, notes)
