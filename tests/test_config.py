@@ -32,7 +32,8 @@ def test_defaults_are_filled_in_and_paths_resolved(tmp_path):
     assert spec.output.dir == str(tmp_path / "results")
     resolved = yaml.safe_load(spec.to_yaml())
     assert set(resolved) == {"input", "select", "prepare", "modes", "compute", "output"}
-    assert resolved["select"] == {"lat": None, "lon": None, "period": None, "months": None}
+    assert resolved["select"] == {"lat": None, "lon": None, "period": None, "months": None, "level": None,
+                                  "member": None}
 
 
 def test_dates_and_a_single_path_are_normalised(tmp_path):

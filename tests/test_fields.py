@@ -84,12 +84,43 @@ def test_repeated_first_longitude_is_dropped(tmp_path):
     assert "dropped longitude 360" in opened.notes[0]
 
 
-def test_extra_dimensions_are_an_error_listing_them(tmp_path):
-    path = tmp_path / "levels.nc"
+def _with_extra(tmp_path, **dims):
+    path = tmp_path / "extra.nc"
     ds = field_dataset(np.random.rand(6, 3, 4), np.array([-10.0, 0, 10]), np.arange(4.0))
-    ds["tas"] = ds["tas"].expand_dims(plev=[1000.0, 500.0], axis=1)
+    field = ds["tas"]
+    for name, (values, attrs) in dims.items():
+        field = field.expand_dims({name: values}, axis=1).copy()
+        field[name].attrs = attrs
+        for i in range(len(values)):
+            field[{name: i}] = field[{name: i}] + 100 * (i + 1)  # tell the slices apart
+    ds["tas"] = field
     ds.to_netcdf(path)
-    with pytest.raises(UserError, match=r"besides time, latitude and longitude: plev \(2\)"):
+    return path, ds
+
+
+def test_a_level_is_chosen_by_select_level(tmp_path):
+    path, ds = _with_extra(tmp_path, plev=([1000.0, 850.0, 500.0], {"units": "hPa", "positive": "down"}))
+    with pytest.raises(UserError, match=r"a level dimension plev with values 1000.0, 850.0, 500.0; choose one "
+                                        r"with select.level"):
+        _open([path])
+    opened = open_field(InputSection(paths=[str(path)], variable="tas"), SelectSection(level=500))
+    np.testing.assert_allclose(opened.data.values, ds["tas"].sel(plev=500).values)
+    with pytest.raises(UserError, match=r"select.level: 300 is not a value of plev"):
+        open_field(InputSection(paths=[str(path)], variable="tas"), SelectSection(level=300))
+
+
+def test_an_ensemble_member_is_chosen_by_select_member(tmp_path):
+    path, ds = _with_extra(tmp_path, realization=(np.array([1, 2, 3]), {"standard_name": "realization"}))
+    opened = open_field(InputSection(paths=[str(path)], variable="tas"), SelectSection(member=2))
+    np.testing.assert_allclose(opened.data.values, ds["tas"].sel(realization=2).values)
+    with pytest.raises(UserError, match="a member dimension realization with values 1, 2, 3; choose one with "
+                                        "select.member"):
+        _open([path])
+
+
+def test_other_extra_dimensions_are_an_error_naming_them(tmp_path):
+    path, _ = _with_extra(tmp_path, band=([1.0, 2.0], {}))
+    with pytest.raises(UserError, match=r"a dimension band \(2\) besides time, latitude and longitude"):
         _open([path])
 
 

@@ -142,6 +142,12 @@ def _months(value: Any) -> list[int] | None:
     return value
 
 
+def _coordinate_value(value: Any) -> float | str | None:
+    if value is None or (isinstance(value, (int, float, str)) and not isinstance(value, bool)):
+        return value
+    raise ValueError(f"expected one coordinate value (a number or a name), or null; got {value!r}")
+
+
 def _fraction(value: Any) -> float:
     if isinstance(value, bool) or not isinstance(value, (int, float)) or not 0 <= value < 1:
         raise ValueError(f"expected a fraction from 0 up to (not including) 1; got {value!r}")
@@ -215,6 +221,8 @@ class SelectSection:
     )
     period: list[str] | None = _key(_period, "first and last date kept [START, END]", None)
     months: list[int] | None = _key(_months, "calendar months kept, in season order, e.g. [12, 1, 2]", None)
+    level: float | str | None = _key(_coordinate_value, "value of the vertical axis to analyse, e.g. 500", None)
+    member: float | str | None = _key(_coordinate_value, "value of the ensemble axis to analyse, e.g. 3", None)
 
 
 @dataclass(frozen=True)

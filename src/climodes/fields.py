@@ -26,6 +26,8 @@ from climodes.errors import UserError
 
 _LAT_UNITS = {"degrees_north", "degree_north", "degree_n", "degrees_n", "degreen", "degreesn"}
 _LON_UNITS = {"degrees_east", "degree_east", "degree_e", "degrees_e", "degreee", "degreese"}
+_VERTICAL = {"air_pressure", "height", "depth", "altitude", "model_level_number", "atmosphere_sigma_coordinate",
+             "atmosphere_hybrid_sigma_pressure_coordinate", "ocean_sigma_coordinate"}
 _NAMES = {
     "time": ("time", "t", "date", "valid_time"),
     "lat": ("lat", "latitude", "lats", "nav_lat", "y_lat"),
@@ -113,13 +115,51 @@ def find_axes(da: xr.DataArray, where: str) -> dict[str, str]:
                 f"axis (looked for {looked}, or a name like {_NAMES[axis][0]}); fix the file's attributes"
             )
         found[axis] = str(candidates[0])
-    extra = [d for d in da.dims if d not in found.values() and da.sizes[d] > 1]
-    if extra:
-        raise UserError(
-            f"{where}: variable {da.name!r} has dimensions besides time, latitude and longitude: "
-            f"{', '.join(f'{d} ({da.sizes[d]})' for d in extra)}; climodes needs a field of time, lat and lon only"
-        )
     return found
+
+
+def _extra_kind(da: xr.DataArray, dim: str) -> str | None:
+    """``"level"`` for a vertical axis, ``"member"`` for an ensemble axis (CF attributes, then names)."""
+    attrs = {k: str(v).lower() for k, v in (da[dim].attrs if dim in da.coords else {}).items()}
+    name = str(dim).lower()
+    if attrs.get("axis") == "z" or "positive" in attrs or attrs.get("standard_name") in _VERTICAL or name in (
+            "level", "lev", "plev", "depth", "height", "z", "pressure", "isobaric"):
+        return "level"
+    if attrs.get("standard_name") == "realization" or name in ("member", "ensemble", "realization", "ens",
+                                                               "number", "member_id"):
+        return "member"
+    return None
+
+
+def _matching(values: np.ndarray, wanted: float | str) -> np.ndarray:
+    if values.dtype.kind in "USO" or isinstance(wanted, str):
+        return np.flatnonzero(values.astype(str) == str(wanted))
+    return np.flatnonzero(np.isclose(values.astype(float), float(wanted)))
+
+
+def pick_extra_dims(da: xr.DataArray, axes: dict[str, str], choice: SelectSection | None, where: str) -> xr.DataArray:
+    """Reduce every dimension besides time, lat and lon to one value: ``select.level`` for a vertical
+    axis, ``select.member`` for an ensemble axis; length-one dimensions simply drop."""
+    for dim in [d for d in da.dims if d not in axes.values()]:
+        if da.sizes[dim] == 1:
+            da = da.squeeze(dim, drop=True)
+            continue
+        kind = _extra_kind(da, dim)
+        wanted = getattr(choice, kind, None) if kind else None
+        values = da[dim].values if dim in da.coords else np.arange(da.sizes[dim])
+        listed = ", ".join(str(v) for v in values[:12]) + (" ..." if values.size > 12 else "")
+        if kind is None:
+            raise UserError(f"{where}: variable {da.name!r} has a dimension {dim} ({da.sizes[dim]}) besides time, "
+                            "latitude and longitude that is neither a vertical nor an ensemble axis; "
+                            "extract one slice of it first")
+        if wanted is None:
+            raise UserError(f"{where}: variable {da.name!r} has a {kind} dimension {dim} with values {listed}; "
+                            f"choose one with select.{kind}")
+        match = _matching(values, wanted)
+        if len(match) == 0:
+            raise UserError(f"select.{kind}: {wanted!r} is not a value of {dim} in {where}; there: {listed}")
+        da = da.isel({dim: int(match[0])}, drop=True)
+    return da
 
 
 def _open_one(path: str, variable: str) -> tuple[xr.DataArray, xr.Dataset]:
@@ -166,11 +206,12 @@ def _time_gaps(time: np.ndarray) -> list[str]:
             for i in np.flatnonzero(days > 1.5 * usual)]
 
 
-def open_field(spec: InputSection) -> OpenedField:
+def open_field(spec: InputSection, choice: SelectSection | None = None) -> OpenedField:
     """Open ``spec.variable`` from every file of ``spec.paths`` as one lazy field.
 
     Files are ordered by their first time step; their grids must agree and
-    their time steps must not overlap.  The field is chunked as
+    their time steps must not overlap.  A vertical or ensemble dimension is
+    reduced to ``choice.level`` / ``choice.member``.  The field is chunked as
     ``spec.chunks`` says; :func:`rechunked` cuts it otherwise.
     """
     paths = expand_paths(spec.paths)
@@ -182,7 +223,7 @@ def open_field(spec: InputSection) -> OpenedField:
         if names and axes != names:
             raise UserError(f"{path}: axes are named {axes}, but {paths[0]} names them {names}; make them agree")
         names = axes
-        da = da.squeeze([d for d in da.dims if d not in axes.values()], drop=True)
+        da = pick_extra_dims(da, axes, choice, path)
         da, restamped = _stamp_at_interval_middles(da, ds, axes["time"])
         moved.append(restamped)
         da = da.rename({v: k for k, v in axes.items()}).transpose("time", "lat", "lon")

@@ -63,7 +63,7 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
         Draw a progress bar on stderr for each pass over the data.
     """
     check_output_dir(spec.output)
-    opened = open_field(spec.input)
+    opened = open_field(spec.input, spec.select)
     anomaly, notes = _prepared(spec, opened)
     workers = worker_count(spec.compute)
     plan = plan_solver(anomaly.shape, spec.modes.count, spec.modes.method, memory_bytes(spec.compute.memory), workers)
