@@ -1,0 +1,97 @@
+"""Property-based (hypothesis): no mutation of a valid config or input file makes climodes crash.
+
+Whatever the change, the run either works (exit 0) or says what is wrong in one line (exit 2); exit 1
+(an internal error, with a traceback) means a bug.
+"""
+
+import contextlib
+import io
+import tempfile
+from pathlib import Path
+
+import numpy as np
+import yaml
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from climodes.cli import main
+from conftest import field_dataset, red_field
+
+pytestmark = __import__("pytest").mark.slow
+
+VALID = {
+    "input": {"paths": ["field.nc"], "variable": "tas", "chunks": {"time": 12}},
+    "select": {"lat": [-60, 60], "lon": [-90, 90], "period": [1980, 1983], "months": None},
+    "prepare": {"aggregate": "none", "anomalies": "climatology", "baseline": None, "detrend": "linear",
+                "standardize": False, "weighting": "coslat", "max_missing": 0.1},
+    "modes": {"count": 3, "method": "auto", "seed": 0},
+    "compute": {"memory": "1GB", "workers": 1, "scheduler": "threads"},
+    "output": {"dir": "out", "figures": False, "overwrite": True},
+}
+
+ODD_VALUES = st.one_of(
+    st.none(), st.booleans(), st.integers(-5, 400), st.floats(allow_nan=True, allow_infinity=True),
+    st.text(max_size=8), st.sampled_from(["none", "seasonal", "annual", "gram", "randomized", "exact", "1e9GB",
+                                           "auto", "processes", "cell_area", "mean", "2GB", "*.nc", "tas"]),
+    st.lists(st.one_of(st.integers(-400, 400), st.floats(-400, 400), st.text(max_size=4)), max_size=4),
+    st.dictionaries(st.text(max_size=5), st.integers(-3, 200), max_size=2),
+)
+
+
+def _run(folder: Path, config: dict) -> tuple[int, str]:
+    path = folder / "run.yaml"
+    path.write_text(yaml.safe_dump(config))
+    err = io.StringIO()
+    with contextlib.redirect_stderr(err), contextlib.redirect_stdout(io.StringIO()):
+        code = main(["run", str(path)])
+    return code, err.getvalue()
+
+
+def _folder_with_field() -> Path:
+    folder = Path(tempfile.mkdtemp())
+    lat, lon = np.linspace(-70, 70, 8), np.arange(0, 360, 30.0)
+    values = red_field((48, lat.size, lon.size), 2)
+    values[:, 1, 2] = np.nan
+    field_dataset(values, lat, lon).to_netcdf(folder / "field.nc")
+    return folder
+
+
+def test_the_valid_config_runs():
+    assert _run(_folder_with_field(), VALID)[0] == 0
+
+
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(section=st.sampled_from(sorted(VALID)), data=st.data(), value=ODD_VALUES, action=st.sampled_from(
+    ["set", "delete", "add"]))
+def test_config_mutations_never_crash(section, data, value, action):
+    config = {k: dict(v) for k, v in VALID.items()}
+    key = data.draw(st.sampled_from(sorted(config[section])))
+    if action == "set":
+        config[section][key] = value
+    elif action == "delete":
+        del config[section][key]
+    else:
+        config[section][f"{key}x"] = value
+    code, err = _run(_folder_with_field(), config)
+    assert code in (0, 2), err
+    assert "Traceback" not in err
+    if code == 2:
+        assert err.strip(), "an error must say what is wrong"
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(cut=st.floats(0, 1), flips=st.lists(st.tuples(st.floats(0, 1), st.integers(0, 255)), max_size=20),
+       how=st.sampled_from(["truncate", "flip", "both"]))
+def test_file_mutations_never_crash(cut, flips, how):
+    folder = _folder_with_field()
+    path = folder / "field.nc"
+    data = bytearray(path.read_bytes())
+    if how in ("flip", "both"):
+        for where, byte in flips:
+            data[int(where * (len(data) - 1))] = byte
+    if how in ("truncate", "both"):
+        data = data[: int(cut * len(data))]
+    path.write_bytes(bytes(data))
+    code, err = _run(folder, VALID)
+    assert code in (0, 2), err
+    assert "Traceback" not in err
