@@ -21,7 +21,7 @@ Three solvers, one result:
   two passes over the data, memory ``O(n^2 + a block)``.
 - ``randomized``: a randomized range finder with oversampling and power
   iterations (Halko, Martinsson and Tropp 2011, SIAM Review 53(2), 217-288,
-  algorithms 4.4 and 5.1), for both dimensions large: ``2 + q`` passes for
+  algorithms 4.4 and 5.1, numbers from memory), for both dimensions large: ``2 + q`` passes for
   ``q`` power iterations.  The random test matrix is drawn once over the whole
   grid from the seed, so the result does not depend on the blocks.
 
@@ -85,10 +85,6 @@ class SolverPlan:
     method: str
     reason: str
     lat_rows: int | None = None
-
-    @property
-    def passes(self) -> int:
-        return {"exact": 1, "gram": 2, "randomized": 2 + POWER_ITERATIONS}[self.method]
 
 
 def _size(nbytes: float) -> str:
