@@ -71,6 +71,10 @@ def _text(value: Any) -> str:
     return value
 
 
+def _optional_text(value: Any) -> str | None:
+    return None if value is None else _text(value)
+
+
 def _paths(value: Any) -> list[str]:
     if isinstance(value, str):
         value = [value]
@@ -211,6 +215,8 @@ class InputSection:
     paths: list[str] = _key(_paths, "NetCDF files or glob patterns, read from the config's folder")
     variable: str = _key(_text, "name of the field's variable in the files")
     chunks: dict[str, int] = _key(_chunks, "dask chunk length per axis (time, lat, lon)", {"time": 120})
+    cell_area: str | None = _key(_optional_text, "variable in the files holding cell areas (else the one CF "
+                                 "cell_measures names)", None)
 
 
 @dataclass(frozen=True)

@@ -54,6 +54,7 @@ class OpenedField:
     time_encoding: dict = field(default_factory=dict)
     pieces: list[xr.DataArray] = field(default_factory=list)  # each file's lazy array, in time order
     restamped: bool = False  # stamps moved to the middles of time bounds
+    grid: tuple[str, str] | None = None  # the files' names of 2-D latitude and longitude (curvilinear grids)
     notes: list[str] = field(default_factory=list)
 
 
@@ -94,17 +95,34 @@ def _is_axis(coord: xr.DataArray, axis: str) -> bool:
     return attrs.get("standard_name") == standard or attrs.get("units") in units
 
 
-def find_axes(da: xr.DataArray, where: str) -> dict[str, str]:
+def _grid_coordinates(da: xr.DataArray) -> tuple[str, str] | None:
+    """Names of 2-D latitude and longitude coordinates of ``da`` (a curvilinear grid), if it has them."""
+    two_d = [c for c in da.coords if da[c].ndim == 2 and set(da[c].dims) <= set(da.dims)]
+    lat = [c for c in two_d if _is_axis(da[c], "lat") or str(c).lower() in _NAMES["lat"]]
+    lon = [c for c in two_d if _is_axis(da[c], "lon") or str(c).lower() in _NAMES["lon"]]
+    if lat and lon and da[lat[0]].dims == da[lon[0]].dims:
+        return str(lat[0]), str(lon[0])
+    return None
+
+
+def find_axes(da: xr.DataArray, where: str) -> tuple[dict[str, str], tuple[str, str] | None]:
     """Map ``time``, ``lat`` and ``lon`` to the names of ``da``'s dimensions.
 
-    CF attributes are tried first, then common names; every other dimension
-    must have length 1.
+    CF attributes are tried first, then common names.  A field without 1-D
+    latitude and longitude axes but with 2-D latitude and longitude
+    coordinates (CF ``coordinates``) is on a curvilinear grid: ``lat`` and
+    ``lon`` then name its row and column dimensions, and the second value
+    returned names the 2-D coordinates (``None`` on a regular grid).
     """
     found: dict[str, str] = {}
+    grid = None
     for axis in ("time", "lat", "lon"):
         by_attrs = [d for d in da.dims if d in da.coords and _is_axis(da[d], axis) and d not in found.values()]
         by_name = [d for d in da.dims if str(d).lower() in _NAMES[axis] and d not in found.values()]
         candidates = by_attrs or by_name
+        if not candidates and axis != "time" and (grid := grid or _grid_coordinates(da)):
+            found["lat"], found["lon"] = (str(d) for d in da[grid[0]].dims)
+            break
         if not candidates:
             looked = {"time": "axis=T, standard_name=time or a CF time unit",
                       "lat": "standard_name=latitude or units=degrees_north",
@@ -115,7 +133,7 @@ def find_axes(da: xr.DataArray, where: str) -> dict[str, str]:
                 f"axis (looked for {looked}, or a name like {_NAMES[axis][0]}); fix the file's attributes"
             )
         found[axis] = str(candidates[0])
-    return found
+    return found, grid
 
 
 def _extra_kind(da: xr.DataArray, dim: str) -> str | None:
@@ -179,6 +197,30 @@ def _open_one(path: str, variable: str) -> tuple[xr.DataArray, xr.Dataset]:
     return da, ds
 
 
+GRID_LAT, GRID_LON = "grid_lat", "grid_lon"  # the 2-D coordinates of a curvilinear grid, inside climodes
+
+
+def _with_cell_areas(da: xr.DataArray, ds: xr.Dataset, name: str | None, path: str) -> xr.DataArray:
+    """Attach the file's cell areas as a ``cell_area`` coordinate: the variable named in the config
+    (``input.cell_area``), else the one the field's CF ``cell_measures`` names, if the file has it."""
+    measures = str(da.attrs.get("cell_measures", ""))
+    named = name or dict(zip(measures.split()[::2], measures.split()[1::2])).get("area:")
+    if not named:
+        return da
+    if named not in ds.variables:
+        if name:
+            raise UserError(f"{path}: no cell-area variable {name!r} (input.cell_area); variables there: "
+                            f"{', '.join(sorted(map(str, ds.variables)))}")
+        return da
+    area = ds[named]
+    horizontal = [d for d in da.dims if d in area.dims]
+    if area.ndim != 2 or len(horizontal) != 2:
+        raise UserError(f"{path}: cell-area variable {named!r} has dimensions {area.dims}; expected the field's "
+                        "two horizontal dimensions")
+    values = np.asarray(area.transpose(*horizontal).values, dtype=float)
+    return da.assign_coords(cell_area=(tuple(horizontal), values))
+
+
 def _stamp_at_interval_middles(da: xr.DataArray, ds: xr.Dataset, time: str) -> tuple[xr.DataArray, bool]:
     """Where the file gives time bounds (CF ``bounds``), stamp each step at the middle of its interval.
 
@@ -217,28 +259,36 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
     paths = expand_paths(spec.paths)
     pieces, moved = [], []
     names: dict[str, str] = {}
+    grid_names = None
     for path in paths:
         da, ds = _open_one(path, spec.variable)
-        axes = find_axes(da, path)
+        axes, grid = find_axes(da, path)
         if names and axes != names:
             raise UserError(f"{path}: axes are named {axes}, but {paths[0]} names them {names}; make them agree")
         names = axes
         da = pick_extra_dims(da, axes, choice, path)
+        if grid:  # the rows and columns keep no 1-D coordinates (rotated ones are not latitudes)
+            da = da.drop_vars([axes["lat"], axes["lon"]], errors="ignore")
+            da = da.rename({grid[0]: GRID_LAT, grid[1]: GRID_LON})
+            grid_names = grid
+        da = _with_cell_areas(da, ds, spec.cell_area, path)
         da, restamped = _stamp_at_interval_middles(da, ds, axes["time"])
         moved.append(restamped)
         da = da.rename({v: k for k, v in axes.items()}).transpose("time", "lat", "lon")
         pieces.append((path, da, ds[axes["time"]].encoding))
     pieces.sort(key=lambda p: p[1]["time"].values[0])
     for (path_a, a, _), (path_b, b, _) in zip(pieces, pieces[1:]):
-        for axis in ("lat", "lon"):
+        for axis in ("lat", "lon", GRID_LAT, GRID_LON):
+            if axis not in a.coords:
+                continue
             if a[axis].shape != b[axis].shape or not np.allclose(a[axis].values, b[axis].values):
-                raise UserError(f"{path_b}: its {names[axis]} grid differs from that of {path_a}; "
+                raise UserError(f"{path_b}: its {names.get(axis, axis)} grid differs from that of {path_a}; "
                                 "regrid the files to one grid")
         if b["time"].values[0] <= a["time"].values[-1]:
             raise UserError(f"{path_b}: its time steps overlap those of {path_a}; remove the duplicate steps")
     files = [InputFile(str(Path(p).resolve()), os.stat(p).st_size, os.stat(p).st_mtime) for p in paths]
     encoding = {k: v for k, v in pieces[0][2].items() if k in ("units", "calendar", "dtype")}
-    opened = OpenedField(xr.DataArray(), files, names, encoding, pieces=[p[1] for p in pieces])
+    opened = OpenedField(xr.DataArray(), files, names, encoding, pieces=[p[1] for p in pieces], grid=grid_names)
     opened.restamped = any(moved)
     return rechunked(opened, spec.chunks)
 
@@ -257,7 +307,7 @@ def rechunked(opened: OpenedField, chunks: dict[str, int]) -> OpenedField:
     notes = _time_gaps(data["time"].values)
     if opened.restamped:
         notes.append("time stamps moved to the middles of the files' time bounds")
-    lon = data["lon"].values
+    lon = data["lon"].values if "lon" in data.coords else np.array([])
     if lon.size > 2 and np.isclose((lon[-1] - lon[0]) % 360, 0) and not np.isclose(lon[-1], lon[0]):
         data = data.isel(lon=slice(0, -1))
         notes.append(f"dropped longitude {lon[-1]:g}: it repeats {lon[0]:g} on a global grid")
@@ -268,18 +318,24 @@ def select(opened: OpenedField, spec: SelectSection) -> xr.DataArray:
     """Cut the region, period and months of ``spec`` out of the opened field.
 
     ``lon: [W, E]`` works with 0..360 and -180..180 data alike; with W > E the
-    box crosses the dateline.  The selected longitudes are put in increasing
-    order, counting east from W, so the result is always a monotonic axis.
+    box crosses the dateline.  On a regular grid the selected longitudes are
+    put in increasing order, counting east from W, so the result is always a
+    monotonic axis; on a curvilinear grid the rows and columns holding the box
+    are kept and the points outside it are marked missing.
     """
     da = opened.data
-    if spec.lat is not None:
-        lat = da["lat"].values
-        da = da.isel(lat=np.flatnonzero((lat >= spec.lat[0]) & (lat <= spec.lat[1])))
-        if da.sizes["lat"] == 0:
-            raise UserError(f"select.lat: {spec.lat} holds no latitude of the grid "
-                            f"({lat.min():g} to {lat.max():g}); widen the band")
-    if spec.lon is not None:
-        da = _select_lon(da, *spec.lon)
+    if GRID_LAT in da.coords:
+        if spec.lat is not None or spec.lon is not None:
+            da = _select_curvilinear(da, spec)
+    else:
+        if spec.lat is not None:
+            lat = da["lat"].values
+            da = da.isel(lat=np.flatnonzero((lat >= spec.lat[0]) & (lat <= spec.lat[1])))
+            if da.sizes["lat"] == 0:
+                raise UserError(f"select.lat: {spec.lat} holds no latitude of the grid "
+                                f"({lat.min():g} to {lat.max():g}); widen the band")
+        if spec.lon is not None:
+            da = _select_lon(da, *spec.lon)
     if spec.period is not None:
         da = da.sel(time=slice(*spec.period))
         if da.sizes["time"] == 0:
@@ -290,6 +346,28 @@ def select(opened: OpenedField, spec: SelectSection) -> xr.DataArray:
         if da.sizes["time"] == 0:
             raise UserError(f"select.months: {spec.months} holds no time step of the selected period")
     return da
+
+
+def _in_lon_box(lon: np.ndarray, west: float, east: float) -> np.ndarray:
+    width = east - west if west < east else east - west + 360
+    return ((lon - west) % 360 <= width + 1e-9) | (width >= 360)
+
+
+def _select_curvilinear(da: xr.DataArray, spec: SelectSection) -> xr.DataArray:
+    """Keep the rows and columns that hold points of the box, and mark the points outside it missing."""
+    lat, lon = da[GRID_LAT].values, da[GRID_LON].values
+    inside = np.ones(lat.shape, dtype=bool)
+    if spec.lat is not None:
+        inside &= (lat >= spec.lat[0]) & (lat <= spec.lat[1])
+    if spec.lon is not None:
+        inside &= _in_lon_box(lon, *spec.lon)
+    if not inside.any():
+        raise UserError(f"select: the box lat {spec.lat}, lon {spec.lon} holds no point of the grid "
+                        f"(lat {lat.min():g} to {lat.max():g}, lon {lon.min():g} to {lon.max():g}); widen it")
+    rows, cols = np.flatnonzero(inside.any(axis=1)), np.flatnonzero(inside.any(axis=0))
+    box = {"lat": slice(rows[0], rows[-1] + 1), "lon": slice(cols[0], cols[-1] + 1)}
+    mask = xr.DataArray(inside[box["lat"], box["lon"]], dims=("lat", "lon"))
+    return da.isel(box).where(mask)
 
 
 def _select_lon(da: xr.DataArray, west: float, east: float) -> xr.DataArray:

@@ -27,10 +27,11 @@ cartopy.config["downloaders"] = {}
 _SHADES = "RdBu_r"
 
 
-def _axes_names(ds: xr.Dataset) -> tuple[str, str, str]:
-    lat, lon = ds["eof"].dims[1:]
-    time = ds["pc"].dims[1]
-    return time, lat, lon
+def lon_lat(ds: xr.Dataset) -> tuple[np.ndarray, np.ndarray]:
+    """Longitudes and latitudes of the maps' points: 1-D axes, or the 2-D coordinates of a curvilinear grid."""
+    coords = ds["eof"].coords
+    pick = {coords[c].attrs.get("standard_name"): c for c in coords}
+    return ds[pick["longitude"]].values, ds[pick["latitude"]].values
 
 
 def _percent(ds: xr.Dataset, k: int) -> str:
@@ -53,9 +54,8 @@ def _degree_ticks(ax, lons: np.ndarray, lats: np.ndarray) -> None:
 
 def mode_map(ds: xr.Dataset, k: int, path: Path) -> None:
     """Draw mode ``k`` (0-based) as a filled map with coastlines."""
-    _, lat, lon = _axes_names(ds)
     field = ds["eof"].isel(mode=k)
-    lons, lats = ds[lon].values, ds[lat].values
+    lons, lats = lon_lat(ds)
     centre = float((lons.min() + lons.max()) / 2)
     projection = ccrs.PlateCarree(central_longitude=centre)
     fig = plt.figure(figsize=(8.0, 4.6), layout="constrained")
@@ -65,7 +65,7 @@ def mode_map(ds: xr.Dataset, k: int, path: Path) -> None:
     mesh = ax.pcolormesh(lons, lats, field.values, transform=ccrs.PlateCarree(), cmap=_SHADES,
                          vmin=-limit, vmax=limit, shading="nearest")
     ax.add_geometries([coastlines()], crs=ccrs.PlateCarree(), facecolor="none", edgecolor="0.15", linewidth=0.6)
-    half = np.abs(np.diff(lons)).min() / 2 if lons.size > 1 else 0.5
+    half = np.abs(np.diff(lons, axis=-1)).min() / 2 if lons.shape[-1] > 1 else 0.5
     ax.set_extent([lons.min() - half, lons.max() + half, lats.min(), lats.max()], crs=ccrs.PlateCarree())
     _degree_ticks(ax, lons, lats)
     units = ds["eof"].attrs.get("units", "")
@@ -85,7 +85,7 @@ def _plottable(times: np.ndarray) -> np.ndarray:
 
 def pc_series(ds: xr.Dataset, path: Path) -> None:
     """One panel per mode with its standardised PC through time."""
-    time, _, _ = _axes_names(ds)
+    time = ds["pc"].dims[1]
     count = ds.sizes["mode"]
     fig, axes = plt.subplots(count, 1, figsize=(8.0, 1.5 + 1.3 * count), sharex=True, squeeze=False,
                              layout="constrained")

@@ -24,7 +24,7 @@ import xarray as xr
 from climodes import __version__
 from climodes.config import OutputSection, RunSpec
 from climodes.errors import UserError
-from climodes.fields import OpenedField
+from climodes.fields import GRID_LAT, GRID_LON, OpenedField
 
 FILL = 9.969209968386869e36  # the netCDF default fill for doubles
 
@@ -82,15 +82,19 @@ def results_dataset(modes: xr.Dataset, opened: OpenedField, spec: RunSpec, extra
     field_name = spec.input.variable
     long_name = opened.data.attrs.get("long_name", field_name)
     ds = modes.copy()
+    curvilinear = GRID_LAT in ds.coords
     ds["mode"].attrs = {"long_name": "mode number, in order of decreasing variance", "units": "1"}
-    ds["lat"].attrs = {**opened.data["lat"].attrs, "standard_name": "latitude", "units": "degrees_north", "axis": "Y"}
-    ds["lon"].attrs = {**opened.data["lon"].attrs, "standard_name": "longitude", "units": "degrees_east", "axis": "X"}
+    lat, lon = (GRID_LAT, GRID_LON) if curvilinear else ("lat", "lon")
+    ds[lat].attrs = {**opened.data[lat].attrs, "standard_name": "latitude", "units": "degrees_north"}
+    ds[lon].attrs = {**opened.data[lon].attrs, "standard_name": "longitude", "units": "degrees_east"}
+    if not curvilinear:
+        ds["lat"].attrs["axis"], ds["lon"].attrs["axis"] = "Y", "X"
     ds["time"].attrs = {k: v for k, v in opened.data["time"].attrs.items() if k not in ("units", "calendar", "bounds")}
     ds["time"].attrs.update(standard_name="time", axis="T")
     ds["eof"].attrs = {
         "long_name": f"EOF map of {long_name}: regression of the anomaly on the standardised PC",
         **({"units": units} if units else {}),
-        "grid_mapping": "crs",
+        **({} if curvilinear else {"grid_mapping": "crs"}),
         "comment": "anomaly ~= sum over mode of pc * eof; NaN where the point was not used. "
                    "The sign of a mode is arbitrary; climodes makes the largest absolute value of each map positive.",
     }
@@ -114,10 +118,13 @@ def results_dataset(modes: xr.Dataset, opened: OpenedField, spec: RunSpec, extra
         "flag_values": np.array([0, 1], dtype=np.int8),
         "flag_meanings": "mixed_with_a_neighbour separated",
     }
-    import pyproj
+    if not curvilinear:  # a curvilinear grid has no geotransform: viewers place it by its 2-D coordinates
+        import pyproj
 
-    ds["crs"] = xr.DataArray(np.int32(0), attrs=pyproj.CRS("EPSG:4326").to_cf())
+        ds["crs"] = xr.DataArray(np.int32(0), attrs=pyproj.CRS("EPSG:4326").to_cf())
     ds = ds.rename({k: v for k, v in opened.names.items() if k != v})
+    if curvilinear:
+        ds = ds.rename({GRID_LAT: opened.grid[0], GRID_LON: opened.grid[1]})
     ds.attrs = provenance(spec, opened, extra)
     return ds
 
@@ -167,9 +174,12 @@ def _regular(values: np.ndarray) -> bool:
     return values.size < 2 or bool(np.allclose(steps, steps[0], rtol=1e-5, atol=1e-8))
 
 
-def check_geotiff_grid(lat: np.ndarray, lon: np.ndarray) -> None:
+def check_geotiff_grid(field: xr.DataArray) -> None:
     """A GeoTIFF holds a regular grid only; say so before any work is done."""
-    for name, values in (("latitude", lat), ("longitude", lon)):
+    if GRID_LAT in field.coords:
+        raise UserError("output.formats: geotiff needs a regular latitude-longitude grid, and this one is "
+                        "curvilinear (2-D latitudes); drop geotiff (modes.nc carries the 2-D coordinates)")
+    for name, values in (("latitude", field["lat"].values), ("longitude", field["lon"].values)):
         if not _regular(values):
             raise UserError(f"output.formats: geotiff needs a regularly spaced grid, but the {name} spacing "
                             f"varies ({np.diff(values).min():g} to {np.diff(values).max():g} degrees); "

@@ -27,7 +27,7 @@ from climodes.output import (
 )
 from climodes.prepare import prepare
 from climodes.solvers import plan_solver, solve
-from climodes.weights import area_weights
+from climodes.weights import field_weights
 
 
 @dataclass
@@ -75,8 +75,8 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
         raise UserError(f"modes.count: {spec.modes.count} modes need at least {spec.modes.count + 1} time steps, "
                         f"but the prepared field has {steps}; lower modes.count or lengthen select.period")
     if "geotiff" in spec.output.formats:
-        check_geotiff_grid(anomaly["lat"].values, anomaly["lon"].values)
-    weights = area_weights(anomaly["lat"], anomaly["lon"], spec.prepare.weighting)
+        check_geotiff_grid(anomaly)
+    weights = field_weights(anomaly, spec.prepare.weighting)
     with dask_settings(spec.compute):
         modes, result, counts = solve(anomaly, weights, spec.modes.count, spec.prepare.max_missing, plan,
                                       spec.modes.seed, pass_context(progress, workers))

@@ -25,13 +25,17 @@ def _open_results(path: Path) -> xr.Dataset:
 
 
 def _range(values: np.ndarray) -> str:
-    return f"{values[0]:g} to {values[-1]:g}"
+    if values.ndim == 1:
+        return f"{values[0]:g} to {values[-1]:g}"
+    return f"{np.nanmin(values):g} to {np.nanmax(values):g} (2-D)"
 
 
 def summary(path: str | Path) -> str:
     """The summary text of a results folder or ``modes.nc``."""
     ds = _open_results(Path(path))
-    _, lat, lon = ds["eof"].dims
+    _, rows, columns = ds["eof"].dims
+    coords = {ds[c].attrs.get("standard_name"): c for c in ds["eof"].coords}
+    lat, lon = coords.get("latitude", rows), coords.get("longitude", columns)
     time = ds["pc"].dims[1]
     attrs = ds.attrs
     units = ds["eof"].attrs.get("units", "?")
@@ -41,8 +45,8 @@ def summary(path: str | Path) -> str:
         f"  made by     {attrs.get('source', '?')} on {attrs.get('date_created', '?')}",
         f"  field       {ds['eof'].attrs.get('long_name', 'eof').removeprefix('EOF map of ').split(':')[0]} "
         f"[{units}]",
-        f"  domain      lat {_range(ds[lat].values)} ({ds.sizes[lat]} rows), "
-        f"lon {_range(ds[lon].values)} ({ds.sizes[lon]} columns)",
+        f"  domain      lat {_range(ds[lat].values)} ({ds.sizes[rows]} rows), "
+        f"lon {_range(ds[lon].values)} ({ds.sizes[columns]} columns)",
         f"  points      {attrs.get('climodes_points', '?')}",
         f"  period      {str(times[0])[:10]} to {str(times[-1])[:10]}, {times.size} steps",
         f"  method      {attrs.get('climodes_method', '?')}",

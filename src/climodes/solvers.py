@@ -43,7 +43,7 @@ import numpy as np
 import xarray as xr
 
 from climodes.errors import UserError
-from climodes.weights import usable_points
+from climodes.weights import grid_coordinates, usable_points
 
 OVERSAMPLING = 10
 POWER_ITERATIONS = 2
@@ -441,7 +441,7 @@ def solve(anomaly: xr.DataArray, weights: xr.DataArray, count: int, max_missing:
     if result.total_variance == 0 or result.eigenvalues[0] <= 1e-12 * max(result.total_variance, 1e-300):
         raise UserError("input.variable: the prepared field is constant in time at every point, "
                         "so it has no modes; check the variable and prepare settings")
-    lat2d, lon2d = (c.values.reshape(-1) for c in xr.broadcast(anomaly["lat"], anomaly["lon"]))
+    lat2d, lon2d = (c.reshape(-1) for c in grid_coordinates(anomaly))
     signs = sign_rule(result.patterns, lat2d, lon2d)
     result.pcs *= signs
     result.patterns *= signs
@@ -454,7 +454,7 @@ def solve(anomaly: xr.DataArray, weights: xr.DataArray, count: int, max_missing:
             "eigenvalue": ("mode", result.eigenvalues),
             "variance_explained": ("mode", result.eigenvalues / result.total_variance),
         },
-        coords={"mode": np.arange(1, count + 1), "time": anomaly["time"], "lat": anomaly["lat"],
-                "lon": anomaly["lon"]},
+        coords={"mode": np.arange(1, count + 1),
+                **{name: coord.variable for name, coord in anomaly.coords.items() if name != "cell_area"}},
     )
     return modes, result, counts

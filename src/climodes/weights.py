@@ -13,6 +13,9 @@ from __future__ import annotations
 import numpy as np
 import xarray as xr
 
+from climodes.errors import UserError
+from climodes.fields import GRID_LAT, GRID_LON
+
 
 def _cell_edges(lat: np.ndarray) -> np.ndarray:
     """Cell edges halfway between latitudes, the outermost clipped to the poles."""
@@ -66,6 +69,35 @@ def area_weights(lat: xr.DataArray, lon: xr.DataArray, how: str) -> xr.DataArray
         row = np.ones_like(phi)
     values = np.broadcast_to(row[:, None], (lat.size, lon.size)).copy()
     return xr.DataArray(values, dims=("lat", "lon"), coords={"lat": lat, "lon": lon}, name="weight")
+
+
+def grid_coordinates(field: xr.DataArray) -> tuple[np.ndarray, np.ndarray]:
+    """Latitude and longitude of every ``(lat, lon)`` point, as 2-D arrays, on any grid."""
+    if GRID_LAT in field.coords:
+        return field[GRID_LAT].values, field[GRID_LON].values
+    lat, lon = xr.broadcast(field["lat"], field["lon"])
+    return lat.transpose("lat", "lon").values, lon.transpose("lat", "lon").values
+
+
+def field_weights(field: xr.DataArray, how: str) -> xr.DataArray:
+    """The weights of ``field``'s points: from its ``cell_area`` coordinate where the files gave cell
+    areas and ``how`` is ``"cell_area"``, else from the regular grid's geometry (:func:`area_weights`).
+
+    On a curvilinear grid (2-D latitudes) cos(lat) is not a cell's area, so ``coslat`` is refused.
+    """
+    if how == "cell_area" and "cell_area" in field.coords:
+        area = np.asarray(field["cell_area"].transpose("lat", "lon").values, dtype=float)
+        if not np.all(np.isfinite(area) & (area >= 0)) or not area.any():
+            raise UserError("input.cell_area: the cell areas hold negative, missing or only zero values; "
+                            "check the cell-area variable")
+        return xr.DataArray(np.sqrt(area / area[area > 0].mean()), dims=("lat", "lon"), name="weight")
+    if GRID_LAT not in field.coords:
+        return area_weights(field["lat"], field["lon"], how)
+    if how == "none":
+        return xr.DataArray(np.ones((field.sizes["lat"], field.sizes["lon"])), dims=("lat", "lon"), name="weight")
+    raise UserError(f"prepare.weighting: {how} needs a regular latitude-longitude grid, and this one is "
+                    "curvilinear (2-D latitudes); use weighting: cell_area with the files' cell areas "
+                    "(CF cell_measures, or input.cell_area), or weighting: none")
 
 
 def usable_points(missing_fraction: np.ndarray, max_missing: float) -> np.ndarray:
