@@ -2,6 +2,7 @@
 
 import subprocess
 import sys
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -50,14 +51,14 @@ def test_console_script_and_module_entry_points(tmp_path, small_field):
 # --- the bad-input catalogue: every case exits 2 with one line naming the culprit, and writes nothing
 
 
-def _no_latlon(tmp_path):
+def _no_latlon(tmp_path, *_):
     path = tmp_path / "nolatlon.nc"
     xr.Dataset({"tas": (("time", "a", "b"), np.random.rand(20, 3, 4))},
                coords={"time": np.arange(20.0)}).to_netcdf(path)
     return [path], {}
 
 
-def _constant(tmp_path):
+def _constant(tmp_path, *_):
     path = tmp_path / "constant.nc"
     field_dataset(np.full((30, 4, 5), 280.0), np.linspace(-30, 30, 4), np.arange(0, 50.0, 10)).to_netcdf(path)
     return [path], {"modes": {"count": 2}}
@@ -69,14 +70,14 @@ def _ok(tmp_path):
     return path
 
 
-def _truncated(tmp_path):
+def _truncated(tmp_path, *_):
     path = _ok(tmp_path)
     data = path.read_bytes()
     path.write_bytes(data[: len(data) // 2])
     return [path], {}
 
 
-def _plain_hdf5(tmp_path):
+def _plain_hdf5(tmp_path, *_):
     import h5py
 
     path = tmp_path / "plain.h5"
@@ -85,66 +86,36 @@ def _plain_hdf5(tmp_path):
     return [path], {}
 
 
-def _strings(tmp_path):
+def _strings(tmp_path, *_):
     path = tmp_path / "names.nc"
     xr.Dataset({"tas": (("time",), np.array(["a", "b", "c"], dtype=object))}).to_netcdf(path)
     return [path], {}
 
 
-def _all_nan(tmp_path):
+def _all_nan(tmp_path, *_):
     path = tmp_path / "nan.nc"
     field_dataset(np.full((30, 4, 5), np.nan), np.linspace(-30, 30, 4), np.arange(0, 50.0, 10)).to_netcdf(path)
     return [path], {"modes": {"count": 2}}
 
 
-def _one_step(tmp_path):
+def _one_step(tmp_path, *_):
     path = tmp_path / "one.nc"
     field_dataset(np.random.rand(1, 4, 5), np.linspace(-30, 30, 4), np.arange(0, 50.0, 10)).to_netcdf(path)
     return [path], {"modes": {"count": 1}}
 
 
-def _inside_a_file(tmp_path):
+def _inside_a_file(tmp_path, *_):
     (tmp_path / "taken").write_text("a file")
     return [_ok(tmp_path)], {"output": {"dir": str(tmp_path / "taken" / "out")}}
 
 
-CATALOGUE = {
-    "missing file": (lambda t: ([t / "absent.nc"], {}), "absent.nc: no such file"),
-    "empty glob": (lambda t: ([t / "nothing_*.nc"], {}), "matches no file"),
-    "variable not in file": (lambda t: ([_ok(t)], {"input": {"variable": "pr"}}), "no variable 'pr'; variables there: tas"),
-    "no latitude or longitude": (_no_latlon, "none is the latitude axis"),
-    "region without points": (lambda t: ([_ok(t)], {"select": {"lat": [41, 45]}}), "select.lat: [41.0, 45.0] holds no latitude"),
-    "region without longitudes": (lambda t: ([_ok(t)], {"select": {"lon": [200, 210]}}), "select.lon: [200, 210] holds no longitude"),
-    "period without steps": (lambda t: ([_ok(t)], {"select": {"period": [2050, 2060]}}), "select.period: ['2050', '2060'] holds no time step"),
-    "fewer steps than modes + 1": (lambda t: ([_ok(t)], {"modes": {"count": 30}}), "modes.count: 30 modes need at least 31 time steps"),
-    "constant field": (_constant, "constant in time at every point"),
-    "not netcdf": (lambda t: ([(t / "text.nc").write_text("hello") and t / "text.nc"], {}), "text.nc: cannot be read as NetCDF"),
-    "unknown key": (lambda t: ([_ok(t)], {"modes": {"cont": 3}}), "modes.cont: unknown key; did you mean count?"),
-    "truncated netcdf": (_truncated, "ok.nc: cannot be read as NetCDF"),
-    "hdf5 without netcdf structure": (_plain_hdf5, "plain.h5: variable 'tas' has dimensions"),
-    "non-numeric variable": (_strings, "names.nc: variable 'tas' holds text values, not numbers"),
-    "nan everywhere": (_all_nan, "select: no grid point has enough data (20 missing at every step"),
-    "a single time step": (_one_step, "modes.count: 1 modes need at least 2 time steps, but the prepared field has 1"),
-    "negative mode count": (lambda t: ([_ok(t)], {"modes": {"count": -3}}), "modes.count: expected a whole number of 1"),
-    "wrong type in config": (lambda t: ([_ok(t)], {"select": {"lat": "north"}}), "select.lat: expected [SOUTH, NORTH]"),
-    "output inside a file": (_inside_a_file, "which is a file; choose another folder"),
-}
+def _bad_yaml(tmp_path, *_):
+    config = tmp_path / "run.yaml"
+    config.write_text("input:\n  paths: [a.nc\n  variable: tas\n")
+    return config
 
 
-@pytest.mark.parametrize("case", list(CATALOGUE))
-def test_bad_input_gives_one_line_and_exit_2(tmp_path, cli, case):
-    make, expected = CATALOGUE[case]
-    files, sections = make(tmp_path)
-    config = write_config(tmp_path, files, **sections)
-    code, out, err = cli("run", config)
-    assert code == 2
-    assert len(err.strip().splitlines()) == 1, err
-    assert expected in err and "Traceback" not in err
-    assert not (tmp_path / "out").exists()
-    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".out")]
-
-
-def test_disk_full_leaves_nothing_behind(tmp_path, small_field, cli, monkeypatch):
+def _disk_full(tmp_path, monkeypatch):
     import errno
 
     import climodes.pipeline
@@ -154,10 +125,45 @@ def test_disk_full_leaves_nothing_behind(tmp_path, small_field, cli, monkeypatch
         raise OSError(errno.ENOSPC, "No space left on device")
 
     monkeypatch.setattr(climodes.pipeline, "write_netcdf", full_disk)
-    code, _, err = cli("run", write_config(tmp_path, [small_field], modes={"count": 2}))
-    assert code == 2 and len(err.strip().splitlines()) == 1
-    assert "output.dir: cannot write the results" in err and "No space left on device" in err
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["field.nc", "run.yaml"]
+    return [_ok(tmp_path)], {}
+
+
+CATALOGUE = {
+    "missing file": (lambda t, m: ([t / "absent.nc"], {}), "absent.nc: no such file"),
+    "empty glob": (lambda t, m: ([t / "nothing_*.nc"], {}), "matches no file"),
+    "variable not in file": (lambda t, m: ([_ok(t)], {"input": {"variable": "pr"}}), "no variable 'pr'; variables there: tas"),
+    "no latitude or longitude": (_no_latlon, "none is the latitude axis"),
+    "region without points": (lambda t, m: ([_ok(t)], {"select": {"lat": [41, 45]}}), "select.lat: [41.0, 45.0] holds no latitude"),
+    "region without longitudes": (lambda t, m: ([_ok(t)], {"select": {"lon": [200, 210]}}), "select.lon: [200, 210] holds no longitude"),
+    "period without steps": (lambda t, m: ([_ok(t)], {"select": {"period": [2050, 2060]}}), "select.period: ['2050', '2060'] holds no time step"),
+    "fewer steps than modes + 1": (lambda t, m: ([_ok(t)], {"modes": {"count": 30}}), "modes.count: 30 modes need at least 31 time steps"),
+    "constant field": (_constant, "constant in time at every point"),
+    "not netcdf": (lambda t, m: ([(t / "text.nc").write_text("hello") and t / "text.nc"], {}), "text.nc: cannot be read as NetCDF"),
+    "unknown key": (lambda t, m: ([_ok(t)], {"modes": {"cont": 3}}), "modes.cont: unknown key; did you mean count?"),
+    "truncated netcdf": (_truncated, "ok.nc: cannot be read as NetCDF"),
+    "hdf5 without netcdf structure": (_plain_hdf5, "plain.h5: variable 'tas' has dimensions"),
+    "non-numeric variable": (_strings, "names.nc: variable 'tas' holds text values, not numbers"),
+    "nan everywhere": (_all_nan, "select: no grid point has enough data (20 missing at every step"),
+    "a single time step": (_one_step, "modes.count: 1 modes need at least 2 time steps, but the prepared field has 1"),
+    "negative mode count": (lambda t, m: ([_ok(t)], {"modes": {"count": -3}}), "modes.count: expected a whole number of 1"),
+    "wrong type in config": (lambda t, m: ([_ok(t)], {"select": {"lat": "north"}}), "select.lat: expected [SOUTH, NORTH]"),
+    "output inside a file": (_inside_a_file, "which is a file; choose another folder"),
+    "bad yaml syntax": (_bad_yaml, "run.yaml:3: not valid YAML"),
+    "disk full": (_disk_full, "output.dir: cannot write the results to"),
+}
+
+
+@pytest.mark.parametrize("case", list(CATALOGUE))
+def test_bad_input_gives_one_line_and_exit_2(tmp_path, cli, monkeypatch, case):
+    make, expected = CATALOGUE[case]
+    made = make(tmp_path, monkeypatch)
+    config = made if isinstance(made, Path) else write_config(tmp_path, made[0], **made[1])
+    code, out, err = cli("run", config)
+    assert code == 2
+    assert len(err.strip().splitlines()) == 1, err
+    assert expected in err and "Traceback" not in err
+    assert not (tmp_path / "out").exists()
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".out")]
 
 
 def test_existing_output_dir_needs_overwrite(tmp_path, small_field, cli):

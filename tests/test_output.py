@@ -71,3 +71,26 @@ def test_contract_with_xarray(results):
     np.testing.assert_allclose(ds["variance_explained_error"].values,
                                frac * np.sqrt(2 / ds["variance_explained_error"].attrs["effective_sample_size"]))
     assert ds["separated"].attrs["flag_meanings"] == "mixed_with_a_neighbour separated"
+
+
+def test_missing_data_rule_is_counted_in_the_log_and_the_file(tmp_path, cli):
+    """Our documented rule (README, prepare.max_missing): all-missing and too-often-missing points drop
+    out; the rest have their missing anomalies set to zero."""
+    lat, lon = np.linspace(-40, 40, 5), np.arange(0.0, 60, 10)
+    values = red_field((40, 5, 6), 12)
+    values[:, 0, 0] = np.nan  # missing at every step
+    values[::2, 1, 1] = np.nan  # missing at half the steps: more than 10%
+    values[[3, 17], 2, 2] = np.nan  # missing at 2 of 40 steps: filled
+    path = tmp_path / "gappy.nc"
+    field_dataset(values, lat, lon).to_netcdf(path)
+    code, _, err = cli("run", write_config(tmp_path, [path], modes={"count": 2}))
+    assert code == 0, err
+    ds = xr.open_dataset(tmp_path / "out" / "modes.nc")
+    assert ds.attrs["climodes_points"] == ("28 of 30 grid points used; 1 missing at every step; 1 missing too "
+                                           "often; 2 missing values set to zero anomaly")
+    eof = ds["eof"].isel(mode=0).values
+    assert np.isnan(eof[0, 0]) and np.isnan(eof[1, 1]) and np.isfinite(eof[2, 2])
+    log = (tmp_path / "out" / "run.log").read_text()
+    assert "note: dropped 1 points missing at more than 10% of the steps" in log
+    assert "note: set 2 missing values at 1 points to zero anomaly" in log
+    assert "note: dropped 1 points" in err  # also told on the terminal
