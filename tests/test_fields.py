@@ -70,6 +70,14 @@ def test_overlapping_files_are_an_error_naming_both(tmp_path):
         _open([a, b])
 
 
+def test_repeated_steps_within_a_file_are_an_error(tmp_path):
+    path = _grid_file(tmp_path / "a.nc", np.arange(0.0, 360, 90))
+    ds = xr.open_dataset(path).load()
+    ds.isel(time=[0, 1, 2, 2, 3]).to_netcdf(tmp_path / "dup.nc")
+    with pytest.raises(UserError, match="dup.nc: time step 3 .* repeats or goes back in time"):
+        _open([tmp_path / "dup.nc"])
+
+
 def test_mismatched_grids_are_an_error_naming_both(tmp_path):
     a = _grid_file(tmp_path / "a.nc", np.arange(0.0, 360, 90))
     b = _grid_file(tmp_path / "b.nc", np.arange(0.0, 360, 45), start="2001-01-01")

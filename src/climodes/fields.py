@@ -275,6 +275,11 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
         da, restamped = _stamp_at_interval_middles(da, ds, axes["time"])
         moved.append(restamped)
         da = da.rename({v: k for k, v in axes.items()}).transpose("time", "lat", "lon")
+        steps = da["time"].values
+        if steps.size > 1 and not all(b > a for a, b in zip(steps[:-1], steps[1:])):
+            where = next(i for i in range(1, steps.size) if not steps[i] > steps[i - 1])
+            raise UserError(f"{path}: time step {where} ({str(steps[where])[:19]}) repeats or goes back in time; "
+                            "remove the duplicate or sort the steps")
         pieces.append((path, da, ds[axes["time"]].encoding))
     pieces.sort(key=lambda p: p[1]["time"].values[0])
     for (path_a, a, _), (path_b, b, _) in zip(pieces, pieces[1:]):
