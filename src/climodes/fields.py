@@ -7,7 +7,11 @@ so the results can use them again.  Nothing here reads the field's values:
 only coordinates, which are small.
 
 Axes are found from CF attributes first (``axis``, ``standard_name``,
-``units``), then from common names.
+``units``), then from common names.  On a curvilinear grid (2-D latitude and
+longitude named by CF ``coordinates``) the dimensions ``lat`` and ``lon`` are
+its rows and columns, and the 2-D coordinates travel as ``grid_lat`` and
+``grid_lon``; cell areas named by CF ``cell_measures`` (or ``input.cell_area``)
+travel as the coordinate ``cell_area``.
 """
 
 from __future__ import annotations
