@@ -46,7 +46,8 @@ from climodes.errors import UserError
 from climodes.weights import grid_coordinates, usable_points
 
 OVERSAMPLING = 10
-POWER_ITERATIONS = 2
+POWER_ITERATIONS = 3  # at most; the randomized solver stops earlier once converged
+RITZ_TOLERANCE = 1e-4  # residual of every kept mode, relative to the leading eigenvalue
 EXACT_MAX_VALUES = 5_000_000  # time steps x points up to which the exact solver is chosen
 GRAM_MAX_STEPS = 2_000  # the Gram product costs steps^2 x points: beyond this, randomized passes are cheaper
 BLOCK_MAX_BYTES = 128e6  # float32 bytes of one block as read
@@ -183,8 +184,12 @@ def _range_part(values, weights, max_missing, omega):
 
 
 def _power_part(values, weights, max_missing, basis):
-    weighted, _, _ = _weighted_block(values, weights, max_missing, basis.dtype)
-    return (weighted @ (weighted.T @ basis)).astype(np.float64)
+    """``X X^T Q`` over the block, and the block's rows of ``A^T Q`` (NaN at unused points)."""
+    block, fraction = prepare_block(values, max_missing, basis.dtype)
+    projected = (block.T @ basis).astype(np.float64)
+    product = (block @ (projected * weights[:, None] ** 2).astype(basis.dtype)).astype(np.float64)  # A w^2 A^T Q
+    projected[~usable_points(fraction, max_missing)] = np.nan
+    return product, [projected]
 
 
 def _regression_part(values, max_missing, series):
@@ -305,40 +310,46 @@ def _gram(anomaly, weights, count, max_missing, progress):
 
 
 def _randomized(anomaly, weights, count, max_missing, progress, seed):
+    """Randomized range finder, then power iterations until the kept modes have converged.
+
+    Each pass after the first does two things with the current orthonormal basis ``Q``: it projects the
+    unweighted anomaly on it (``A^T Q``, which gives the maps), and multiplies by ``X X^T`` (the next power
+    iteration).  The Rayleigh-Ritz pairs of ``Q`` and their residuals ``||X X^T u - lambda u||`` come from
+    that product at no extra pass, so the iterations stop as soon as every kept mode's residual is below
+    ``RITZ_TOLERANCE`` times the leading eigenvalue: two passes for a field with clearly dominant modes,
+    at most ``2 + POWER_ITERATIONS``.
+    """
     n = anomaly.sizes["time"] - 1
     blocks, rows = _blocks(anomaly), _row_slices(anomaly)
     rank = min(count + OVERSAMPLING, n + 1, weights.size)
     work = np.result_type(anomaly.dtype, np.float32)  # float32 fields are worked on in float32
     omega = np.random.default_rng(seed).standard_normal((weights.size, rank)).astype(work)
-    passes = 2 + POWER_ITERATIONS
+    most = 2 + POWER_ITERATIONS
     parts = [dask.delayed(_quietly(_range_part))(b, weights[r], max_missing, omega[r]) for b, r in zip(blocks, rows)]
-    with progress(f"pass 1 of {passes}: random projection"):
+    with progress(f"pass 1 of at most {most}: random projection"):
         sample, total, fractions = dask.compute(_tree_sum(parts))[0]
     fraction = np.concatenate(fractions)
     _check_points(fraction, max_missing, count)
-    for q in range(POWER_ITERATIONS):
-        basis = np.linalg.qr(sample)[0].astype(work)
-        parts = [dask.delayed(_quietly(_power_part))(b, weights[r], max_missing, basis) for b, r in zip(blocks, rows)]
-        with progress(f"pass {q + 2} of {passes}: power iteration"):
-            sample = dask.compute(_tree_sum(parts))[0]
-    basis = np.linalg.qr(sample)[0]
-    with progress(f"pass {passes} of {passes}: projection onto the range"):
-        projected = np.concatenate(dask.compute(*[dask.delayed(_quietly(_regression_part))(b, max_missing,
-                                                                                          basis.astype(work))
-                                                  for b in blocks]))
-    keep = usable_points(fraction, max_missing)
-    small = np.where(keep[:, None], projected, 0.0) * weights[:, None]  # (X^T Q): points x rank
-    _, s, right = np.linalg.svd(small, full_matrices=False)
-    rotation = right.T  # X ~= (Q R) S P^T with R = right.T
-    pcs = basis @ rotation[:, :count] * np.sqrt(n)
+    for done in range(2, most + 1):
+        basis = np.linalg.qr(sample)[0]
+        parts = [dask.delayed(_quietly(_power_part))(b, weights[r], max_missing, basis.astype(work))
+                 for b, r in zip(blocks, rows)]
+        with progress(f"pass {done} of at most {most}: projection and power iteration"):
+            sample, projected = dask.compute(_tree_sum(parts))[0]
+        ritz, vectors = np.linalg.eigh(basis.T @ sample)  # Q^T X X^T Q: the Rayleigh-Ritz matrix
+        ritz, vectors = np.clip(ritz[::-1], 0, None), vectors[:, ::-1]
+        kept = vectors[:, :count]
+        residual = np.linalg.norm(sample @ kept - basis @ kept * ritz[:count], axis=0)
+        if residual.max() <= RITZ_TOLERANCE * ritz[0]:
+            break
     result = Decomposition(
-        eigenvalues=s[:count] ** 2 / n,
-        pcs=pcs,
-        patterns=projected @ rotation[:, :count] / np.sqrt(n),
+        eigenvalues=ritz[:count] / n,
+        pcs=basis @ kept * np.sqrt(n),
+        patterns=np.concatenate(projected) @ kept / np.sqrt(n),
         total_variance=total / n,
-        next_eigenvalue=float(s[count] ** 2 / n) if s.size > count else 0.0,
-        method=(f"randomized: range finder with {OVERSAMPLING} extra vectors and {POWER_ITERATIONS} power iterations "
-                f"(Halko et al. 2011), seed {seed}, streamed over grid blocks"),
+        next_eigenvalue=float(ritz[count] / n) if ritz.size > count else 0.0,
+        method=(f"randomized: range finder with {OVERSAMPLING} extra vectors (Halko et al. 2011), seed {seed}, "
+                f"streamed over grid blocks; converged in {done} passes"),
     )
     return result, fraction
 
