@@ -21,9 +21,11 @@ Three solvers, one result:
   two passes over the data, memory ``O(n^2 + a block)``.
 - ``randomized``: a randomized range finder with oversampling and power
   iterations (Halko, Martinsson and Tropp 2011, SIAM Review 53(2), 217-288,
-  algorithms 4.4 and 5.1, numbers from memory), for both dimensions large: ``2 + q`` passes for
-  ``q`` power iterations.  The random test matrix is drawn once over the whole
-  grid from the seed, so the result does not depend on the blocks.
+  algorithms 4.4 and 5.1, numbers from memory), for both dimensions large:
+  two passes when the kept modes have converged after the first power
+  iteration, at most ``2 + POWER_ITERATIONS``.  The random test matrix is drawn
+  once over the whole grid from the seed, so the result does not depend on the
+  blocks.
 
 The streaming solvers see the field as blocks of ``(all time steps, some
 latitude rows)``, in which the missing-data rule, centring and weighting are
