@@ -54,7 +54,9 @@ EXACT_MAX_VALUES = 5_000_000  # time steps x points up to which the exact solver
 GRAM_MAX_STEPS = 2_000  # the Gram product costs steps^2 x points: beyond this, randomized passes are cheaper
 BLOCK_MAX_BYTES = 128e6  # float32 bytes of one block as read
 BLOCKS_PER_WORKER = 4  # at least, where the grid has the rows: keeps the workers evenly busy
-BYTES_PER_BLOCK_VALUE = 28  # read pieces + joined block (float32) + float64 working copies
+# bytes in flight per value of a block (read pieces, joined block, working copies), measured with make bench:
+# the gram solver works in float64, the randomized one in the field's float32
+BYTES_PER_BLOCK_VALUE = {"gram": 28, "randomized": 16}
 
 
 @dataclass
@@ -123,7 +125,7 @@ def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: in
         return SolverPlan("exact", why)
     fixed = gram_bytes if method == "gram" else randomized_bytes
     room = 0.7 * budget - fixed
-    per_row = workers * BYTES_PER_BLOCK_VALUE * steps * nlon
+    per_row = workers * BYTES_PER_BLOCK_VALUE[method] * steps * nlon
     if room < per_row:
         need = (fixed + per_row) / 0.7
         raise UserError(f"compute.memory: {_size(budget)} is too small for the {method} solver on {shape_text}; "
