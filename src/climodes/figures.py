@@ -72,7 +72,7 @@ def mode_map(ds: xr.Dataset, k: int, path: Path) -> None:
     fig.colorbar(mesh, ax=ax, orientation="horizontal", shrink=0.6, pad=0.02,
                  label=f"{units} per standard deviation of PC {k + 1}")
     ax.set_title(f"Mode {k + 1}: {_percent(ds, k)} of variance", loc="left", fontsize=11)
-    fig.savefig(path, dpi=110)
+    fig.savefig(path, dpi=110, bbox_inches="tight", pad_inches=0.15)  # maps of any shape keep their title
     plt.close(fig)
 
 
