@@ -344,7 +344,7 @@ def load_spec(config_path: str | Path) -> RunSpec:
     try:
         text = path.read_text(encoding="utf-8")
     except (OSError, UnicodeDecodeError) as err:
-        raise ConfigError([f"{where}: cannot read the config ({getattr(err, 'strerror', None) or err})"])
+        raise ConfigError([f"{where}: cannot read the config ({getattr(err, 'strerror', None) or err})"]) from None
     try:
         data = yaml.safe_load(text)
         root = yaml.compose(text)
@@ -352,7 +352,7 @@ def load_spec(config_path: str | Path) -> RunSpec:
         mark = getattr(err, "problem_mark", None)
         line = f":{mark.line + 1}" if mark else ""
         reason = getattr(err, "problem", None) or str(err).splitlines()[0]
-        raise ConfigError([f"{where}{line}: not valid YAML: {reason}"])
+        raise ConfigError([f"{where}{line}: not valid YAML: {reason}"]) from None
     if not isinstance(data, dict):
         raise ConfigError([f"{where}:1: expected a mapping with sections input, select, prepare, modes, output"])
 

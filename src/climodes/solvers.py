@@ -37,7 +37,6 @@ from __future__ import annotations
 import contextlib
 import warnings
 from dataclasses import dataclass, field
-from functools import reduce
 from typing import Callable, ContextManager
 
 import dask
