@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import shutil
+import subprocess
+import sys
 from pathlib import Path
 
 import numpy as np
@@ -89,3 +92,10 @@ def values_read(monkeypatch):
 
     monkeypatch.setattr(NetCDF4ArrayWrapper, "_getitem", counting)
     return counter
+
+
+def cf_strict(path: Path) -> subprocess.CompletedProcess:
+    """Run the IOOS compliance-checker on ``path``: CF-1.10, strict criteria (exit 0 when it passes)."""
+    tool = shutil.which("compliance-checker") or str(Path(sys.executable).parent / "compliance-checker")
+    return subprocess.run([tool, "-t", "cf:1.10", "-c", "strict", str(path)], capture_output=True, text=True,
+                          timeout=300)

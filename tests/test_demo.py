@@ -1,11 +1,7 @@
 """The demo end to end: planted modes recovered, the same modes as the eofs package, figures
 drawn with the network unreachable."""
 
-import shutil
 import socket
-import subprocess
-import sys
-from pathlib import Path
 
 import numpy as np
 import pytest
@@ -18,6 +14,7 @@ from climodes.demo import scenario, write_demo_fields
 from climodes.fields import open_field, select
 from climodes.prepare import prepare
 from climodes.weights import area_weights
+from conftest import cf_strict
 
 pytestmark = pytest.mark.slow
 
@@ -87,9 +84,7 @@ def test_demo_matches_the_eofs_package(demo_run):
 def test_demo_results_are_cf_compliant(demo_run):
     """IOOS compliance-checker, CF-1.10, strict criteria."""
     root, _ = demo_run
-    tool = shutil.which("compliance-checker") or str(Path(sys.executable).parent / "compliance-checker")
-    done = subprocess.run([tool, "-t", "cf:1.10", "-c", "strict", str(root / "results" / "demo" / "modes.nc")],
-                          capture_output=True, text=True, timeout=300)
+    done = cf_strict(root / "results" / "demo" / "modes.nc")
     assert done.returncode == 0 and "All tests passed!" in done.stdout, done.stdout[-3000:]
 
 

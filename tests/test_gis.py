@@ -4,17 +4,13 @@ References: the IOOS compliance-checker (CF-1.10, strict), GDAL through the rast
 software reads NetCDF and GeoTIFF), and netCDF4/xarray for the CF grid-mapping link.
 """
 
-import shutil
-import subprocess
-import sys
-from pathlib import Path
 
 import numpy as np
 import pytest
 import rasterio
 import xarray as xr
 
-from conftest import field_dataset, red_field, write_config
+from conftest import cf_strict, field_dataset, red_field, write_config
 
 pytestmark = pytest.mark.slow
 
@@ -44,14 +40,8 @@ def variant(request, tmp_path_factory):
     return folder / "out", VARIANTS[request.param][3]
 
 
-def _compliance(path: Path) -> subprocess.CompletedProcess:
-    tool = shutil.which("compliance-checker") or str(Path(sys.executable).parent / "compliance-checker")
-    return subprocess.run([tool, "-t", "cf:1.10", "-c", "strict", str(path)], capture_output=True, text=True,
-                          timeout=300)
-
-
 def test_cf_strict_compliance(variant):
-    done = _compliance(variant[0] / "modes.nc")
+    done = cf_strict(variant[0] / "modes.nc")
     assert done.returncode == 0, done.stdout[-3000:]
     assert "All tests passed!" in done.stdout
 
