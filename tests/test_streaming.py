@@ -13,8 +13,17 @@ import numpy as np
 import pytest
 import xarray as xr
 
+from climodes.config import PrepareSection
 from climodes.errors import UserError
-from climodes.solvers import POWER_ITERATIONS, SolverPlan, plan_solver, solve
+from climodes.prepare import time_steps
+from climodes.solvers import (
+    POWER_ITERATIONS,
+    SolverPlan,
+    plan_solver,
+    solve,
+    time_operator,
+    time_operator_transposed,
+)
 from climodes.weights import area_weights
 from conftest import field_dataset, red_field, write_config
 
@@ -75,6 +84,17 @@ def test_randomized_is_within_its_stated_tolerance(field, exact):
     assert "seed 0" in result.method
 
 
+def test_randomized_stops_when_each_separated_mode_has_its_own_accuracy():
+    """A mode apart from its neighbours (by more than North et al. 1982's lambda sqrt(2/n)) needs a residual
+    of 1e-4 of its own eigenvalue; modes inside each other's sampling error only 1e-4 of the first."""
+    from climodes.solvers import _converged
+
+    ritz = np.array([100.0, 10.0, 1.0, 1.0001, 0.5])  # modes 3 and 4 mixed at n = 1000
+    assert _converged(ritz, np.array([1e-2, 1e-3, 5e-3, 5e-3]), 1000)
+    assert not _converged(ritz, np.array([1e-2, 2e-3, 5e-3, 5e-3]), 1000)  # mode 2: 2e-4 of its own
+    assert not _converged(ritz, np.array([1e-2, 1e-3, 2e-2, 5e-3]), 1000)  # mode 3: 2e-4 of the first
+
+
 def test_randomized_does_not_depend_on_blocks_or_threads(field):
     """Stated tolerance: 1e-6 relative between any two blockings of a float32 field (float32 block
     products summed in float64); the random matrix itself does not depend on the blocks."""
@@ -82,6 +102,62 @@ def test_randomized_does_not_depend_on_blocks_or_threads(field):
     with dask.config.set(scheduler="threads", num_workers=2):
         two, _, _ = _solve(field, "randomized", 11, seed=5)
     _close(one, two, 1e-6)
+
+
+@pytest.fixture(scope="module")
+def raw_field():
+    """A float32 field as archives hold it: 280 K, a seasonal cycle, a trend, then anomalies and gaps."""
+    lat = np.linspace(-60, 60, 25)
+    lon = np.arange(0, 360, 10.0)
+    time = xr.date_range("1981-01-01", periods=192, freq="MS")
+    season = 12 * np.cos(2 * np.pi * (time.month.values - 1) / 12)[:, None, None] * np.sin(np.deg2rad(lat))[:, None]
+    trend = 0.002 * np.arange(time.size)[:, None, None] * np.cos(np.deg2rad(lon))
+    values = (280 + season + trend + red_field((time.size, lat.size, lon.size), 4)).astype(np.float32)
+    values[:, 3:6, 4:9] = np.nan  # land
+    values[::11, 12, 20] = np.nan  # a gappy point, filled
+    values[::2, 14, 21] = np.nan  # too gappy: dropped
+    return xr.DataArray(values, dims=("time", "lat", "lon"), coords={"time": time, "lat": lat, "lon": lon})
+
+
+PREPARATIONS = {
+    "climatology": PrepareSection(),
+    "baseline and trend": PrepareSection(baseline=["1983-01-01", "1992-12-31"], detrend="linear"),
+    "mean only": PrepareSection(anomalies="mean"),
+    "standardized": PrepareSection(detrend="linear", standardize=True),
+}
+
+
+@pytest.mark.parametrize("how", PREPARATIONS)
+def test_the_time_operator_is_the_preparation_and_its_transpose(raw_field, how):
+    """On complete series the steps and centring are a linear map L (common practice for anomalies and
+    least-squares trends); L^T, computed a few columns at a time, equals the dense matrix's transpose."""
+    field, steps = time_steps(raw_field, PREPARATIONS[how], None, [])
+    if not steps.linear:
+        assert how == "standardized"
+        return
+    n = field.sizes["time"]
+    series = field.values[:, 0, :].astype(np.float64)  # complete points
+    prepared = steps(series)
+    np.testing.assert_allclose(time_operator(steps, series), prepared - prepared.mean(axis=0), atol=1e-9)
+    dense = time_operator(steps, np.eye(n))
+    np.testing.assert_allclose(dense @ series, time_operator(steps, series), atol=1e-8)
+    q = np.random.default_rng(0).standard_normal((n, 4))
+    np.testing.assert_allclose(time_operator_transposed(steps, q, width=50), dense.T @ q, atol=1e-10)
+
+
+@pytest.mark.parametrize("how", PREPARATIONS)
+def test_streaming_solvers_apply_the_preparation_like_exact(raw_field, how):
+    """The cheap path (steps applied to the small products) against the exact solver, which prepares the
+    whole field: 1e-8 for gram, the stated 1e-4 for randomized, with land, filled and dropped points."""
+    field, steps = time_steps(raw_field, PREPARATIONS[how], None, [])
+    weights = area_weights(field["lat"], field["lon"], "coslat")
+    exact = solve(field, weights, K, 0.2, SolverPlan("exact", "test"), steps=steps)
+    for method, rtol in (("gram", 1e-8), ("randomized", 1e-4)):
+        modes, _, counts = solve(field.chunk({"lat": 4, "time": -1}), weights, K, 0.2,
+                                 SolverPlan(method, "test", 4), steps=steps)
+        _close(modes, exact[0], rtol)
+        assert counts == exact[2]
+    assert exact[2].too_often_missing == 1 and exact[2].always_missing == 15
 
 
 def test_the_input_array_is_not_changed(field):

@@ -25,7 +25,7 @@ from climodes.output import (
     write_geotiff,
     write_netcdf,
 )
-from climodes.prepare import prepare
+from climodes.prepare import TimeSteps, time_steps
 from climodes.solvers import plan_solver, solve
 from climodes.weights import field_weights
 
@@ -43,11 +43,14 @@ class RunSummary:
         return "\n".join([self.headline, *self.table])
 
 
-def _prepared(spec: RunSpec, opened: OpenedField) -> tuple[xr.DataArray, list[str]]:
-    """Select and prepare the opened field, lazily: only coordinates are read."""
+def _prepared(spec: RunSpec, opened: OpenedField) -> tuple[xr.DataArray, TimeSteps, list[str]]:
+    """Select the opened field and take its seasonal or annual means, lazily: only coordinates are read.
+
+    The steps along time that follow (anomalies, trend, standardising) go to the solver to apply.
+    """
     notes = list(opened.notes)
-    anomaly = prepare(select(opened, spec.select), spec.prepare, spec.select.months, notes)
-    return anomaly, notes
+    field, steps = time_steps(select(opened, spec.select), spec.prepare, spec.select.months, notes)
+    return field, steps, notes
 
 
 def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress: bool = False) -> RunSummary:
@@ -64,22 +67,22 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
     """
     check_output_dir(spec.output)
     opened = open_field(spec.input, spec.select)
-    anomaly, notes = _prepared(spec, opened)
+    field, along_time, notes = _prepared(spec, opened)
     workers = worker_count(spec.compute)
-    plan = plan_solver(anomaly.shape, spec.modes.count, spec.modes.method, memory_bytes(spec.compute.memory), workers)
+    plan = plan_solver(field.shape, spec.modes.count, spec.modes.method, memory_bytes(spec.compute.memory), workers)
     if plan.lat_rows:
         opened = rechunked(opened, {"time": -1, "lat": plan.lat_rows, "lon": -1})
-        anomaly, notes = _prepared(spec, opened)
-    steps = anomaly.sizes["time"]
+        field, along_time, notes = _prepared(spec, opened)
+    steps = field.sizes["time"]
     if steps < spec.modes.count + 1:
         raise UserError(f"modes.count: {spec.modes.count} modes need at least {spec.modes.count + 1} time steps, "
                         f"but the prepared field has {steps}; lower modes.count or lengthen select.period")
     if "geotiff" in spec.output.formats:
-        check_geotiff_grid(anomaly)
-    weights = field_weights(anomaly, spec.prepare.weighting)
+        check_geotiff_grid(field)
+    weights = field_weights(field, spec.prepare.weighting)
     with dask_settings(spec.compute):
-        modes, result, counts = solve(anomaly, weights, spec.modes.count, spec.prepare.max_missing, plan,
-                                      spec.modes.seed, pass_context(progress, workers))
+        modes, result, counts = solve(field, weights, spec.modes.count, spec.prepare.max_missing, plan,
+                                      spec.modes.seed, pass_context(progress, workers), along_time)
     notes += counts.notes
     n_eff, n_eff_how = effective_sample_size(result.pcs, spec.modes.effective_sample_size)
     errors = north_errors(result.eigenvalues, n_eff)

@@ -4,11 +4,20 @@ In order: seasonal or annual means, anomalies against a baseline climatology
 or mean, a linear trend removed at each point, and standardisation.  Every
 function takes and returns a lazy ``(time, lat, lon)`` DataArray; only the time
 coordinate is looked at in memory.
+
+The steps after the means act on each point's time series alone.
+:func:`time_steps` hands them over as :class:`TimeSteps`, plain numpy kernels,
+so a solver can apply them where it is cheapest: the anomaly, trend and
+centring of a complete series are linear in it, so the streaming solvers
+apply them to their small ``(time x modes)`` products instead of to every
+block of the field in every pass.
 """
 
 from __future__ import annotations
 
 import warnings
+from dataclasses import dataclass
+from typing import Callable
 
 import numpy as np
 import xarray as xr
@@ -89,21 +98,48 @@ def _calendar_keys(time: xr.DataArray, per_year: float) -> tuple[np.ndarray, str
     return time.dt.dayofyear.values, "day of year"
 
 
-def _along_time(kernel, da: xr.DataArray, **kwargs) -> xr.DataArray:
-    """Apply a numpy ``kernel(values, **kwargs)`` that works along the first axis (time), lazily.
+@dataclass(frozen=True)
+class TimeSteps:
+    """Preparation steps that each act on every point's time series: ``(kernel, keyword arguments)`` pairs.
 
-    Each dask block holds every time step of some points (the time axis is
-    joined into one chunk), so anomalies, trends and standard deviations are
-    computed block by block in plain numpy, in the field's own dtype, on
-    C-ordered ``(time, lat, lon)`` blocks.
+    A kernel takes a ``(time, ...)`` numpy array and returns one of the same
+    shape and dtype, each column computed from that column alone.  ``linear``
+    says that every kernel is linear in a series without missing values, so
+    for such a series ``steps(a x + b y) == a steps(x) + b steps(y)``.
+
+    >>> steps = TimeSteps()  # no steps: the series as they are
+    >>> steps(np.ones((3, 2))).shape
+    (3, 2)
     """
-    if da.dims[0] != "time":
-        raise ValueError("fields are (time, lat, lon) from climodes.fields on")
-    if da.chunks:
-        data = da.data.rechunk({0: -1}).map_blocks(kernel, dtype=da.dtype, **kwargs)
-    else:
-        data = kernel(np.asarray(da.values), **kwargs)
-    return da.copy(data=data)
+
+    kernels: tuple[tuple[Callable, dict], ...] = ()
+    linear: bool = True
+
+    def __call__(self, values: np.ndarray) -> np.ndarray:
+        for kernel, kwargs in self.kernels:
+            values = kernel(values, **kwargs)
+        return values
+
+    def then(self, kernel: Callable, linear: bool = True, **kwargs) -> "TimeSteps":
+        """These steps followed by ``kernel(values, **kwargs)``."""
+        return TimeSteps(self.kernels + ((kernel, kwargs),), self.linear and linear)
+
+    def applied(self, da: xr.DataArray) -> xr.DataArray:
+        """The steps applied to a ``(time, lat, lon)`` field, lazily.
+
+        Each dask block holds every time step of some points (the time axis is
+        joined into one chunk), so the steps run block by block in plain numpy,
+        in the field's own dtype, on C-ordered ``(time, lat, lon)`` blocks.
+        """
+        if not self.kernels:
+            return da
+        if da.dims[0] != "time":
+            raise ValueError("fields are (time, lat, lon) from climodes.fields on")
+        if da.chunks:
+            data = da.data.rechunk({0: -1}).map_blocks(self, dtype=da.dtype)
+        else:
+            data = self(np.asarray(da.values))
+        return da.copy(data=data)
 
 
 def _quiet_nanmean(values: np.ndarray, axis: int = 0, keepdims: bool = True) -> np.ndarray:
@@ -127,15 +163,16 @@ def _minus_group_means(values: np.ndarray, keys: np.ndarray, in_base: np.ndarray
     return out
 
 
-def anomalies(da: xr.DataArray, how: str, baseline: list[str] | None) -> xr.DataArray:
-    """Subtract the baseline climatology (``"climatology"``) or mean (``"mean"``).
+def climatology_step(da: xr.DataArray, how: str, baseline: list[str] | None,
+                     steps: TimeSteps = TimeSteps()) -> TimeSteps:
+    """``steps`` followed by subtracting the baseline climatology (``"climatology"``) or mean (``"mean"``).
 
     The climatology is per calendar month for monthly data, per day of year
     for daily data, and the plain mean for one step a year.  Missing values
     are skipped in the means.
     """
     if how == "none":
-        return da
+        return steps
     in_base = np.ones(da.sizes["time"], dtype=bool)
     if baseline is not None:
         in_base[:] = False
@@ -151,7 +188,12 @@ def anomalies(da: xr.DataArray, how: str, baseline: list[str] | None) -> xr.Data
         if missing := sorted(set(keys) - set(keys[in_base])):
             raise UserError(f"prepare.baseline: {baseline} has no data for {which} {missing[0]}, "
                             "so its climatology is undefined; lengthen the baseline")
-    return _along_time(_minus_group_means, da, keys=keys, in_base=in_base)
+    return steps.then(_minus_group_means, keys=keys, in_base=in_base)
+
+
+def anomalies(da: xr.DataArray, how: str, baseline: list[str] | None) -> xr.DataArray:
+    """``da`` minus its baseline climatology or mean, lazily (see :func:`climatology_step`)."""
+    return climatology_step(da, how, baseline).applied(da)
 
 
 def _minus_line(values: np.ndarray, days: np.ndarray) -> np.ndarray:
@@ -168,7 +210,7 @@ def _minus_line(values: np.ndarray, days: np.ndarray) -> np.ndarray:
 
 def detrend_linear(da: xr.DataArray) -> xr.DataArray:
     """Remove the least-squares straight line in time (in days) at each point, skipping missing steps."""
-    return _along_time(_minus_line, da, days=days_since_start(da["time"]))
+    return TimeSteps().then(_minus_line, days=days_since_start(da["time"])).applied(da)
 
 
 def _scaled(values: np.ndarray) -> np.ndarray:
@@ -180,15 +222,23 @@ def _scaled(values: np.ndarray) -> np.ndarray:
 
 def standardize(da: xr.DataArray) -> xr.DataArray:
     """Divide each point by its standard deviation in time; constant points become missing."""
-    return _along_time(_scaled, da).assign_attrs({**da.attrs, "units": "1"})
+    return TimeSteps().then(_scaled, linear=False).applied(da).assign_attrs({**da.attrs, "units": "1"})
+
+
+def time_steps(da: xr.DataArray, spec: PrepareSection, months: list[int] | None,
+               notes: list[str]) -> tuple[xr.DataArray, TimeSteps]:
+    """The selected field's seasonal or annual means (lazy), and the steps of ``spec`` that follow them."""
+    da = aggregate(da, spec.aggregate, months, notes)
+    steps = climatology_step(da, spec.anomalies, spec.baseline)
+    if spec.detrend == "linear":
+        steps = steps.then(_minus_line, days=days_since_start(da["time"]))
+    if spec.standardize:
+        steps = steps.then(_scaled, linear=False)
+    return da, steps
 
 
 def prepare(da: xr.DataArray, spec: PrepareSection, months: list[int] | None, notes: list[str]) -> xr.DataArray:
     """Apply every preparation step of ``spec`` to the selected field, lazily."""
-    da = aggregate(da, spec.aggregate, months, notes)
-    da = anomalies(da, spec.anomalies, spec.baseline)
-    if spec.detrend == "linear":
-        da = detrend_linear(da)
-    if spec.standardize:
-        da = standardize(da)
-    return da
+    da, steps = time_steps(da, spec, months, notes)
+    out = steps.applied(da)
+    return out.assign_attrs({**da.attrs, "units": "1"}) if spec.standardize else out

@@ -29,7 +29,11 @@ Three solvers, one result:
 
 The streaming solvers see the field as blocks of ``(all time steps, some
 latitude rows)``, in which the missing-data rule, centring and weighting are
-local; blocks are read as the dask graph runs and never gathered.
+local; blocks are read as the dask graph runs and never gathered.  The prepare
+steps along time (anomalies, trend) arrive as :class:`~climodes.prepare.TimeSteps`
+still to be applied: on complete series the streaming solvers apply them to
+their small products instead of to every block (see "the shared block
+arithmetic" below).
 """
 
 from __future__ import annotations
@@ -44,11 +48,12 @@ import numpy as np
 import xarray as xr
 
 from climodes.errors import UserError
+from climodes.prepare import TimeSteps
 from climodes.weights import grid_coordinates, usable_points
 
 OVERSAMPLING = 10
 POWER_ITERATIONS = 3  # at most; the randomized solver stops earlier once converged
-RITZ_TOLERANCE = 1e-4  # residual of every kept mode, relative to the leading eigenvalue
+RITZ_TOLERANCE = 1e-4  # residual of a kept mode, relative to its eigenvalue (see _converged)
 EXACT_MAX_VALUES = 5_000_000  # time steps x points up to which the exact solver is chosen
 GRAM_MAX_STEPS = 2_000  # the Gram product costs steps^2 x points: beyond this, randomized passes are cheaper
 BLOCK_MAX_BYTES = 128e6  # float32 bytes of one block as read
@@ -137,6 +142,14 @@ def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: in
 
 
 # --- the shared block arithmetic
+#
+# A block holds every time step of some points, before the prepare steps along time (anomalies, trend:
+# TimeSteps) are applied.  With L the steps followed by centring, the anomaly matrix is A = L X.  On a
+# point with no missing value L is linear, so the streaming solvers take the cheap path there: they
+# multiply the field as read (only centred, to keep float32 products accurate) and apply L, or its
+# transpose, to their small (time x modes) products, once per pass instead of once per block.  Points
+# with missing values, and every point when a step is not linear (standardising), take the full path:
+# steps, missing-data rule and centring on the block itself.
 
 
 def prepare_block(values: np.ndarray, max_missing: float, dtype=np.float64) -> tuple[np.ndarray, np.ndarray]:
@@ -155,6 +168,55 @@ def prepare_block(values: np.ndarray, max_missing: float, dtype=np.float64) -> t
     return block, fraction
 
 
+def _columns(block: np.ndarray, which: np.ndarray) -> np.ndarray:
+    return block if which.all() else block[:, which]
+
+
+def _full_path(block: np.ndarray, which: np.ndarray, steps: TimeSteps, max_missing: float, dtype):
+    """Anomalies of the ``which`` points of a ``(time, point)`` block: steps, missing-data rule, centring."""
+    if not which.any():
+        return np.zeros((block.shape[0], 0), dtype=dtype), np.zeros(0)
+    return prepare_block(steps(_columns(block, which).astype(dtype, copy=False)), max_missing, dtype)
+
+
+def _centred(points: np.ndarray, dtype) -> np.ndarray:
+    """``points`` minus their time means, as a new array in ``dtype``."""
+    return np.subtract(points, points.mean(axis=0, dtype=np.float64).astype(dtype), dtype=dtype)
+
+
+def _cheap_path(block: np.ndarray, which: np.ndarray, dtype) -> np.ndarray:
+    """The ``which`` points of a block as read, centred in ``dtype`` (their anomalies are L of this)."""
+    return _centred(_columns(block, which), dtype)
+
+
+def _squares(block: np.ndarray) -> np.ndarray:
+    """Each column's sum of squares, accumulated in float64."""
+    return np.einsum("ij,ij->j", block, block, dtype=np.float64)
+
+
+def time_operator(steps: TimeSteps, series: np.ndarray) -> np.ndarray:
+    """``L @ series``: the prepare steps then centring, applied to the columns of a ``(time, k)`` matrix."""
+    out = steps(series)
+    return out - out.mean(axis=0)
+
+
+def time_operator_transposed(steps: TimeSteps, series: np.ndarray, width: int = 512) -> np.ndarray:
+    """``L^T @ series``, from the columns of ``L`` computed ``width`` at a time as ``L`` of the identity's."""
+    n = series.shape[0]
+    out = np.empty((n, series.shape[1]))
+    for start in range(0, n, width):
+        columns = time_operator(steps, np.eye(n, min(width, n - start), -start))
+        out[start:start + columns.shape[1]] = columns.T @ series
+    return out
+
+
+def _complete(block: np.ndarray, steps: TimeSteps) -> np.ndarray:
+    """The points of a block that take the cheap path: no missing value, and linear steps."""
+    if not steps.linear:
+        return np.zeros(block.shape[1], dtype=bool)
+    return ~np.isnan(block).any(axis=0)
+
+
 def _quietly(function: Callable) -> Callable:
     """Run ``function`` with 0/0 warnings silenced: all-missing points make them on the way."""
 
@@ -166,39 +228,74 @@ def _quietly(function: Callable) -> Callable:
     return wrapped
 
 
-def _weighted_block(values, weights, max_missing, dtype=np.float64):
-    block, fraction = prepare_block(values, max_missing, dtype)
-    block *= weights.astype(dtype)  # in place: the block is our own copy
-    return block, float(np.sum(np.square(block), dtype=np.float64)), fraction
+def _flat(values: np.ndarray) -> np.ndarray:
+    return values.reshape(values.shape[0], -1)
 
 
-def _gram_part(values, weights, max_missing):
-    weighted, total, fraction = _weighted_block(values, weights, max_missing)
-    return weighted @ weighted.T, total, [fraction]  # numpy hands X X^T to BLAS syrk, float64
+def _gram_part(values, weights, max_missing, steps):
+    """The block's ``X X^T``: from the cheap points (L still to apply) and the full-path ones, float64."""
+    block = _flat(values)
+    cheap = _complete(block, steps)
+    fraction = np.zeros(block.shape[1])
+    read = _cheap_path(block, cheap, np.float64)
+    read *= weights[cheap]
+    full, fraction[~cheap] = _full_path(block, ~cheap, steps, max_missing, np.float64)
+    full *= weights[~cheap]
+    return read @ read.T, full @ full.T, [fraction]  # numpy hands X X^T to BLAS syrk
 
 
 # The randomized solver works in the field's precision (float32 stays float32 in flight); each block's
-# small product is returned in float64, so the sums over blocks accumulate in float64.
+# small product is returned in float64, so the sums over blocks accumulate in float64.  Its first pass
+# takes the full path everywhere: it finds each point's missing fraction and the total variance.
 
 
-def _range_part(values, weights, max_missing, omega):
-    weighted, total, fraction = _weighted_block(values, weights, max_missing, omega.dtype)
-    return (weighted @ omega).astype(np.float64), total, [fraction]
+def _range_part(values, weights, max_missing, omega, steps):
+    """The block's ``A w Omega`` and its share of the total variance ``sum(A w)^2``.
+
+    The total variance needs every anomaly, so this pass applies the steps to the block itself; the
+    complete points (see :func:`_complete`) skip the missing-data rule, and their weights go into
+    ``Omega`` rather than into the block.
+    """
+    block = _flat(values)
+    work = omega.dtype
+    complete = _complete(block, steps)
+    fraction = np.zeros(block.shape[1])
+    anomaly = _centred(steps(_columns(block, complete).astype(work, copy=False)), work)
+    full, fraction[~complete] = _full_path(block, ~complete, steps, max_missing, work)
+    total = _squares(anomaly) @ weights[complete] ** 2 + _squares(full) @ weights[~complete] ** 2
+    sample = (anomaly @ (omega[complete] * weights[complete, None]).astype(work)).astype(np.float64)
+    sample += full @ (omega[~complete] * weights[~complete, None]).astype(work)
+    return sample, float(total), [fraction]
 
 
-def _power_part(values, weights, max_missing, basis):
-    """``X X^T Q`` over the block, and the block's rows of ``A^T Q`` (NaN at unused points)."""
-    block, fraction = prepare_block(values, max_missing, basis.dtype)
-    projected = (block.T @ basis).astype(np.float64)
-    product = (block @ (projected * weights[:, None] ** 2).astype(basis.dtype)).astype(np.float64)  # A w^2 A^T Q
-    projected[~usable_points(fraction, max_missing)] = np.nan
-    return product, [projected]
+def _power_part(values, weights, max_missing, cheap, basis, basis_t, steps):
+    """``X X^T Q`` over the block (cheap points' part still to be multiplied by L), and the block's rows
+    of ``A^T Q`` (NaN at unused points); ``basis_t`` is ``L^T Q``."""
+    block = _flat(values)
+    work = basis.dtype
+    projected = np.empty((block.shape[1], basis.shape[1]))
+    read = _cheap_path(block, cheap, work)
+    projected[cheap] = read.T @ basis_t
+    read_product = (read @ (projected[cheap] * weights[cheap, None] ** 2).astype(work)).astype(np.float64)
+    full, fraction = _full_path(block, ~cheap, steps, max_missing, work)
+    projected[~cheap] = full.T @ basis
+    full_product = (full @ (projected[~cheap] * weights[~cheap, None] ** 2).astype(work)).astype(np.float64)
+    unused = np.zeros(block.shape[1], dtype=bool)
+    unused[~cheap] = ~usable_points(fraction, max_missing)
+    projected[unused] = np.nan
+    return read_product, full_product, [projected]
 
 
-def _regression_part(values, max_missing, series):
-    block, fraction = prepare_block(values, max_missing, series.dtype)
-    maps = (block.T @ series).astype(np.float64)
-    maps[~usable_points(fraction, max_missing)] = np.nan
+def _regression_part(values, max_missing, cheap, series, series_t, steps):
+    """The block's rows of ``A^T series`` (NaN at unused points); ``series_t`` is ``L^T series``."""
+    block = _flat(values)
+    maps = np.empty((block.shape[1], series.shape[1]))
+    maps[cheap] = _cheap_path(block, cheap, series.dtype).T @ series_t
+    full, fraction = _full_path(block, ~cheap, steps, max_missing, series.dtype)
+    maps[~cheap] = full.T @ series
+    unused = np.zeros(block.shape[1], dtype=bool)
+    unused[~cheap] = ~usable_points(fraction, max_missing)
+    maps[unused] = np.nan
     return maps
 
 
@@ -216,15 +313,15 @@ def _tree_sum(parts: list):
     return parts[0]
 
 
-def _blocks(anomaly: xr.DataArray) -> list:
+def _blocks(field: xr.DataArray) -> list:
     """The field as delayed ``(time, lat rows, lon)`` blocks, all time steps in each."""
-    data = anomaly.data.rechunk({0: -1, 2: -1})
+    data = field.data.rechunk({0: -1, 2: -1})
     return list(data.to_delayed().ravel())
 
 
-def _row_slices(anomaly: xr.DataArray) -> list[slice]:
-    starts = np.cumsum((0,) + anomaly.data.rechunk({0: -1, 2: -1}).chunks[1])
-    nlon = anomaly.sizes["lon"]
+def _row_slices(field: xr.DataArray) -> list[slice]:
+    starts = np.cumsum((0,) + field.data.rechunk({0: -1, 2: -1}).chunks[1])
+    nlon = field.sizes["lon"]
     return [slice(a * nlon, b * nlon) for a, b in zip(starts[:-1], starts[1:])]
 
 
@@ -258,10 +355,11 @@ def exact_modes(anomaly: np.ndarray, weights: np.ndarray, count: int) -> Decompo
     )
 
 
-def _exact(anomaly, weights, count, max_missing, progress):
+def _exact(field, weights, count, max_missing, progress, steps):
     with progress("reading the field (1 pass)"):
-        values = _quietly(lambda: anomaly.values)()
-    block, fraction = prepare_block(values, max_missing)
+        values = _quietly(lambda: field.values)()
+    block, fraction = _quietly(_full_path)(_flat(values), np.ones(weights.size, dtype=bool), steps, max_missing,
+                                           np.float64)
     _check_points(fraction, max_missing, count)
     keep = usable_points(fraction, max_missing)
     result = exact_modes(block[:, keep], weights[keep], count)
@@ -289,61 +387,78 @@ def _leading_eigenpairs(matrix: np.ndarray, wanted: int) -> tuple[np.ndarray, np
     return np.clip(values[::-1], 0, None), vectors[:, ::-1]
 
 
-def _gram(anomaly, weights, count, max_missing, progress):
-    n = anomaly.sizes["time"] - 1
-    blocks, rows = _blocks(anomaly), _row_slices(anomaly)
-    parts = [dask.delayed(_quietly(_gram_part))(b, weights[r], max_missing) for b, r in zip(blocks, rows)]
+def _gram(field, weights, count, max_missing, progress, steps):
+    n = field.sizes["time"] - 1
+    blocks, rows = _blocks(field), _row_slices(field)
+    parts = [dask.delayed(_quietly(_gram_part))(b, weights[r], max_missing, steps) for b, r in zip(blocks, rows)]
     with progress("pass 1 of 2: time x time cross-products"):
-        gram, total, fractions = dask.compute(_tree_sum(parts))[0]
+        read_gram, full_gram, fractions = dask.compute(_tree_sum(parts))[0]
     fraction = np.concatenate(fractions)
     _check_points(fraction, max_missing, count)
+    cheap = _cheap_points(fraction, steps)
+    gram = full_gram
+    if cheap.any():
+        gram = gram + time_operator(steps, time_operator(steps, read_gram).T)  # L G L^T: G is symmetric
     values, vectors = _leading_eigenpairs(gram, min(count + 1, n + 1))  # + 1: the next one, for North's rule
     pcs = vectors[:, :count] * np.sqrt(n)
+    pcs_t = time_operator_transposed(steps, pcs) if cheap.any() else pcs
     with progress("pass 2 of 2: EOF maps"):
-        maps = dask.compute(*[dask.delayed(_quietly(_regression_part))(b, max_missing, pcs) for b in blocks])
+        maps = dask.compute(*[dask.delayed(_quietly(_regression_part))(b, max_missing, cheap[r], pcs, pcs_t, steps)
+                              for b, r in zip(blocks, rows)])
     result = Decomposition(
         eigenvalues=values[:count] / n,
         pcs=pcs,
         patterns=np.concatenate(maps) / n,
-        total_variance=total / n,
+        total_variance=float(np.trace(gram)) / n,
         next_eigenvalue=float(values[count] / n) if values.size > count else 0.0,
         method="gram: eigendecomposition of the float64 time x time cross-product, streamed over grid blocks",
     )
     return result, fraction
 
 
-def _randomized(anomaly, weights, count, max_missing, progress, seed):
+def _cheap_points(fraction: np.ndarray, steps: TimeSteps) -> np.ndarray:
+    """The points that took the cheap path in a first pass (see :func:`_complete`); when there are none,
+    L is not applied at all (it need not be linear then)."""
+    return (fraction == 0) & steps.linear
+
+
+def _randomized(field, weights, count, max_missing, progress, seed, steps):
     """Randomized range finder, then power iterations until the kept modes have converged.
 
     Each pass after the first does two things with the current orthonormal basis ``Q``: it projects the
     unweighted anomaly on it (``A^T Q``, which gives the maps), and multiplies by ``X X^T`` (the next power
     iteration).  The Rayleigh-Ritz pairs of ``Q`` and their residuals ``||X X^T u - lambda u||`` come from
-    that product at no extra pass, so the iterations stop as soon as every kept mode's residual is below
-    ``RITZ_TOLERANCE`` times the leading eigenvalue: two passes for a field with clearly dominant modes,
+    that product at no extra pass, so the iterations stop as soon as every kept mode has converged (see
+    :func:`_converged`): two passes for a field with clearly dominant modes,
     at most ``2 + POWER_ITERATIONS``.
     """
-    n = anomaly.sizes["time"] - 1
-    blocks, rows = _blocks(anomaly), _row_slices(anomaly)
+    n = field.sizes["time"] - 1
+    blocks, rows = _blocks(field), _row_slices(field)
     rank = min(count + OVERSAMPLING, n + 1, weights.size)
-    work = np.result_type(anomaly.dtype, np.float32)  # float32 fields are worked on in float32
+    work = np.result_type(field.dtype, np.float32)  # float32 fields are worked on in float32
     omega = np.random.default_rng(seed).standard_normal((weights.size, rank)).astype(work)
     most = 2 + POWER_ITERATIONS
-    parts = [dask.delayed(_quietly(_range_part))(b, weights[r], max_missing, omega[r]) for b, r in zip(blocks, rows)]
+    parts = [dask.delayed(_quietly(_range_part))(b, weights[r], max_missing, omega[r], steps)
+             for b, r in zip(blocks, rows)]
     with progress(f"pass 1 of at most {most}: random projection"):
         sample, total, fractions = dask.compute(_tree_sum(parts))[0]
     fraction = np.concatenate(fractions)
     _check_points(fraction, max_missing, count)
+    cheap = _cheap_points(fraction, steps)
     for done in range(2, most + 1):
         basis = np.linalg.qr(sample)[0]
-        parts = [dask.delayed(_quietly(_power_part))(b, weights[r], max_missing, basis.astype(work))
+        basis_t = (time_operator_transposed(steps, basis) if cheap.any() else basis).astype(work)
+        parts = [dask.delayed(_quietly(_power_part))(b, weights[r], max_missing, cheap[r], basis.astype(work),
+                                                     basis_t, steps)
                  for b, r in zip(blocks, rows)]
         with progress(f"pass {done} of at most {most}: projection and power iteration"):
-            sample, projected = dask.compute(_tree_sum(parts))[0]
+            read_product, full_product, projected = dask.compute(_tree_sum(parts))[0]
+        sample = full_product + (time_operator(steps, read_product) if cheap.any() else 0)
         ritz, vectors = np.linalg.eigh(basis.T @ sample)  # Q^T X X^T Q: the Rayleigh-Ritz matrix
         ritz, vectors = np.clip(ritz[::-1], 0, None), vectors[:, ::-1]
         kept = vectors[:, :count]
         residual = np.linalg.norm(sample @ kept - basis @ kept * ritz[:count], axis=0)
-        if residual.max() <= RITZ_TOLERANCE * ritz[0]:
+        if _converged(ritz, residual, n + 1):
             break
     result = Decomposition(
         eigenvalues=ritz[:count] / n,
@@ -355,6 +470,27 @@ def _randomized(anomaly, weights, count, max_missing, progress, seed):
                 f"streamed over grid blocks; converged in {done} passes"),
     )
     return result, fraction
+
+
+def _converged(ritz: np.ndarray, residual: np.ndarray, steps: int) -> bool:
+    """Whether the kept Ritz pairs (``residual`` long) are accurate enough to stop the power iterations.
+
+    A mode whose eigenvalue stands apart from its neighbours by more than the sampling error
+    ``lambda sqrt(2 / n)`` (North et al. 1982, with every step counted independent: the smallest error)
+    needs a residual below ``RITZ_TOLERANCE`` times its own eigenvalue, so its map and PC are accurate
+    to about that, relative, however much weaker than the first mode it is.  A mode inside that error of
+    a neighbour has no map of its own to resolve (the sampling mixes them); it needs a residual below
+    ``RITZ_TOLERANCE`` times the leading eigenvalue, which bounds the error of its eigenvalue.
+    """
+    kept = residual.size
+    gaps = np.full(kept, np.inf)
+    gaps[1:] = ritz[:kept - 1] - ritz[1:kept]
+    gaps[:-1] = np.minimum(gaps[:-1], ritz[:kept - 1] - ritz[1:kept])
+    if ritz.size > kept:
+        gaps[-1] = min(gaps[-1], ritz[kept - 1] - ritz[kept])
+    apart = gaps > ritz[:kept] * np.sqrt(2 / steps)
+    limit = RITZ_TOLERANCE * np.where(apart, ritz[:kept], ritz[0])
+    return bool(np.all(residual <= limit))
 
 
 def sign_rule(patterns: np.ndarray, lat: np.ndarray, lon: np.ndarray) -> np.ndarray:
@@ -413,15 +549,16 @@ def _counts(fraction: np.ndarray, max_missing: float, steps: int) -> PointCounts
     return counts
 
 
-def solve(anomaly: xr.DataArray, weights: xr.DataArray, count: int, max_missing: float,
+def solve(field: xr.DataArray, weights: xr.DataArray, count: int, max_missing: float,
           plan: SolverPlan = SolverPlan("exact", "default"), seed: int = 0,
-          progress: Callable[[str], ContextManager] | None = None) -> tuple[xr.Dataset, Decomposition, PointCounts]:
-    """Decompose a prepared ``(time, lat, lon)`` field into its ``count`` leading modes.
+          progress: Callable[[str], ContextManager] | None = None,
+          steps: TimeSteps = TimeSteps()) -> tuple[xr.Dataset, Decomposition, PointCounts]:
+    """Decompose a ``(time, lat, lon)`` field into its ``count`` leading modes.
 
     Parameters
     ----------
-    anomaly
-        The prepared field, lazy; for a streaming plan, chunked in latitude rows.
+    field
+        The field, lazy, before ``steps``; for a streaming plan, chunked in latitude rows.
     weights
         ``(lat, lon)`` square-root area weights.
     count
@@ -434,6 +571,9 @@ def solve(anomaly: xr.DataArray, weights: xr.DataArray, count: int, max_missing:
         Seed of the randomized solver.
     progress
         Called with a label around each pass over the data (a progress bar, thread limits).
+    steps
+        The prepare steps along time still to apply (:func:`climodes.prepare.time_steps`); none
+        when ``field`` holds the anomalies already.
 
     Returns
     -------
@@ -443,24 +583,24 @@ def solve(anomaly: xr.DataArray, weights: xr.DataArray, count: int, max_missing:
     """
     progress = progress or (lambda label: contextlib.nullcontext())
     w = np.asarray(weights.values, dtype=np.float64).reshape(-1)
-    if plan.method != "exact" and anomaly.chunks is None:
-        anomaly = anomaly.chunk({"lat": plan.lat_rows or -1})
+    if plan.method != "exact" and field.chunks is None:
+        field = field.chunk({"lat": plan.lat_rows or -1})
     if plan.method == "exact":
-        result, fraction = _exact(anomaly, w, count, max_missing, progress)
+        result, fraction = _exact(field, w, count, max_missing, progress, steps)
     elif plan.method == "gram":
-        result, fraction = _gram(anomaly, w, count, max_missing, progress)
+        result, fraction = _gram(field, w, count, max_missing, progress, steps)
     else:
-        result, fraction = _randomized(anomaly, w, count, max_missing, progress, seed)
-    counts = _counts(fraction, max_missing, anomaly.sizes["time"])
+        result, fraction = _randomized(field, w, count, max_missing, progress, seed, steps)
+    counts = _counts(fraction, max_missing, field.sizes["time"])
     if result.total_variance == 0 or result.eigenvalues[0] <= 1e-12 * max(result.total_variance, 1e-300):
         raise UserError("input.variable: the prepared field is constant in time at every point, "
                         "so it has no modes; check the variable and prepare settings")
-    lat2d, lon2d = (c.reshape(-1) for c in grid_coordinates(anomaly))
+    lat2d, lon2d = (c.reshape(-1) for c in grid_coordinates(field))
     signs = sign_rule(result.patterns, lat2d, lon2d)
     result.pcs *= signs
     result.patterns *= signs
 
-    maps = result.patterns.T.reshape(count, anomaly.sizes["lat"], anomaly.sizes["lon"])
+    maps = result.patterns.T.reshape(count, field.sizes["lat"], field.sizes["lon"])
     modes = xr.Dataset(
         {
             "eof": (("mode", "lat", "lon"), maps),
@@ -469,6 +609,6 @@ def solve(anomaly: xr.DataArray, weights: xr.DataArray, count: int, max_missing:
             "variance_explained": ("mode", result.eigenvalues / result.total_variance),
         },
         coords={"mode": np.arange(1, count + 1),
-                **{name: coord.variable for name, coord in anomaly.coords.items() if name != "cell_area"}},
+                **{name: coord.variable for name, coord in field.coords.items() if name != "cell_area"}},
     )
     return modes, result, counts
