@@ -98,6 +98,17 @@ def _all_nan(tmp_path, *_):
     return [path], {"modes": {"count": 2}}
 
 
+def _infinite(method: str):
+    def make(tmp_path, *_):
+        values = np.random.default_rng(3).standard_normal((40, 6, 8))
+        values[7, 2, 3] = np.inf
+        path = tmp_path / "inf.nc"
+        field_dataset(values, np.linspace(-50, 50, 6), np.arange(0, 80.0, 10)).to_netcdf(path)
+        return [path], {"modes": {"count": 2, "method": method}}
+
+    return make
+
+
 def _one_step(tmp_path, *_):
     path = tmp_path / "one.nc"
     field_dataset(np.random.rand(1, 4, 5), np.linspace(-30, 30, 4), np.arange(0, 50.0, 10)).to_netcdf(path)
@@ -144,6 +155,9 @@ CATALOGUE = {
     "hdf5 without netcdf structure": (_plain_hdf5, "plain.h5: variable 'tas' has dimensions"),
     "non-numeric variable": (_strings, "names.nc: variable 'tas' holds text values, not numbers"),
     "nan everywhere": (_all_nan, "select: no grid point has enough data (20 missing at every step"),
+    "an infinity (exact)": (_infinite("exact"), "input.variable: the field holds infinite"),
+    "an infinity (gram)": (_infinite("gram"), "input.variable: the field holds infinite"),
+    "an infinity (randomized)": (_infinite("randomized"), "input.variable: the field holds infinite"),
     "a single time step": (_one_step, "modes.count: 1 modes need at least 2 time steps, but the prepared field has 1"),
     "negative mode count": (lambda t, m: ([_ok(t)], {"modes": {"count": -3}}), "modes.count: expected a whole number of 1"),
     "wrong type in config": (lambda t, m: ([_ok(t)], {"select": {"lat": "north"}}), "select.lat: expected [SOUTH, NORTH]"),

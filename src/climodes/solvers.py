@@ -360,6 +360,7 @@ def _exact(field, weights, count, max_missing, progress, steps):
         values = _quietly(lambda: field.values)()
     block, fraction = _quietly(_full_path)(_flat(values), np.ones(weights.size, dtype=bool), steps, max_missing,
                                            np.float64)
+    _refuse_infinities(bool(np.isinf(values).any()))
     _check_points(fraction, max_missing, count)
     keep = usable_points(fraction, max_missing)
     result = exact_modes(block[:, keep], weights[keep], count)
@@ -394,6 +395,7 @@ def _gram(field, weights, count, max_missing, progress, steps):
     with progress("pass 1 of 2: time x time cross-products"):
         read_gram, full_gram, fractions = dask.compute(_tree_sum(parts))[0]
     fraction = np.concatenate(fractions)
+    _refuse_infinities(not (np.isfinite(read_gram).all() and np.isfinite(full_gram).all()))
     _check_points(fraction, max_missing, count)
     cheap = _cheap_points(fraction, steps)
     gram = full_gram
@@ -443,6 +445,7 @@ def _randomized(field, weights, count, max_missing, progress, seed, steps):
     with progress(f"pass 1 of at most {most}: random projection"):
         sample, total, fractions = dask.compute(_tree_sum(parts))[0]
     fraction = np.concatenate(fractions)
+    _refuse_infinities(not (np.isfinite(sample).all() and np.isfinite(total)))
     _check_points(fraction, max_missing, count)
     cheap = _cheap_points(fraction, steps)
     for done in range(2, most + 1):
@@ -516,6 +519,14 @@ def sign_rule(patterns: np.ndarray, lat: np.ndarray, lon: np.ndarray) -> np.ndar
         first = near_top[np.lexsort((lon[near_top] % 360, lat[near_top]))[0]]
         signs[k] = 1.0 if patterns[first, k] >= 0 else -1.0
     return signs
+
+
+def _refuse_infinities(found: bool) -> None:
+    """Stop if the first pass met infinite values (its sums are then not finite): NaN is missing data,
+    an infinity is not."""
+    if found:
+        raise UserError("input.variable: the field holds infinite (or overflowing) values, which are not missing "
+                        "data; mark them missing in the files (_FillValue or missing_value) or fix them")
 
 
 def _check_points(fraction: np.ndarray, max_missing: float, count: int) -> None:
