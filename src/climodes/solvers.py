@@ -169,14 +169,27 @@ def prepare_block(values: np.ndarray, max_missing: float, dtype=np.float64) -> t
 
 
 def _columns(block: np.ndarray, which: np.ndarray) -> np.ndarray:
-    return block if which.all() else block[:, which]
+    """The ``which`` columns of a block, C-ordered (``block[:, which]`` is not, and slows every later step)."""
+    return block if which.all() else np.compress(which, block, axis=1)
 
 
 def _full_path(block: np.ndarray, which: np.ndarray, steps: TimeSteps, max_missing: float, dtype):
-    """Anomalies of the ``which`` points of a ``(time, point)`` block: steps, missing-data rule, centring."""
-    if not which.any():
+    """Anomalies of the ``which`` points of a ``(time, point)`` block: steps, missing-data rule, centring.
+
+    Points missing at every step (land in a sea field) are zero at once: the steps would only spend
+    NaN-skipping means on them.
+    """
+    points = _columns(block, which)
+    if points.shape[1] == 0:
         return np.zeros((block.shape[0], 0), dtype=dtype), np.zeros(0)
-    return prepare_block(steps(_columns(block, which).astype(dtype, copy=False)), max_missing, dtype)
+    has_data = ~np.isnan(points).all(axis=0)
+    if has_data.all():
+        return prepare_block(steps(points.astype(dtype, copy=False)), max_missing, dtype)
+    anomaly, fraction = np.zeros(points.shape, dtype=dtype), np.ones(points.shape[1])
+    if has_data.any():
+        anomaly[:, has_data], fraction[has_data] = prepare_block(steps(_columns(points, has_data).astype(dtype)),
+                                                                 max_missing, dtype)
+    return anomaly, fraction
 
 
 def _centred(points: np.ndarray, dtype) -> np.ndarray:
@@ -268,34 +281,28 @@ def _range_part(values, weights, max_missing, omega, steps):
     return sample, float(total), [fraction]
 
 
-def _power_part(values, weights, max_missing, cheap, basis, basis_t, steps):
-    """``X X^T Q`` over the block (cheap points' part still to be multiplied by L), and the block's rows
-    of ``A^T Q`` (NaN at unused points); ``basis_t`` is ``L^T Q``."""
+def _power_part(values, weights, max_missing, cheap, gappy, basis, basis_t, steps):
+    """``X X^T Q`` over the block (the cheap points' part still to be multiplied by L), and the block's
+    rows of ``A^T Q`` (NaN at unused points); ``basis_t`` is ``L^T Q``.  ``cheap`` and ``gappy`` (usable
+    points with missing values) come from the first pass; the other points are not used and cost nothing."""
     block = _flat(values)
     work = basis.dtype
-    projected = np.empty((block.shape[1], basis.shape[1]))
+    projected = np.full((block.shape[1], basis.shape[1]), np.nan)
     read = _cheap_path(block, cheap, work)
     projected[cheap] = read.T @ basis_t
     read_product = (read @ (projected[cheap] * weights[cheap, None] ** 2).astype(work)).astype(np.float64)
-    full, fraction = _full_path(block, ~cheap, steps, max_missing, work)
-    projected[~cheap] = full.T @ basis
-    full_product = (full @ (projected[~cheap] * weights[~cheap, None] ** 2).astype(work)).astype(np.float64)
-    unused = np.zeros(block.shape[1], dtype=bool)
-    unused[~cheap] = ~usable_points(fraction, max_missing)
-    projected[unused] = np.nan
+    full, _ = _full_path(block, gappy, steps, max_missing, work)
+    projected[gappy] = full.T @ basis
+    full_product = (full @ (projected[gappy] * weights[gappy, None] ** 2).astype(work)).astype(np.float64)
     return read_product, full_product, [projected]
 
 
-def _regression_part(values, max_missing, cheap, series, series_t, steps):
+def _regression_part(values, max_missing, cheap, gappy, series, series_t, steps):
     """The block's rows of ``A^T series`` (NaN at unused points); ``series_t`` is ``L^T series``."""
     block = _flat(values)
-    maps = np.empty((block.shape[1], series.shape[1]))
+    maps = np.full((block.shape[1], series.shape[1]), np.nan)
     maps[cheap] = _cheap_path(block, cheap, series.dtype).T @ series_t
-    full, fraction = _full_path(block, ~cheap, steps, max_missing, series.dtype)
-    maps[~cheap] = full.T @ series
-    unused = np.zeros(block.shape[1], dtype=bool)
-    unused[~cheap] = ~usable_points(fraction, max_missing)
-    maps[unused] = np.nan
+    maps[gappy] = _full_path(block, gappy, steps, max_missing, series.dtype)[0].T @ series
     return maps
 
 
@@ -397,7 +404,7 @@ def _gram(field, weights, count, max_missing, progress, steps):
     fraction = np.concatenate(fractions)
     _refuse_infinities(not (np.isfinite(read_gram).all() and np.isfinite(full_gram).all()))
     _check_points(fraction, max_missing, count)
-    cheap = _cheap_points(fraction, steps)
+    cheap, gappy = _path_points(fraction, max_missing, steps)
     gram = full_gram
     if cheap.any():
         gram = gram + time_operator(steps, time_operator(steps, read_gram).T)  # L G L^T: G is symmetric
@@ -405,7 +412,8 @@ def _gram(field, weights, count, max_missing, progress, steps):
     pcs = vectors[:, :count] * np.sqrt(n)
     pcs_t = time_operator_transposed(steps, pcs) if cheap.any() else pcs
     with progress("pass 2 of 2: EOF maps"):
-        maps = dask.compute(*[dask.delayed(_quietly(_regression_part))(b, max_missing, cheap[r], pcs, pcs_t, steps)
+        maps = dask.compute(*[dask.delayed(_quietly(_regression_part))(b, max_missing, cheap[r], gappy[r], pcs,
+                                                                       pcs_t, steps)
                               for b, r in zip(blocks, rows)])
     result = Decomposition(
         eigenvalues=values[:count] / n,
@@ -418,10 +426,11 @@ def _gram(field, weights, count, max_missing, progress, steps):
     return result, fraction
 
 
-def _cheap_points(fraction: np.ndarray, steps: TimeSteps) -> np.ndarray:
-    """The points that took the cheap path in a first pass (see :func:`_complete`); when there are none,
-    L is not applied at all (it need not be linear then)."""
-    return (fraction == 0) & steps.linear
+def _path_points(fraction: np.ndarray, max_missing: float, steps: TimeSteps) -> tuple[np.ndarray, np.ndarray]:
+    """After a first pass: the points that take the cheap path (see :func:`_complete`; when there are
+    none, L is not applied at all, and it need not be linear then) and the other usable ones."""
+    cheap = (fraction == 0) & steps.linear
+    return cheap, usable_points(fraction, max_missing) & ~cheap
 
 
 def _randomized(field, weights, count, max_missing, progress, seed, steps):
@@ -447,12 +456,12 @@ def _randomized(field, weights, count, max_missing, progress, seed, steps):
     fraction = np.concatenate(fractions)
     _refuse_infinities(not (np.isfinite(sample).all() and np.isfinite(total)))
     _check_points(fraction, max_missing, count)
-    cheap = _cheap_points(fraction, steps)
+    cheap, gappy = _path_points(fraction, max_missing, steps)
     for done in range(2, most + 1):
         basis = np.linalg.qr(sample)[0]
         basis_t = (time_operator_transposed(steps, basis) if cheap.any() else basis).astype(work)
-        parts = [dask.delayed(_quietly(_power_part))(b, weights[r], max_missing, cheap[r], basis.astype(work),
-                                                     basis_t, steps)
+        parts = [dask.delayed(_quietly(_power_part))(b, weights[r], max_missing, cheap[r], gappy[r],
+                                                     basis.astype(work), basis_t, steps)
                  for b, r in zip(blocks, rows)]
         with progress(f"pass {done} of at most {most}: projection and power iteration"):
             read_product, full_product, projected = dask.compute(_tree_sum(parts))[0]
