@@ -1,9 +1,9 @@
 """Turn a selected field into the anomalies that are decomposed.
 
 In order: seasonal or annual means, anomalies against a baseline climatology
-or mean, a linear trend removed at each point, and standardisation.  Every
-function takes and returns a lazy ``(time, lat, lon)`` DataArray; only the time
-coordinate is looked at in memory.
+or mean, a linear trend removed at each point, and standardisation.  The
+functions take lazy ``(time, lat, lon)`` DataArrays and return them (or the
+steps still to apply); only the time coordinate is looked at in memory.
 
 The steps after the means act on each point's time series alone.
 :func:`time_steps` hands them over as :class:`TimeSteps`, plain numpy kernels,
@@ -163,16 +163,15 @@ def _minus_group_means(values: np.ndarray, keys: np.ndarray, in_base: np.ndarray
     return out
 
 
-def climatology_step(da: xr.DataArray, how: str, baseline: list[str] | None,
-                     steps: TimeSteps = TimeSteps()) -> TimeSteps:
-    """``steps`` followed by subtracting the baseline climatology (``"climatology"``) or mean (``"mean"``).
+def climatology_step(da: xr.DataArray, how: str, baseline: list[str] | None) -> TimeSteps:
+    """The step that subtracts the baseline climatology (``"climatology"``) or mean (``"mean"``) of ``da``.
 
     The climatology is per calendar month for monthly data, per day of year
     for daily data, and the plain mean for one step a year.  Missing values
     are skipped in the means.
     """
     if how == "none":
-        return steps
+        return TimeSteps()
     in_base = np.ones(da.sizes["time"], dtype=bool)
     if baseline is not None:
         in_base[:] = False
@@ -188,7 +187,7 @@ def climatology_step(da: xr.DataArray, how: str, baseline: list[str] | None,
         if missing := sorted(set(keys) - set(keys[in_base])):
             raise UserError(f"prepare.baseline: {baseline} has no data for {which} {missing[0]}, "
                             "so its climatology is undefined; lengthen the baseline")
-    return steps.then(_minus_group_means, keys=keys, in_base=in_base)
+    return TimeSteps().then(_minus_group_means, keys=keys, in_base=in_base)
 
 
 def anomalies(da: xr.DataArray, how: str, baseline: list[str] | None) -> xr.DataArray:
