@@ -243,12 +243,12 @@ def main() -> None:
     print(f"    climodes run / xarray + dask bound    {t_run / t_xr:6.1f}x")
     print(f"  planted patterns recovered, |r|: {', '.join(f'{r:.4f}' for r in recovery(out, DATA / 'monthly_1deg' / 'patterns.npy'))}")
 
-    print("\n== cost against grid points, 720 steps ==")
+    print("\n== cost against grid points, 720 steps (median of 3 runs each) ==")
     print("  points    climodes run   s per million points   added s per added million points")
     previous = None
     for name, step in (("monthly_2deg", 2.0), ("monthly_1deg", 1.0), ("monthly_halfdeg", 0.5)):
         paths = make_field(name, 720, step, 6)
-        seconds, _, _ = climodes_run(paths, "4GB")
+        seconds = float(np.median([climodes_run(paths, "4GB")[0] for _ in range(3)]))
         points = len(np.arange(-90, 90 + 1e-9, step)) * len(np.arange(0, 360, step))
         marginal = "" if previous is None else f"{(seconds - previous[1]) / (points - previous[0]) * 1e6:8.2f}"
         print(f"  {points:>7}   {seconds:9.2f} s   {seconds / points * 1e6:8.2f}               {marginal}")
