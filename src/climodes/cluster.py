@@ -19,6 +19,22 @@ from threadpoolctl import threadpool_limits
 from climodes.config import ComputeSection
 
 
+def resident_bytes() -> int:
+    """The memory this process holds now (its resident set), from ``/proc`` where there is one;
+    elsewhere the most it has held so far."""
+    try:
+        with open("/proc/self/statm") as f:
+            return int(f.read().split()[1]) * os.sysconf("SC_PAGE_SIZE")
+    except (OSError, ValueError, IndexError):
+        pass
+    try:
+        import resource
+    except ImportError:  # not on every platform
+        return 0
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    return int(peak if sys.platform == "darwin" else peak * 1024)  # bytes on macOS, KiB elsewhere
+
+
 def worker_count(spec: ComputeSection) -> int:
     """The number of workers ``spec`` asks for (``auto``: the cores this process may use)."""
     if spec.workers != "auto":

@@ -12,7 +12,7 @@ from typing import Callable
 
 import xarray as xr
 
-from climodes.cluster import dask_settings, pass_context, worker_count
+from climodes.cluster import dask_settings, pass_context, resident_bytes, worker_count
 from climodes.config import RunSpec, memory_bytes
 from climodes.diagnostics import effective_sample_size, north_errors, separated
 from climodes.errors import UserError
@@ -69,7 +69,8 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
     opened = open_field(spec.input, spec.select)
     field, along_time, notes = _prepared(spec, opened)
     workers = worker_count(spec.compute)
-    plan = plan_solver(field.shape, spec.modes.count, spec.modes.method, memory_bytes(spec.compute.memory), workers)
+    plan = plan_solver(field.shape, spec.modes.count, spec.modes.method, memory_bytes(spec.compute.memory), workers,
+                       in_use=resident_bytes())
     if plan.lat_rows:
         opened = rechunked(opened, {"time": -1, "lat": plan.lat_rows, "lon": -1})
         field, along_time, notes = _prepared(spec, opened)

@@ -100,18 +100,24 @@ def _size(nbytes: float) -> str:
     return f"{nbytes / 1e9:.2f} GB" if nbytes >= 1e8 else f"{nbytes / 1e6:.0f} MB"
 
 
-def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: int, workers: int) -> SolverPlan:
+def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: int, workers: int,
+                in_use: int = 0) -> SolverPlan:
     """Choose the solver for a ``(time, lat, lon)`` field and a memory budget in bytes.
 
     ``auto`` takes ``exact`` for small matrices that fit, ``gram`` while the
-    time x time matrix is small, and ``randomized`` beyond.
+    time x time matrix is small, and ``randomized`` beyond.  ``in_use`` is what
+    the process holds already (the interpreter and its libraries, about 0.15 GB):
+    the budget is for the whole process, so that much is not there to plan with.
     """
     steps, nlat, nlon = shape
     points = nlat * nlon
+    budget_given, budget = budget, budget - in_use
+    results_bytes = 3 * points * count * 8  # the maps, as solved, signed and written
     exact_bytes = 3 * steps * points * 8 + steps * min(steps, points) * 8
-    gram_bytes = (workers + 3) * steps * steps * 8
+    held = workers + 3 + int(np.ceil(np.log2(max(nlat, 2))))  # partial sums alive in the pairwise tree, at most
+    gram_bytes = held * steps * steps * 8 + results_bytes
     rank = min(count + OVERSAMPLING, steps, points)
-    randomized_bytes = 3 * points * rank * 8 + (workers + 2) * steps * rank * 8
+    randomized_bytes = 3 * points * rank * 8 + 2 * held * steps * rank * 8 + results_bytes
     shape_text = f"{steps} steps x {points} points ({_size(steps * points * 4)} in float32)"
     if method == "auto":
         if steps * points <= EXACT_MAX_VALUES and exact_bytes <= budget:
@@ -124,20 +130,21 @@ def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: in
         why = f"{shape_text}; chosen in the config (modes.method)"
     if method == "exact":
         if exact_bytes > budget:
-            raise UserError(f"modes.method: exact needs about {_size(exact_bytes)} for {shape_text}, more than "
-                            f"compute.memory ({_size(budget)}); use method auto or gram, or raise compute.memory")
+            raise UserError(f"modes.method: exact needs about {_size(exact_bytes + in_use)} for {shape_text}, more "
+                            f"than compute.memory ({_size(budget_given)}); use method auto or gram, or raise "
+                            "compute.memory")
         return SolverPlan("exact", why)
     fixed = gram_bytes if method == "gram" else randomized_bytes
     room = 0.7 * budget - fixed
     per_row = workers * BYTES_PER_BLOCK_VALUE[method] * steps * nlon
     if room < per_row:
-        need = (fixed + per_row) / 0.7
-        raise UserError(f"compute.memory: {_size(budget)} is too small for the {method} solver on {shape_text}; "
-                        f"give at least {_size(need)}")
+        need = in_use + (fixed + per_row) / 0.7
+        raise UserError(f"compute.memory: {_size(budget_given)} is too small for the {method} solver on "
+                        f"{shape_text}; give at least {_size(need)}")
     rows = int(min(room // per_row, BLOCK_MAX_BYTES // (4 * steps * nlon), nlat // (BLOCKS_PER_WORKER * workers)))
     rows = max(rows, 1)
     blocks = -(-nlat // rows)
-    why += f"; {blocks} block(s) of {rows} latitude rows within compute.memory {_size(budget)}"
+    why += f"; {blocks} block(s) of {rows} latitude rows within compute.memory {_size(budget_given)}"
     return SolverPlan(method, why, rows)
 
 
@@ -245,6 +252,12 @@ def _flat(values: np.ndarray) -> np.ndarray:
     return values.reshape(values.shape[0], -1)
 
 
+def _product(points: np.ndarray, other: np.ndarray):
+    """``points @ other`` in float64, or 0 when the block has no such points: partial sums that are
+    held while the blocks are added up then take no memory (numpy hands ``X @ X.T`` to BLAS syrk)."""
+    return (points @ other).astype(np.float64, copy=False) if points.shape[1] else 0
+
+
 def _gram_part(values, weights, max_missing, steps):
     """The block's ``X X^T``: from the cheap points (L still to apply) and the full-path ones, float64."""
     block = _flat(values)
@@ -254,7 +267,7 @@ def _gram_part(values, weights, max_missing, steps):
     read *= weights[cheap]
     full, fraction[~cheap] = _full_path(block, ~cheap, steps, max_missing, np.float64)
     full *= weights[~cheap]
-    return read @ read.T, full @ full.T, [fraction]  # numpy hands X X^T to BLAS syrk
+    return _product(read, read.T), _product(full, full.T), [fraction]
 
 
 # The randomized solver works in the field's precision (float32 stays float32 in flight); each block's
@@ -290,10 +303,10 @@ def _power_part(values, weights, max_missing, cheap, gappy, basis, basis_t, step
     projected = np.full((block.shape[1], basis.shape[1]), np.nan)
     read = _cheap_path(block, cheap, work)
     projected[cheap] = read.T @ basis_t
-    read_product = (read @ (projected[cheap] * weights[cheap, None] ** 2).astype(work)).astype(np.float64)
+    read_product = _product(read, (projected[cheap] * weights[cheap, None] ** 2).astype(work))
     full, _ = _full_path(block, gappy, steps, max_missing, work)
     projected[gappy] = full.T @ basis
-    full_product = (full @ (projected[gappy] * weights[gappy, None] ** 2).astype(work)).astype(np.float64)
+    full_product = _product(full, (projected[gappy] * weights[gappy, None] ** 2).astype(work))
     return read_product, full_product, [projected]
 
 
