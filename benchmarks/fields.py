@@ -2,6 +2,7 @@
 
 A field is a few smooth planted patterns times red-noise PCs, plus white noise, on a regular global
 grid, split into files along time; the planted patterns are kept beside the files to check recovery.
+A sea field has a third of its points missing at every step (invented blocky continents).
 """
 
 from __future__ import annotations
@@ -46,7 +47,14 @@ def _planted_pcs(rng: np.random.Generator, days: np.ndarray, monthly: bool) -> n
     return q * np.sqrt(steps - 1)
 
 
-def make_field(name: str, steps: int, step_deg: float, files: int, seed: int = 0) -> list[Path]:
+def land(lat: np.ndarray, lon: np.ndarray) -> np.ndarray:
+    """A third of the grid as land: blocks of about 20 x 15 degrees in a staggered pattern."""
+    rows, cols = np.meshgrid(np.arange(lat.size), np.arange(lon.size), indexing="ij")
+    step = 360 / lon.size
+    return (np.floor(cols * step / 20) + np.floor(rows * step / 15)) % 3 == 0
+
+
+def make_field(name: str, steps: int, step_deg: float, files: int, seed: int = 0, sea: bool = False) -> list[Path]:
     """Write (once) ``files`` NetCDF files of a ``steps`` x grid field; return their paths."""
     folder = DATA / name
     paths = [folder / f"{name}_{i:02d}.nc" for i in range(files)]
@@ -78,6 +86,8 @@ def make_field(name: str, steps: int, step_deg: float, files: int, seed: int = 0
                 stop = min(last, start + 100)
                 chunk = np.einsum("tk,k,kyx->tyx", pcs[start:stop], AMPLITUDES, patterns).astype(np.float32)
                 chunk += rng.standard_normal(chunk.shape, dtype=np.float32)
+                if sea:
+                    chunk[:, land(lat, lon)] = np.nan
                 field[start - first:stop - first] = chunk
     np.save(folder / "patterns.npy", patterns)
     return paths

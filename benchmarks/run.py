@@ -254,6 +254,15 @@ def main() -> None:
         print(f"  {points:>7}   {seconds:9.2f} s   {seconds / points * 1e6:8.2f}               {marginal}")
         previous = (points, seconds)
 
+    print("\n== a sea field: 720 steps x 259,920 points, a third of them land (0.75 GB) ==")
+    sea = make_field("monthly_halfdeg_sea", 720, 0.5, 6, sea=True)
+    t_sea, m_sea, _ = climodes_run(sea, "4GB")
+    t_tight, m_tight, _ = climodes_run(sea, "450MB")
+    print(f"  climodes run, memory 4GB         {t_sea:7.2f} s   peak {_gb(m_sea)}   (all points land-free: "
+          f"{previous[1]:.2f} s above)")
+    print(f"  climodes run, memory 450MB       {t_tight:7.2f} s   peak {_gb(m_tight)}   within budget: "
+          f"{'yes' if m_tight <= 450e6 else 'NO'}")
+
     if quick:
         return
     print("\n== 3,650 daily steps x 259,920 points (0.5 degree, float32, 10 files, 3.8 GB) ==")
