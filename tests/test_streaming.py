@@ -16,14 +16,8 @@ import xarray as xr
 from climodes.config import PrepareSection
 from climodes.errors import UserError
 from climodes.prepare import time_steps
-from climodes.solvers import (
-    POWER_ITERATIONS,
-    SolverPlan,
-    plan_solver,
-    solve,
-    time_operator,
-    time_operator_transposed,
-)
+from climodes.blocks import time_operator, time_operator_transposed
+from climodes.solvers import POWER_ITERATIONS, SolverPlan, plan_solver, solve
 from climodes.weights import area_weights
 from conftest import field_dataset, red_field, write_config
 

@@ -32,14 +32,12 @@ latitude rows)``, in which the missing-data rule, centring and weighting are
 local; blocks are read as the dask graph runs and never gathered.  The prepare
 steps along time (anomalies, trend) arrive as :class:`~climodes.prepare.TimeSteps`
 still to be applied: on complete series the streaming solvers apply them to
-their small products instead of to every block (see "the shared block
-arithmetic" below).
+their small products instead of to every block (see :mod:`climodes.blocks`).
 """
 
 from __future__ import annotations
 
 import contextlib
-import warnings
 from dataclasses import dataclass, field
 from typing import Callable, ContextManager
 
@@ -47,6 +45,21 @@ import dask
 import numpy as np
 import xarray as xr
 
+from climodes.blocks import (
+    field_blocks,
+    flat,
+    full_path,
+    gram_part,
+    path_points,
+    power_part,
+    quietly,
+    range_part,
+    regression_part,
+    row_slices,
+    time_operator,
+    time_operator_transposed,
+    tree_sum,
+)
 from climodes.errors import UserError
 from climodes.prepare import TimeSteps
 from climodes.weights import grid_coordinates, usable_points
@@ -148,203 +161,6 @@ def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: in
     return SolverPlan(method, why, rows)
 
 
-# --- the shared block arithmetic
-#
-# A block holds every time step of some points, before the prepare steps along time (anomalies, trend:
-# TimeSteps) are applied.  With L the steps followed by centring, the anomaly matrix is A = L X.  On a
-# point with no missing value L is linear, so the streaming solvers take the cheap path there: they
-# multiply the field as read (only centred, to keep float32 products accurate) and apply L, or its
-# transpose, to their small (time x modes) products, once per pass instead of once per block.  Points
-# with missing values, and every point when a step is not linear (standardising), take the full path:
-# steps, missing-data rule and centring on the block itself.
-
-
-def prepare_block(values: np.ndarray, max_missing: float, dtype=np.float64) -> tuple[np.ndarray, np.ndarray]:
-    """Apply the missing-data rule to a ``(time, point)`` block and centre it.
-
-    Returns the anomaly block in ``dtype`` (missing values set to zero, then
-    centred; unusable points all zero) and each point's missing fraction.
-    """
-    block = np.array(values, dtype=dtype).reshape(values.shape[0], -1)  # a copy: never change the input
-    missing = np.isnan(block)
-    fraction = missing.mean(axis=0)
-    keep = usable_points(fraction, max_missing)
-    block[missing] = 0.0
-    block -= block.mean(axis=0, dtype=np.float64).astype(dtype)
-    block[:, ~keep] = 0.0
-    return block, fraction
-
-
-def _columns(block: np.ndarray, which: np.ndarray) -> np.ndarray:
-    """The ``which`` columns of a block, C-ordered (``block[:, which]`` is not, and slows every later step)."""
-    return block if which.all() else np.compress(which, block, axis=1)
-
-
-def _full_path(block: np.ndarray, which: np.ndarray, steps: TimeSteps, max_missing: float, dtype):
-    """Anomalies of the ``which`` points of a ``(time, point)`` block: steps, missing-data rule, centring.
-
-    Points missing at every step (land in a sea field) are zero at once: the steps would only spend
-    NaN-skipping means on them.
-    """
-    points = _columns(block, which)
-    if points.shape[1] == 0:
-        return np.zeros((block.shape[0], 0), dtype=dtype), np.zeros(0)
-    has_data = ~np.isnan(points).all(axis=0)
-    if has_data.all():
-        return prepare_block(steps(points.astype(dtype, copy=False)), max_missing, dtype)
-    anomaly, fraction = np.zeros(points.shape, dtype=dtype), np.ones(points.shape[1])
-    if has_data.any():
-        anomaly[:, has_data], fraction[has_data] = prepare_block(steps(_columns(points, has_data).astype(dtype)),
-                                                                 max_missing, dtype)
-    return anomaly, fraction
-
-
-def _centred(points: np.ndarray, dtype) -> np.ndarray:
-    """``points`` minus their time means, as a new array in ``dtype``."""
-    return np.subtract(points, points.mean(axis=0, dtype=np.float64).astype(dtype), dtype=dtype)
-
-
-def _cheap_path(block: np.ndarray, which: np.ndarray, dtype) -> np.ndarray:
-    """The ``which`` points of a block as read, centred in ``dtype`` (their anomalies are L of this)."""
-    return _centred(_columns(block, which), dtype)
-
-
-def _squares(block: np.ndarray) -> np.ndarray:
-    """Each column's sum of squares, accumulated in float64."""
-    return np.einsum("ij,ij->j", block, block, dtype=np.float64)
-
-
-def time_operator(steps: TimeSteps, series: np.ndarray) -> np.ndarray:
-    """``L @ series``: the prepare steps then centring, applied to the columns of a ``(time, k)`` matrix."""
-    out = steps(series)
-    return out - out.mean(axis=0)
-
-
-def time_operator_transposed(steps: TimeSteps, series: np.ndarray, width: int = 512) -> np.ndarray:
-    """``L^T @ series``, from the columns of ``L`` computed ``width`` at a time as ``L`` of the identity's."""
-    n = series.shape[0]
-    out = np.empty((n, series.shape[1]))
-    for start in range(0, n, width):
-        columns = time_operator(steps, np.eye(n, min(width, n - start), -start))
-        out[start:start + columns.shape[1]] = columns.T @ series
-    return out
-
-
-def _complete(block: np.ndarray, steps: TimeSteps) -> np.ndarray:
-    """The points of a block that take the cheap path: no missing value, and linear steps."""
-    if not steps.linear:
-        return np.zeros(block.shape[1], dtype=bool)
-    return ~np.isnan(block).any(axis=0)
-
-
-def _quietly(function: Callable) -> Callable:
-    """Run ``function`` with 0/0 warnings silenced: all-missing points make them on the way."""
-
-    def wrapped(*args):
-        with warnings.catch_warnings(), np.errstate(invalid="ignore", divide="ignore"):
-            warnings.simplefilter("ignore", RuntimeWarning)
-            return function(*args)
-
-    return wrapped
-
-
-def _flat(values: np.ndarray) -> np.ndarray:
-    return values.reshape(values.shape[0], -1)
-
-
-def _product(points: np.ndarray, other: np.ndarray):
-    """``points @ other`` in float64, or 0 when the block has no such points: partial sums that are
-    held while the blocks are added up then take no memory (numpy hands ``X @ X.T`` to BLAS syrk)."""
-    return (points @ other).astype(np.float64, copy=False) if points.shape[1] else 0
-
-
-def _gram_part(values, weights, max_missing, steps):
-    """The block's ``X X^T``: from the cheap points (L still to apply) and the full-path ones, float64."""
-    block = _flat(values)
-    cheap = _complete(block, steps)
-    fraction = np.zeros(block.shape[1])
-    read = _cheap_path(block, cheap, np.float64)
-    read *= weights[cheap]
-    full, fraction[~cheap] = _full_path(block, ~cheap, steps, max_missing, np.float64)
-    full *= weights[~cheap]
-    return _product(read, read.T), _product(full, full.T), [fraction]
-
-
-# The randomized solver works in the field's precision (float32 stays float32 in flight); each block's
-# small product is returned in float64, so the sums over blocks accumulate in float64.  Its first pass
-# takes the full path everywhere: it finds each point's missing fraction and the total variance.
-
-
-def _range_part(values, weights, max_missing, omega, steps):
-    """The block's ``A w Omega`` and its share of the total variance ``sum(A w)^2``.
-
-    The total variance needs every anomaly, so this pass applies the steps to the block itself; the
-    complete points (see :func:`_complete`) skip the missing-data rule, and their weights go into
-    ``Omega`` rather than into the block.
-    """
-    block = _flat(values)
-    work = omega.dtype
-    complete = _complete(block, steps)
-    fraction = np.zeros(block.shape[1])
-    anomaly = _centred(steps(_columns(block, complete).astype(work, copy=False)), work)
-    full, fraction[~complete] = _full_path(block, ~complete, steps, max_missing, work)
-    total = _squares(anomaly) @ weights[complete] ** 2 + _squares(full) @ weights[~complete] ** 2
-    sample = (anomaly @ (omega[complete] * weights[complete, None]).astype(work)).astype(np.float64)
-    sample += full @ (omega[~complete] * weights[~complete, None]).astype(work)
-    return sample, float(total), [fraction]
-
-
-def _power_part(values, weights, max_missing, cheap, gappy, basis, basis_t, steps):
-    """``X X^T Q`` over the block (the cheap points' part still to be multiplied by L), and the block's
-    rows of ``A^T Q`` (NaN at unused points); ``basis_t`` is ``L^T Q``.  ``cheap`` and ``gappy`` (usable
-    points with missing values) come from the first pass; the other points are not used and cost nothing."""
-    block = _flat(values)
-    work = basis.dtype
-    projected = np.full((block.shape[1], basis.shape[1]), np.nan)
-    read = _cheap_path(block, cheap, work)
-    projected[cheap] = read.T @ basis_t
-    read_product = _product(read, (projected[cheap] * weights[cheap, None] ** 2).astype(work))
-    full, _ = _full_path(block, gappy, steps, max_missing, work)
-    projected[gappy] = full.T @ basis
-    full_product = _product(full, (projected[gappy] * weights[gappy, None] ** 2).astype(work))
-    return read_product, full_product, [projected]
-
-
-def _regression_part(values, max_missing, cheap, gappy, series, series_t, steps):
-    """The block's rows of ``A^T series`` (NaN at unused points); ``series_t`` is ``L^T series``."""
-    block = _flat(values)
-    maps = np.full((block.shape[1], series.shape[1]), np.nan)
-    maps[cheap] = _cheap_path(block, cheap, series.dtype).T @ series_t
-    maps[gappy] = _full_path(block, gappy, steps, max_missing, series.dtype)[0].T @ series
-    return maps
-
-
-def _add(a, b):
-    if isinstance(a, tuple):
-        return tuple(x + y for x, y in zip(a, b))
-    return a + b
-
-
-def _tree_sum(parts: list):
-    """Pairwise sums as a dask graph: memory for a few partial sums, not for all of them."""
-    while len(parts) > 1:
-        paired = [dask.delayed(_add)(a, b) for a, b in zip(parts[::2], parts[1::2])]
-        parts = paired + (parts[-1:] if len(parts) % 2 else [])
-    return parts[0]
-
-
-def _blocks(field: xr.DataArray) -> list:
-    """The field as delayed ``(time, lat rows, lon)`` blocks, all time steps in each."""
-    data = field.data.rechunk({0: -1, 2: -1})
-    return list(data.to_delayed().ravel())
-
-
-def _row_slices(field: xr.DataArray) -> list[slice]:
-    starts = np.cumsum((0,) + field.data.rechunk({0: -1, 2: -1}).chunks[1])
-    nlon = field.sizes["lon"]
-    return [slice(a * nlon, b * nlon) for a, b in zip(starts[:-1], starts[1:])]
-
-
 # --- the solvers
 
 
@@ -377,8 +193,8 @@ def exact_modes(anomaly: np.ndarray, weights: np.ndarray, count: int) -> Decompo
 
 def _exact(field, weights, count, max_missing, progress, steps):
     with progress("reading the field (1 pass)"):
-        values = _quietly(lambda: field.values)()
-    block, fraction = _quietly(_full_path)(_flat(values), np.ones(weights.size, dtype=bool), steps, max_missing,
+        values = quietly(lambda: field.values)()
+    block, fraction = quietly(full_path)(flat(values), np.ones(weights.size, dtype=bool), steps, max_missing,
                                            np.float64)
     _refuse_infinities(bool(np.isinf(values).any()))
     _check_points(fraction, max_missing, count)
@@ -410,14 +226,14 @@ def _leading_eigenpairs(matrix: np.ndarray, wanted: int) -> tuple[np.ndarray, np
 
 def _gram(field, weights, count, max_missing, progress, steps):
     n = field.sizes["time"] - 1
-    blocks, rows = _blocks(field), _row_slices(field)
-    parts = [dask.delayed(_quietly(_gram_part))(b, weights[r], max_missing, steps) for b, r in zip(blocks, rows)]
+    blocks, rows = field_blocks(field), row_slices(field)
+    parts = [dask.delayed(quietly(gram_part))(b, weights[r], max_missing, steps) for b, r in zip(blocks, rows)]
     with progress("pass 1 of 2: time x time cross-products"):
-        read_gram, full_gram, fractions = dask.compute(_tree_sum(parts))[0]
+        read_gram, full_gram, fractions = dask.compute(tree_sum(parts))[0]
     fraction = np.concatenate(fractions)
     _refuse_infinities(not (np.isfinite(read_gram).all() and np.isfinite(full_gram).all()))
     _check_points(fraction, max_missing, count)
-    cheap, gappy = _path_points(fraction, max_missing, steps)
+    cheap, gappy = path_points(fraction, max_missing, steps)
     gram = full_gram
     if cheap.any():
         gram = gram + time_operator(steps, time_operator(steps, read_gram).T)  # L G L^T: G is symmetric
@@ -425,7 +241,7 @@ def _gram(field, weights, count, max_missing, progress, steps):
     pcs = vectors[:, :count] * np.sqrt(n)
     pcs_t = time_operator_transposed(steps, pcs) if cheap.any() else pcs
     with progress("pass 2 of 2: EOF maps"):
-        maps = dask.compute(*[dask.delayed(_quietly(_regression_part))(b, max_missing, cheap[r], gappy[r], pcs,
+        maps = dask.compute(*[dask.delayed(quietly(regression_part))(b, max_missing, cheap[r], gappy[r], pcs,
                                                                        pcs_t, steps)
                               for b, r in zip(blocks, rows)])
     result = Decomposition(
@@ -439,13 +255,6 @@ def _gram(field, weights, count, max_missing, progress, steps):
     return result, fraction
 
 
-def _path_points(fraction: np.ndarray, max_missing: float, steps: TimeSteps) -> tuple[np.ndarray, np.ndarray]:
-    """After a first pass: the points that take the cheap path (see :func:`_complete`; when there are
-    none, L is not applied at all, and it need not be linear then) and the other usable ones."""
-    cheap = (fraction == 0) & steps.linear
-    return cheap, usable_points(fraction, max_missing) & ~cheap
-
-
 def _randomized(field, weights, count, max_missing, progress, seed, steps):
     """Randomized range finder, then power iterations until the kept modes have converged.
 
@@ -457,27 +266,27 @@ def _randomized(field, weights, count, max_missing, progress, seed, steps):
     at most ``2 + POWER_ITERATIONS``.
     """
     n = field.sizes["time"] - 1
-    blocks, rows = _blocks(field), _row_slices(field)
+    blocks, rows = field_blocks(field), row_slices(field)
     rank = min(count + OVERSAMPLING, n + 1, weights.size)
     work = np.result_type(field.dtype, np.float32)  # float32 fields are worked on in float32
     omega = np.random.default_rng(seed).standard_normal((weights.size, rank)).astype(work)
     most = 2 + POWER_ITERATIONS
-    parts = [dask.delayed(_quietly(_range_part))(b, weights[r], max_missing, omega[r], steps)
+    parts = [dask.delayed(quietly(range_part))(b, weights[r], max_missing, omega[r], steps)
              for b, r in zip(blocks, rows)]
     with progress(f"pass 1 of at most {most}: random projection"):
-        sample, total, fractions = dask.compute(_tree_sum(parts))[0]
+        sample, total, fractions = dask.compute(tree_sum(parts))[0]
     fraction = np.concatenate(fractions)
     _refuse_infinities(not (np.isfinite(sample).all() and np.isfinite(total)))
     _check_points(fraction, max_missing, count)
-    cheap, gappy = _path_points(fraction, max_missing, steps)
+    cheap, gappy = path_points(fraction, max_missing, steps)
     for done in range(2, most + 1):
         basis = np.linalg.qr(sample)[0]
         basis_t = (time_operator_transposed(steps, basis) if cheap.any() else basis).astype(work)
-        parts = [dask.delayed(_quietly(_power_part))(b, weights[r], max_missing, cheap[r], gappy[r],
+        parts = [dask.delayed(quietly(power_part))(b, weights[r], max_missing, cheap[r], gappy[r],
                                                      basis.astype(work), basis_t, steps)
                  for b, r in zip(blocks, rows)]
         with progress(f"pass {done} of at most {most}: projection and power iteration"):
-            read_product, full_product, projected = dask.compute(_tree_sum(parts))[0]
+            read_product, full_product, projected = dask.compute(tree_sum(parts))[0]
         sample = full_product + (time_operator(steps, read_product) if cheap.any() else 0)
         ritz, vectors = np.linalg.eigh(basis.T @ sample)  # Q^T X X^T Q: the Rayleigh-Ritz matrix
         ritz, vectors = np.clip(ritz[::-1], 0, None), vectors[:, ::-1]
