@@ -195,7 +195,7 @@ def _exact(field, weights, count, max_missing, progress, steps):
     with progress("reading the field (1 pass)"):
         values = quietly(lambda: field.values)()
     block, fraction = quietly(full_path)(flat(values), np.ones(weights.size, dtype=bool), steps, max_missing,
-                                           np.float64)
+                                         np.float64)
     _refuse_infinities(bool(np.isinf(values).any()))
     _check_points(fraction, max_missing, count)
     keep = usable_points(fraction, max_missing)
@@ -242,7 +242,7 @@ def _gram(field, weights, count, max_missing, progress, steps):
     pcs_t = time_operator_transposed(steps, pcs) if cheap.any() else pcs
     with progress("pass 2 of 2: EOF maps"):
         maps = dask.compute(*[dask.delayed(quietly(regression_part))(b, max_missing, cheap[r], gappy[r], pcs,
-                                                                       pcs_t, steps)
+                                                                      pcs_t, steps)
                               for b, r in zip(blocks, rows)])
     result = Decomposition(
         eigenvalues=values[:count] / n,
@@ -283,7 +283,7 @@ def _randomized(field, weights, count, max_missing, progress, seed, steps):
         basis = np.linalg.qr(sample)[0]
         basis_t = (time_operator_transposed(steps, basis) if cheap.any() else basis).astype(work)
         parts = [dask.delayed(quietly(power_part))(b, weights[r], max_missing, cheap[r], gappy[r],
-                                                     basis.astype(work), basis_t, steps)
+                                                    basis.astype(work), basis_t, steps)
                  for b, r in zip(blocks, rows)]
         with progress(f"pass {done} of at most {most}: projection and power iteration"):
             read_product, full_product, projected = dask.compute(tree_sum(parts))[0]
