@@ -154,6 +154,25 @@ def test_streaming_solvers_apply_the_preparation_like_exact(raw_field, how):
     assert exact[2].too_often_missing == 1 and exact[2].always_missing == 15
 
 
+def test_the_steps_run_on_each_block_in_the_first_pass_only(field):
+    """The point of the cheap path: after the first pass, complete points are multiplied as read and
+    the steps act only on small matrices (an identity-width chunk of 150 columns at most here)."""
+    from climodes.prepare import TimeSteps
+
+    widths = []
+
+    def minus_mean(values):  # anomalies against the mean: linear
+        widths.append(values.shape[1])
+        return values - values.mean(axis=0)
+
+    weights = area_weights(field["lat"], field["lon"], "coslat")
+    _, result, _ = solve(field.chunk({"lat": 11, "time": -1}), weights, K, 0.2, SolverPlan("randomized", "t", 11),
+                         steps=TimeSteps().then(minus_mean))
+    passes = int(re.search(r"converged in (\d) passes", result.method).group(1))
+    assert passes >= 3
+    assert sum(w > field.sizes["time"] for w in widths) == 3  # the 3 blocks of 11 rows (528 points), once
+
+
 def test_the_input_array_is_not_changed(field):
     before = field.values.copy()
     for method in ("exact", "gram", "randomized"):
