@@ -65,8 +65,11 @@ def mode_map(ds: xr.Dataset, k: int, path: Path) -> None:
     mesh = ax.pcolormesh(lons, lats, field.values, transform=ccrs.PlateCarree(), cmap=_SHADES,
                          vmin=-limit, vmax=limit, shading="nearest")
     ax.add_geometries([coastlines()], crs=ccrs.PlateCarree(), facecolor="none", edgecolor="0.15", linewidth=0.6)
-    half = np.abs(np.diff(lons, axis=-1)).min() / 2 if lons.shape[-1] > 1 else 0.5
-    ax.set_extent([lons.min() - half, lons.max() + half, lats.min(), lats.max()], crs=ccrs.PlateCarree())
+    # half the widest cell on each side, so the edge cells show whole (a curvilinear grid's cells vary)
+    half = np.abs(np.diff(lons, axis=-1)).max() / 2 if lons.shape[-1] > 1 else 0.5
+    lat_half = np.abs(np.diff(lats, axis=0)).max() / 2 if lats.shape[0] > 1 else 0.5
+    ax.set_extent([lons.min() - half, lons.max() + half, max(-90.0, lats.min() - lat_half),
+                   min(90.0, lats.max() + lat_half)], crs=ccrs.PlateCarree())
     _degree_ticks(ax, lons, lats)
     units = ds["eof"].attrs.get("units", "")
     fig.colorbar(mesh, ax=ax, orientation="horizontal", shrink=0.6, pad=0.02,
