@@ -89,6 +89,13 @@ def test_randomized_stops_when_each_separated_mode_has_its_own_accuracy():
     assert not _converged(ritz, np.array([1e-2, 1e-3, 2e-2, 5e-3]), 1000)  # mode 3: 2e-4 of the first
 
 
+def test_randomized_says_when_it_did_not_converge(field, monkeypatch):
+    monkeypatch.setattr("climodes.solvers.RITZ_TOLERANCE", 1e-30)  # out of reach
+    _, result, _ = _solve(field, "randomized", 6)
+    assert result.method.endswith(f"not converged to its tolerance in {2 + POWER_ITERATIONS} passes")
+    assert "use modes.method gram or exact" in result.notes[0]
+
+
 def test_randomized_does_not_depend_on_blocks_or_threads(field):
     """Stated tolerance: 1e-6 relative between any two blockings of a float32 field (float32 block
     products summed in float64); the random matrix itself does not depend on the blocks."""

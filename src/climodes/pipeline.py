@@ -84,7 +84,7 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
     with dask_settings(spec.compute):
         modes, result, counts = solve(field, weights, spec.modes.count, spec.prepare.max_missing, plan,
                                       spec.modes.seed, pass_context(progress, workers), along_time)
-    notes += counts.notes
+    notes += counts.notes + result.notes
     n_eff, n_eff_how = effective_sample_size(result.pcs, spec.modes.effective_sample_size)
     errors = north_errors(result.eigenvalues, n_eff)
     apart = separated(result.eigenvalues, errors, result.next_eigenvalue)

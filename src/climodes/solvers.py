@@ -86,6 +86,7 @@ class Decomposition:
     total_variance: float
     next_eigenvalue: float
     method: str
+    notes: list[str] = field(default_factory=list)
 
 
 @dataclass
@@ -293,7 +294,10 @@ def _randomized(field, weights, count, max_missing, progress, seed, steps):
         kept = vectors[:, :count]
         residual = np.linalg.norm(sample @ kept - basis @ kept * ritz[:count], axis=0)
         if _converged(ritz, residual, n + 1):
+            how = f"converged in {done} passes"
             break
+    else:
+        how = f"not converged to its tolerance in {done} passes"
     result = Decomposition(
         eigenvalues=ritz[:count] / n,
         pcs=basis @ kept * np.sqrt(n),
@@ -301,8 +305,12 @@ def _randomized(field, weights, count, max_missing, progress, seed, steps):
         total_variance=total / n,
         next_eigenvalue=float(ritz[count] / n) if ritz.size > count else 0.0,
         method=(f"randomized: range finder with {OVERSAMPLING} extra vectors (Halko et al. 2011), seed {seed}, "
-                f"streamed over grid blocks; converged in {done} passes"),
+                f"streamed over grid blocks; {how}"),
     )
+    if how.startswith("not"):
+        result.notes.append(f"the randomized solver stopped after {done} passes with a Ritz residual up to "
+                            f"{residual.max() / ritz[0]:.1e} of the first eigenvalue, above its tolerance; "
+                            "the weaker modes may be off by more than 1e-4: use modes.method gram or exact")
     return result, fraction
 
 
