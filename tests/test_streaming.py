@@ -207,7 +207,8 @@ def test_auto_choice(shape, budget, expected):
 
 
 def test_the_budget_is_for_the_whole_process():
-    """What the process holds already (the interpreter and its libraries) is not there for blocks."""
+    """What the process holds already (the interpreter and its libraries) is not there for blocks: our own
+    contract (README, compute.memory), checked here on the plan's arithmetic."""
     shape, budget = (3650, 361, 720), int(2e9)
     alone = plan_solver(shape, 10, "randomized", budget, 2)
     loaded = plan_solver(shape, 10, "randomized", budget, 2, in_use=int(1e9))

@@ -195,9 +195,9 @@ def exact_modes(anomaly: np.ndarray, weights: np.ndarray, count: int) -> Decompo
 def _exact(field, weights, count, max_missing, progress, steps):
     with progress("reading the field (1 pass)"):
         values = quietly(lambda: field.values)()
+    _refuse_infinities(bool(np.isinf(values).any()))
     block, fraction = quietly(full_path)(flat(values), np.ones(weights.size, dtype=bool), steps, max_missing,
                                          np.float64)
-    _refuse_infinities(bool(np.isinf(values).any()))
     _check_points(fraction, max_missing, count)
     keep = usable_points(fraction, max_missing)
     result = exact_modes(block[:, keep], weights[keep], count)
