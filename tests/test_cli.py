@@ -215,13 +215,27 @@ def test_show_summarises_a_results_folder(tmp_path, small_field, cli):
                                                                        str(tmp_path / "out" / "modes.nc"), 1)
 
 
+def _foreign_results(tmp_path):
+    """A file from another program that happens to hold eof and pc variables."""
+    ds = xr.Dataset({"eof": (("mode", "lat", "lon"), np.ones((2, 3, 4))), "pc": (("mode", "time"), np.ones((2, 5))),
+                     "eigenvalue": ("mode", [2.0, 1.0]), "variance_explained": ("mode", [0.5, 0.2]),
+                     "variance_explained_error": ("mode", [0.1, 0.1])}, attrs={"source": "a model post-processor"})
+    ds.to_netcdf(tmp_path / "foreign.nc")
+    ds.assign(eof=(("mode", "x"), np.ones((2, 12)))).assign_attrs(source="climodes 0.1.0").to_netcdf(tmp_path / "flat.nc")
+
+
 @pytest.mark.parametrize("target, expected", [
     ("missing", "no such results file"),
     ("field.nc", "not a climodes results file"),
     ("text.nc", "cannot be read as NetCDF"),
+    ("empty.nc", "empty.nc: the file is empty"),
+    ("foreign.nc", "not a climodes results file (made by 'a model post-processor')"),
+    ("flat.nc", "flat.nc: eof has dimensions ('mode', 'x')"),
 ])
 def test_show_refuses_what_is_not_results(tmp_path, small_field, cli, target, expected):
     (tmp_path / "text.nc").write_text("not netcdf")
+    (tmp_path / "empty.nc").write_bytes(b"")
+    _foreign_results(tmp_path)
     code, out, err = cli("show", tmp_path / target)
     assert code == 2 and expected in err and len(err.strip().splitlines()) == 1 and out == ""
 

@@ -27,6 +27,7 @@ import xarray as xr
 
 from climodes.config import InputSection, SelectSection
 from climodes.errors import UserError
+from climodes.grid import GRID_LAT, GRID_LON
 
 _LAT_UNITS = {"degrees_north", "degree_north", "degree_n", "degrees_n", "degreen", "degreesn"}
 _LON_UNITS = {"degrees_east", "degree_east", "degree_e", "degrees_e", "degreee", "degreese"}
@@ -199,9 +200,6 @@ def _open_one(path: str, variable: str) -> tuple[xr.DataArray, xr.Dataset]:
         raise UserError(f"{path}: variable {variable!r} holds {kind} values, not numbers; set input.variable to a "
                         "numeric field")
     return da, ds
-
-
-GRID_LAT, GRID_LON = "grid_lat", "grid_lon"  # the 2-D coordinates of a curvilinear grid, inside climodes
 
 
 def _with_cell_areas(da: xr.DataArray, ds: xr.Dataset, name: str | None, path: str) -> xr.DataArray:

@@ -21,6 +21,7 @@ import xarray as xr  # noqa: E402
 from cartopy.mpl.ticker import LatitudeFormatter, LongitudeFormatter  # noqa: E402
 
 from climodes.coastline import coastlines  # noqa: E402
+from climodes.grid import map_coordinates  # noqa: E402
 
 cartopy.config["downloaders"] = {}
 
@@ -29,9 +30,8 @@ _SHADES = "RdBu_r"
 
 def lon_lat(ds: xr.Dataset) -> tuple[np.ndarray, np.ndarray]:
     """Longitudes and latitudes of the maps' points: 1-D axes, or the 2-D coordinates of a curvilinear grid."""
-    coords = ds["eof"].coords
-    pick = {coords[c].attrs.get("standard_name"): c for c in coords}
-    return ds[pick["longitude"]].values, ds[pick["latitude"]].values
+    lat, lon = map_coordinates(ds)
+    return ds[lon].values, ds[lat].values
 
 
 def _percent(ds: xr.Dataset, k: int) -> str:

@@ -24,7 +24,8 @@ import xarray as xr
 from climodes import __version__
 from climodes.config import OutputSection, RunSpec
 from climodes.errors import UserError
-from climodes.fields import GRID_LAT, GRID_LON, OpenedField
+from climodes.fields import OpenedField
+from climodes.grid import GRID_LAT, GRID_LON
 
 FILL = 9.969209968386869e36  # the netCDF default fill for doubles
 

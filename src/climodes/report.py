@@ -7,21 +7,8 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
-from climodes.errors import UserError
-
-
-def _open_results(path: Path) -> xr.Dataset:
-    target = path / "modes.nc" if path.is_dir() else path
-    if not target.exists():
-        raise UserError(f"{target}: no such results file; give a results folder or its modes.nc")
-    try:
-        ds = xr.open_dataset(target)
-    except Exception as err:  # any backend's error: the file is not readable NetCDF
-        raise UserError(f"{target}: cannot be read as NetCDF ({str(err).splitlines()[0]})") from None
-    missing = [v for v in ("eof", "pc", "variance_explained", "variance_explained_error") if v not in ds]
-    if missing:
-        raise UserError(f"{target}: not a climodes results file (no {', '.join(missing)})")
-    return ds
+from climodes.grid import map_coordinates
+from climodes.results import open_results
 
 
 def _range(values: np.ndarray) -> str:
@@ -32,10 +19,9 @@ def _range(values: np.ndarray) -> str:
 
 def summary(path: str | Path) -> str:
     """The summary text of a results folder or ``modes.nc``."""
-    ds = _open_results(Path(path))
+    ds = open_results(path)
     _, rows, columns = ds["eof"].dims
-    coords = {ds[c].attrs.get("standard_name"): c for c in ds["eof"].coords}
-    lat, lon = coords.get("latitude", rows), coords.get("longitude", columns)
+    lat, lon = map_coordinates(ds)
     time = ds["pc"].dims[1]
     attrs = ds.attrs
     units = ds["eof"].attrs.get("units", "?")

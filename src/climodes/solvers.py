@@ -62,7 +62,8 @@ from climodes.blocks import (
 )
 from climodes.errors import UserError
 from climodes.prepare import TimeSteps
-from climodes.weights import grid_coordinates, usable_points
+from climodes.grid import grid_coordinates
+from climodes.weights import usable_points
 
 OVERSAMPLING = 10
 POWER_ITERATIONS = 3  # at most; the randomized solver stops earlier once converged

@@ -14,7 +14,7 @@ import numpy as np
 import xarray as xr
 
 from climodes.errors import UserError
-from climodes.fields import GRID_LAT, GRID_LON
+from climodes.grid import is_curvilinear
 
 
 def _cell_edges(lat: np.ndarray) -> np.ndarray:
@@ -71,14 +71,6 @@ def area_weights(lat: xr.DataArray, lon: xr.DataArray, how: str) -> xr.DataArray
     return xr.DataArray(values, dims=("lat", "lon"), coords={"lat": lat, "lon": lon}, name="weight")
 
 
-def grid_coordinates(field: xr.DataArray) -> tuple[np.ndarray, np.ndarray]:
-    """Latitude and longitude of every ``(lat, lon)`` point, as 2-D arrays, on any grid."""
-    if GRID_LAT in field.coords:
-        return field[GRID_LAT].values, field[GRID_LON].values
-    lat, lon = xr.broadcast(field["lat"], field["lon"])
-    return lat.transpose("lat", "lon").values, lon.transpose("lat", "lon").values
-
-
 def field_weights(field: xr.DataArray, how: str) -> xr.DataArray:
     """The weights of ``field``'s points: from its ``cell_area`` coordinate where the files gave cell
     areas and ``how`` is ``"cell_area"``, else from the regular grid's geometry (:func:`area_weights`).
@@ -91,7 +83,7 @@ def field_weights(field: xr.DataArray, how: str) -> xr.DataArray:
             raise UserError("input.cell_area: the cell areas hold negative, missing or only zero values; "
                             "check the cell-area variable")
         return xr.DataArray(np.sqrt(area / area[area > 0].mean()), dims=("lat", "lon"), name="weight")
-    if GRID_LAT not in field.coords:
+    if not is_curvilinear(field):
         return area_weights(field["lat"], field["lon"], how)
     if how == "none":
         return xr.DataArray(np.ones((field.sizes["lat"], field.sizes["lon"])), dims=("lat", "lon"), name="weight")
