@@ -159,7 +159,7 @@ CATALOGUE = {
     "an infinity (gram)": (_infinite("gram"), "input.variable: the field holds infinite"),
     "an infinity (randomized)": (_infinite("randomized"), "input.variable: the field holds infinite"),
     "a single time step": (_one_step, "modes.count: 1 modes need at least 2 time steps, but the prepared field has 1"),
-    "negative mode count": (lambda t, m: ([_ok(t)], {"modes": {"count": -3}}), "modes.count: expected a whole number of 1"),
+    "negative mode count": (lambda t, m: ([_ok(t)], {"modes": {"count": -3}}), "modes.count: expected a whole number from 1"),
     "wrong type in config": (lambda t, m: ([_ok(t)], {"select": {"lat": "north"}}), "select.lat: expected [SOUTH, NORTH]"),
     "output inside a file": (_inside_a_file, "which is a file; choose another folder"),
     "bad yaml syntax": (_bad_yaml, "run.yaml:3: not valid YAML"),
