@@ -2,6 +2,7 @@
 
 import textwrap
 
+import numpy as np
 import pytest
 import yaml
 
@@ -283,6 +284,66 @@ def test_a_long_glob_pattern_is_left_to_the_glob(tmp_path):
 def test_an_unknown_user_in_a_path_is_kept_as_written(tmp_path):
     spec = load_spec(_write(tmp_path, "input: {paths: [a], variable: v}\noutput: {dir: ~nobody-of-this-name/out}\n"))
     assert spec.output.dir == str(tmp_path / "~nobody-of-this-name/out")
+
+
+# --- provenance: the config text recorded with the results is the same in every checkout
+
+
+def test_the_same_config_gives_the_same_text_in_any_folder(tmp_path):
+    text = """
+        input: {paths: [../data/sst_*.nc, /archive/sst_2020.nc], variable: sst}
+        prepare: {baseline: [1981, 2010]}
+        output: {dir: ../results/run}
+    """
+    specs = []
+    for checkout in ("one/configs", "elsewhere/two/configs"):
+        (tmp_path / checkout).mkdir(parents=True)
+        specs.append(load_spec(_write(tmp_path / checkout, text)))
+    assert specs[0].input.paths[0] == str(tmp_path / "one/data/sst_*.nc")  # the run reads absolute paths
+    assert specs[1].output.dir == str(tmp_path / "elsewhere/two/results/run")
+    assert specs[0].to_yaml() == specs[1].to_yaml()
+    resolved = yaml.safe_load(specs[0].to_yaml())
+    assert resolved["input"]["paths"] == ["../data/sst_*.nc", "/archive/sst_2020.nc"]
+    assert resolved["output"]["dir"] == "../results/run"
+
+
+def test_results_record_the_same_config_and_sha256_in_any_checkout(tmp_path, cli):
+    import hashlib
+    import shutil
+
+    import xarray as xr
+
+    from conftest import field_dataset, red_field
+
+    first = tmp_path / "one" / "project"
+    (first / "data").mkdir(parents=True)
+    lat, lon = np.linspace(-60, 60, 5), np.arange(0, 360, 60.0)
+    field_dataset(red_field((36, lat.size, lon.size)), lat, lon).to_netcdf(first / "data" / "field.nc")
+    _write(first, "input: {paths: [data/field.nc], variable: tas}\nmodes: {count: 2}\n"
+                  "output: {dir: results, figures: false}\n")
+    second = tmp_path / "elsewhere" / "checkout"
+    shutil.copytree(first, second)
+    attrs = []
+    for project in (first, second):
+        code, _, err = cli("run", "--quiet", project / "c.yaml")
+        assert code == 0, err
+        with xr.open_dataset(project / "results" / "modes.nc") as ds:
+            attrs.append(dict(ds.attrs))
+    assert attrs[0]["climodes_config"] == attrs[1]["climodes_config"]
+    assert attrs[0]["climodes_config_sha256"] == attrs[1]["climodes_config_sha256"] == hashlib.sha256(
+        attrs[0]["climodes_config"].encode()).hexdigest()
+    assert "paths: [data/field.nc]" in attrs[0]["climodes_config"]
+    assert str(first / "data" / "field.nc") in attrs[0]["climodes_input_files"]  # the files read, in full
+    assert str(second / "data" / "field.nc") in attrs[1]["climodes_input_files"]
+
+
+def test_a_path_replaced_after_loading_shows_as_it_now_is(tmp_path):
+    import dataclasses
+
+    spec = load_spec(_write(tmp_path, "input: {paths: [a.nc], variable: v}\n"))
+    moved = dataclasses.replace(spec, output=dataclasses.replace(spec.output, dir="/elsewhere"))
+    assert yaml.safe_load(moved.to_yaml())["output"]["dir"] == "/elsewhere"
+    assert yaml.safe_load(moved.to_yaml())["input"]["paths"] == ["a.nc"]
 
 
 def test_a_merge_key_may_be_overridden(tmp_path):

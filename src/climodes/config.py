@@ -321,7 +321,11 @@ class OutputSection:
 
 @dataclass(frozen=True)
 class RunSpec:
-    """A validated run: every key present, every default filled in, paths absolute."""
+    """A validated run: every key present, every default filled in, paths absolute.
+
+    ``written`` keeps each path key as the config wrote it beside its absolute form, so that the text
+    recorded with the results (:meth:`to_yaml`) is the same in every checkout of the config.
+    """
 
     source: Path
     input: InputSection
@@ -330,10 +334,18 @@ class RunSpec:
     modes: ModesSection
     compute: ComputeSection
     output: OutputSection
+    written: dict[tuple[str, str], tuple[Any, Any]] = field(default_factory=dict, compare=False)
 
     def to_yaml(self) -> str:
-        """The resolved configuration as YAML text (what ``climodes check`` prints)."""
+        """The configuration with every default filled in, as YAML text (what ``climodes check`` prints).
+
+        Paths appear as the config wrote them (relative ones are read from the config's folder), so the
+        text does not depend on where the config is kept.
+        """
         body = {name: dataclasses.asdict(getattr(self, name)) for name in SECTIONS}
+        for (section, key), (as_written, absolute) in self.written.items():
+            if body[section][key] == absolute:  # not replaced since the config was read
+                body[section][key] = as_written
         return yaml.safe_dump(body, sort_keys=False, default_flow_style=None, width=100)
 
 
@@ -566,4 +578,5 @@ def _resolve_paths(spec: RunSpec) -> RunSpec:
 
     inputs = dataclasses.replace(spec.input, paths=[absolute(p) for p in spec.input.paths])
     output = dataclasses.replace(spec.output, dir=absolute(spec.output.dir))
-    return dataclasses.replace(spec, input=inputs, output=output)
+    written = {("input", "paths"): (spec.input.paths, inputs.paths), ("output", "dir"): (spec.output.dir, output.dir)}
+    return dataclasses.replace(spec, input=inputs, output=output, written=written)
