@@ -258,6 +258,9 @@ def test_level_and_member_may_be_names_or_finite_numbers(tmp_path):
     ('input: {paths: [a], variable: v}\noutput: {dir: "out\\0put"}\n', 2, "output.dir: a path cannot hold a NUL"),
     ('input: {paths: [a], variable: v, cell_area: "are\\0a"}\n', 1, "input.cell_area: a NUL character cannot be"),
     ('input: {paths: [a], variable: "t\\0as"}\n', 1, "input.variable: a NUL character cannot be"),
+    # netCDF-C refuses names over NC_MAX_NAME = 256 bytes ("NetCDF: NC_MAX_NAME exceeded")
+    ('input: {paths: [a], variable: %s}\n' % ("v" * 257), 1, "input.variable: a NetCDF variable name holds at most "
+                                                             "256 bytes; got 'vvvvvvvvv"),
     ('input: {paths: ["\\uD800.nc"], variable: v}\n', 1, "input.paths: '\\ud800.nc' holds characters no file name"),
     ('input: {paths: [data/%s.nc], variable: v}\n' % ("x" * 300), 1,
      "input.paths: the name 'xxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxx... is 303 bytes long; this "

@@ -88,9 +88,11 @@ def _text(value: Any) -> str:
 
 
 def _name(value: Any) -> str:
-    """A variable name in the files: text without NUL characters, which NetCDF names cannot hold."""
+    """A variable name in the files: text without NUL characters, of at most 256 bytes (netCDF-C's NC_MAX_NAME)."""
     if "\0" in _text(value):
         raise ValueError(f"a NUL character cannot be part of a variable name; got {quoted(value)}")
+    if len(value.encode("utf-8", "surrogatepass")) > 256:
+        raise ValueError(f"a NetCDF variable name holds at most 256 bytes; got {quoted(value)}")
     return value
 
 
