@@ -227,11 +227,11 @@ NUMERIC_KEYS = ["select.lat", "select.lon", "select.months", "select.level", "se
                 "compute.workers", "compute.memory", "input.chunks"]
 
 
-@pytest.mark.parametrize("key", NUMERIC_KEYS)
-@pytest.mark.parametrize("number", [".inf", "-.inf", ".nan", "1.0e+400", "1e400", "1" + "0" * 400])
+@pytest.mark.parametrize("key, number", [
+    (key, number) for key in NUMERIC_KEYS for number in (".inf", "-.inf", ".nan", "1.0e+400", "1e400", "1" + "0" * 400)
+    if not (number == "1e400" and key in ("select.level", "select.member"))  # text: a coordinate value may be a name
+])
 def test_numbers_that_are_not_finite_or_absurd_are_refused(tmp_path, key, number):
-    if number == "1e400" and key in ("select.level", "select.member"):
-        pytest.skip("YAML reads 1e400 as text, and a coordinate value may be a name")
     section, name = key.split(".")
     value = {"select.lat": f"[-10, {number}]", "select.lon": f"[{number}, 10]", "select.months": f"[1, {number}]",
              "input.chunks": f"{{time: {number}}}", "compute.memory": f"{number}GB"}.get(key, number)
