@@ -139,6 +139,32 @@ def _disk_full(tmp_path, monkeypatch):
     return [_ok(tmp_path)], {}
 
 
+def _calendar_field(calendar: str, baseline: list):
+    """Three years of monthly steps on a CF calendar other than the standard one (cftime dates)."""
+    def make(tmp_path, *_):
+        time = xr.date_range("1980-01-01", periods=36, freq="MS", calendar=calendar, use_cftime=True)
+        path = tmp_path / f"{calendar}.nc"
+        lat, lon = np.linspace(-40, 40, 5), np.arange(0, 60.0, 10)
+        field_dataset(red_field((36, 5, 6)), lat, lon, time=time).to_netcdf(path)
+        return [path], {"prepare": {"baseline": baseline}, "modes": {"count": 2}}
+
+    return make
+
+
+def _config_text(text: str):
+    """A config written as text (anchors and aliases cannot come from a dict), reading the usual ok.nc."""
+    def make(tmp_path, *_):
+        config = tmp_path / "run.yaml"
+        config.write_text(text.format(field=_ok(tmp_path)))
+        return config
+
+    return make
+
+
+_BOMB = "\n".join(['a0: &a0 ["lol","lol","lol","lol","lol","lol","lol","lol","lol"]'] + [
+    f"a{k}: &a{k} [{','.join([f'*a{k - 1}'] * 9)}]" for k in range(1, 9)]) + "\ninput: {{paths: *a8, variable: tas}}\n"
+
+
 CATALOGUE = {
     "missing file": (lambda t, m: ([t / "absent.nc"], {}), "absent.nc: no such file"),
     "empty glob": (lambda t, m: ([t / "nothing_*.nc"], {}), "matches no file"),
@@ -159,11 +185,45 @@ CATALOGUE = {
     "an infinity (gram)": (_infinite("gram"), "input.variable: the field holds infinite"),
     "an infinity (randomized)": (_infinite("randomized"), "input.variable: the field holds infinite"),
     "a single time step": (_one_step, "modes.count: 1 modes need at least 2 time steps, but the prepared field has 1"),
-    "negative mode count": (lambda t, m: ([_ok(t)], {"modes": {"count": -3}}), "modes.count: expected a whole number of 1"),
+    "negative mode count": (lambda t, m: ([_ok(t)], {"modes": {"count": -3}}), "modes.count: expected a whole number from 1"),
     "wrong type in config": (lambda t, m: ([_ok(t)], {"select": {"lat": "north"}}), "select.lat: expected [SOUTH, NORTH]"),
     "output inside a file": (_inside_a_file, "which is a file; choose another folder"),
     "bad yaml syntax": (_bad_yaml, "run.yaml:3: not valid YAML"),
     "disk full": (_disk_full, "output.dir: cannot write the results to"),
+    # --- config schema
+    "period with month 13": (lambda t, m: ([_ok(t)], {"select": {"period": ["1980-13", 1981]}}),
+                             "run.yaml:9: select.period: months run from 1 to 12; got '1980-13'"),
+    "period with day 32": (lambda t, m: ([_ok(t)], {"select": {"period": ["1980-01-32", 1981]}}),
+                           "select.period: January has no day 32 in any calendar"),
+    "period in year 0": (lambda t, m: ([_ok(t)], {"select": {"period": [0, 1981]}}),
+                         "select.period: years run from 1 to 9999; got 0"),
+    "baseline with February 31": (lambda t, m: ([_ok(t)], {"prepare": {"baseline": ["1980", "1981-02-31"]}}),
+                                  "prepare.baseline: February has no day 31 in any calendar"),
+    "February 30 on the standard calendar": (
+        lambda t, m: ([_ok(t)], {"select": {"period": ["1980-02-30", 1981]}}),
+        "select.period: 1980-02-30 does not exist in the input's standard (Gregorian) calendar"),
+    "February 29 on a noleap calendar": (_calendar_field("noleap", ["1980-02-29", 1981]),
+                                         "prepare.baseline: 1980-02-29 does not exist in the input's noleap calendar"),
+    "January 31 on a 360_day calendar": (_calendar_field("360_day", [1980, "1980-01-31"]),
+                                         "prepare.baseline: 1980-01-31 does not exist in the input's 360_day calendar"),
+    "recursive yaml alias": (_config_text("input: &x {{paths: [{field}], variable: tas, chunks: *x}}\n"),
+                             "run.yaml:1: the alias *x stands for a value that holds it (a recursive alias)"),
+    "yaml alias bomb": (_config_text(_BOMB), "run.yaml:5: YAML aliases expand to more than 10000 values here"),
+    "huge effective sample size": (lambda t, m: ([_ok(t)], {"modes": {"effective_sample_size": 10**400}}),
+                                   "modes.effective_sample_size: expected auto or a whole number from 2 to"),
+    "nan max_missing": (lambda t, m: ([_ok(t)], {"prepare": {"max_missing": float("nan")}}),
+                        "prepare.max_missing: expected a fraction from 0 up to (not including) 1; got nan"),
+    "infinite level": (lambda t, m: ([_ok(t)], {"select": {"level": float("inf")}}),
+                       "select.level: expected one coordinate value (a finite number or a name), or null; got inf"),
+    "memory of 400 digits": (lambda t, m: ([_ok(t)], {"compute": {"memory": "9" * 400 + "GB"}}),
+                             "compute.memory: expected a size from 50MB to 1PB"),
+    "NUL byte in output.dir": (lambda t, m: ([_ok(t)], {"output": {"dir": str(t / "o\0ut")}}),
+                               "output.dir: a path cannot hold a NUL character"),
+    "NUL byte in an input path": (lambda t, m: ([t / "ok\0.nc"], {}), "input.paths: a path cannot hold a NUL"),
+    "output.dir name over the limit": (lambda t, m: ([_ok(t)], {"output": {"dir": str(t / ("x" * 300))}}),
+                                       "output.dir: the name 'xxxxxxxx"),
+    "variable name over the NetCDF limit": (lambda t, m: ([_ok(t)], {"input": {"variable": "v" * 100_000}}),
+                                            "input.variable: a NetCDF variable name holds at most 256 bytes"),
 }
 
 

@@ -10,6 +10,7 @@ import tempfile
 from pathlib import Path
 
 import numpy as np
+import xarray as xr
 import yaml
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
@@ -47,12 +48,14 @@ def _run(folder: Path, config: dict) -> tuple[int, str]:
     return code, err.getvalue()
 
 
-def _folder_with_field() -> Path:
+def _folder_with_field(calendar: str = "standard") -> Path:
     folder = Path(tempfile.mkdtemp())
     lat, lon = np.linspace(-70, 70, 8), np.arange(0, 360, 30.0)
     values = red_field((48, lat.size, lon.size), 2)
     values[:, 1, 2] = np.nan
-    field_dataset(values, lat, lon).to_netcdf(folder / "field.nc")
+    time = None if calendar == "standard" else xr.date_range("1980-01-16", periods=48, freq="MS", calendar=calendar,
+                                                             use_cftime=True)
+    field_dataset(values, lat, lon, time=time).to_netcdf(folder / "field.nc")
     return folder
 
 
@@ -95,3 +98,26 @@ def test_file_mutations_never_crash(cut, flips, how):
     code, err = _run(folder, VALID)
     assert code in (0, 2), err
     assert "Traceback" not in err
+
+
+_DATES = st.one_of(
+    st.integers(-2, 10_001),
+    st.tuples(st.integers(0, 10_000), st.integers(0, 13), st.integers(0, 32), st.integers(1, 3)).map(
+        lambda d: "-".join([f"{d[0]:04d}", f"{d[1]:02d}", f"{d[2]:02d}"][:d[3]])),
+    st.sampled_from(["1980-02-29", "1981-02-29", "1981-02-30", "1981-01-31", "1982-12-31", "1983"]),
+)
+
+
+@settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(calendar=st.sampled_from(["standard", "noleap", "360_day", "all_leap"]), key=st.sampled_from(
+    [("select", "period"), ("prepare", "baseline")]), dates=st.lists(_DATES, min_size=2, max_size=2))
+def test_period_mutations_never_crash(calendar, key, dates):
+    # Dates near the field's years (1980-1983) and at the edges of every calendar: month 0 and 13, day 0 and 32,
+    # February 29 and 30, year 0 and 10000
+    config = {k: dict(v) for k, v in VALID.items()}
+    config[key[0]][key[1]] = dates
+    code, err = _run(_folder_with_field(calendar), config)
+    assert code in (0, 2), err
+    assert "Traceback" not in err
+    if code == 2:
+        assert len(err.strip().splitlines()) == 1, err

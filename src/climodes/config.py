@@ -21,6 +21,8 @@ from __future__ import annotations
 
 import dataclasses
 import difflib
+import glob
+import math
 import os
 import re
 from dataclasses import dataclass, field
@@ -29,9 +31,17 @@ from typing import Any, Callable
 
 import yaml
 
-from climodes.errors import ConfigError
+from climodes.errors import ConfigError, quoted, shortened
 
-_DATE = re.compile(r"^\d{1,4}(-\d{1,2}(-\d{1,2})?)?$")
+_DATE = re.compile(r"^(\d{1,4})(?:-(\d{1,2})(?:-(\d{1,2}))?)?$")
+# The most days each month has in any CF calendar: 31 where the standard calendar has them, 30 in
+# February (360_day gives every month 30 days; all_leap gives February 29), from the CF conventions'
+# calendar section (common practice).  A date beyond these exists in no calendar.
+_MOST_DAYS = (31, 30, 31, 30, 31, 30, 31, 31, 30, 31, 30, 31)
+_MONTH_NAMES = ("January", "February", "March", "April", "May", "June", "July", "August", "September",
+                "October", "November", "December")
+ALIAS_VALUES = 10_000  # values YAML aliases may add to a config, all together
+NESTING = 50  # levels of lists and mappings a config may nest (a real one uses three)
 
 
 # --- value checks: each takes the YAML value and returns the normalised one or raises ValueError
@@ -41,7 +51,7 @@ def _choice(*options: str) -> Callable[[Any], str]:
     def check(value: Any) -> str:
         if value not in options:
             hint = " (YAML reads bare no/off/false as a boolean: write none)" if value is False else ""
-            raise ValueError(f"expected one of {', '.join(options)}; got {value!r}{hint}")
+            raise ValueError(f"expected one of {', '.join(options)}; got {quoted(value)}{hint}")
         return value
 
     return check
@@ -49,30 +59,58 @@ def _choice(*options: str) -> Callable[[Any], str]:
 
 def _boolean(value: Any) -> bool:
     if not isinstance(value, bool):
-        raise ValueError(f"expected true or false; got {value!r}")
+        raise ValueError(f"expected true or false; got {quoted(value)}")
     return value
 
 
-def _whole(minimum: int) -> Callable[[Any], int]:
+def _is_whole(value: Any) -> bool:
+    return isinstance(value, int) and not isinstance(value, bool)
+
+
+def _is_number(value: Any) -> bool:
+    """A finite int or float: YAML reads .inf, .nan and 1.0e+400 as floats that are not."""
+    return (_is_whole(value) and abs(value) < 1e300) or (isinstance(value, float) and math.isfinite(value))
+
+
+def _whole(minimum: int, maximum: int) -> Callable[[Any], int]:
     def check(value: Any) -> int:
-        if isinstance(value, bool) or not isinstance(value, int) or value < minimum:
-            raise ValueError(f"expected a whole number of {minimum} or more; got {value!r}")
+        if not _is_whole(value) or not minimum <= value <= maximum:
+            raise ValueError(f"expected a whole number from {minimum} to {maximum}; got {quoted(value)}")
         return value
 
     return check
 
 
-_positive_int = _whole(1)
-
-
 def _text(value: Any) -> str:
     if not isinstance(value, str) or not value.strip():
-        raise ValueError(f"expected a non-empty text; got {value!r}")
+        raise ValueError(f"expected a non-empty text; got {quoted(value)}")
     return value
 
 
-def _optional_text(value: Any) -> str | None:
-    return None if value is None else _text(value)
+def _name(value: Any) -> str:
+    """A variable name in the files: text without NUL characters, of at most 256 bytes (netCDF-C's NC_MAX_NAME)."""
+    if "\0" in _text(value):
+        raise ValueError(f"a NUL character cannot be part of a variable name; got {quoted(value)}")
+    if len(value.encode("utf-8", "surrogatepass")) > 256:
+        raise ValueError(f"a NetCDF variable name holds at most 256 bytes; got {quoted(value)}")
+    return value
+
+
+def _optional_name(value: Any) -> str | None:
+    return None if value is None else _name(value)
+
+
+def _path(value: Any) -> str:
+    """A file or folder path the system can hold; the length of each name is checked with the folder known."""
+    if not isinstance(value, str) or not value.strip():
+        raise ValueError(f"expected a path; got {quoted(value)}")
+    if "\0" in value:
+        raise ValueError(f"a path cannot hold a NUL character; got {quoted(value)}")
+    try:
+        os.fsencode(value)
+    except UnicodeError:
+        raise ValueError(f"{quoted(value)} holds characters no file name on this system can hold") from None
+    return value
 
 
 def _paths(value: Any) -> list[str]:
@@ -80,7 +118,7 @@ def _paths(value: Any) -> list[str]:
         value = [value]
     if not isinstance(value, list) or not value or not all(isinstance(p, str) and p for p in value):
         raise ValueError("expected a list of file paths or glob patterns, e.g. [data/sst_*.nc]")
-    return value
+    return [_path(p) for p in value]
 
 
 def _chunks(value: Any) -> dict[str, int]:
@@ -88,8 +126,8 @@ def _chunks(value: Any) -> dict[str, int]:
         raise ValueError("expected a mapping of axis to chunk length, e.g. {time: 120}")
     for axis, size in value.items():
         if axis not in ("time", "lat", "lon"):
-            raise ValueError(f"chunk axis {axis!r} is not one of time, lat, lon")
-        _positive_int(size)
+            raise ValueError(f"chunk axis {quoted(axis)} is not one of time, lat, lon")
+        _whole(1, 10**9)(size)
     return dict(value)
 
 
@@ -97,27 +135,35 @@ def _number_pair(low: float, high: float, what: str) -> Callable[[Any], list[flo
     def check(value: Any) -> list[float] | None:
         if value is None:
             return None
-        if (
-            not isinstance(value, list)
-            or len(value) != 2
-            or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in value)
-        ):
-            raise ValueError(f"expected [{what}] as two numbers, or null for no limit; got {value!r}")
-        if not all(low <= v <= high for v in value):
-            raise ValueError(f"values must lie between {low:g} and {high:g}; got {value!r}")
+        if not isinstance(value, list) or len(value) != 2 or not all(
+                _is_whole(v) or isinstance(v, float) for v in value):
+            raise ValueError(f"expected [{what}] as two numbers, or null for no limit; got {quoted(value)}")
+        if not all(low <= v <= high for v in value):  # refuses nan and infinities too
+            raise ValueError(f"values must lie between {low:g} and {high:g}; got {quoted(value)}")
         return [float(v) for v in value]
 
     return check
 
 
-def _date_text(value: Any) -> str:
-    text = value.isoformat() if hasattr(value, "isoformat") else str(value)
-    if isinstance(value, bool) or not _DATE.match(text):
-        raise ValueError(f"expected a date as YYYY, YYYY-MM or YYYY-MM-DD; got {value!r}")
-    return text
+def _date(value: Any) -> str:
+    """A date of any CF calendar as ``YYYY``, ``YYYY-MM`` or ``YYYY-MM-DD`` text, zero-padded."""
+    text = str(value) if _is_whole(value) else value.isoformat() if hasattr(value, "isoformat") else value
+    match = _DATE.match(text) if isinstance(text, str) else None
+    if not match:
+        raise ValueError(f"expected a date as YYYY, YYYY-MM or YYYY-MM-DD; got {quoted(value)}")
+    year, month, day = (int(p) if p else None for p in match.groups())
+    if not 1 <= year <= 9999:
+        raise ValueError(f"years run from 1 to 9999; got {quoted(value)}")
+    if month is not None and not 1 <= month <= 12:
+        raise ValueError(f"months run from 1 to 12; got {quoted(value)}")
+    if day is not None and not 1 <= day <= _MOST_DAYS[month - 1]:
+        raise ValueError(f"{_MONTH_NAMES[month - 1]} has no day {day} in any calendar (at most "
+                         f"{_MOST_DAYS[month - 1]}); got {quoted(value)}")
+    return "-".join([f"{year:04d}"] + [f"{p:02d}" for p in (month, day) if p is not None])
 
 
-def _date_key(text: str) -> tuple[int, ...]:
+def date_fields(text: str) -> tuple[int, ...]:
+    """``(year,)``, ``(year, month)`` or ``(year, month, day)`` of a date the schema accepted."""
     return tuple(int(p) for p in text.split("-"))
 
 
@@ -125,9 +171,11 @@ def _period(value: Any) -> list[str] | None:
     if value is None:
         return None
     if not isinstance(value, list) or len(value) != 2:
-        raise ValueError(f"expected [START, END], e.g. [1981, 2010], or null; got {value!r}")
-    start, end = (_date_text(v) for v in value)
-    if _date_key(start) > _date_key(end):
+        raise ValueError(f"expected [START, END], e.g. [1981, 2010], or null; got {quoted(value)}")
+    start, end = (_date(v) for v in value)
+    first = date_fields(start) + (1, 1)[len(date_fields(start)) - 1:]
+    last = date_fields(end) + (12, 31)[len(date_fields(end)) - 1:]
+    if first > last:
         raise ValueError(f"START {start} comes after END {end}")
     return [start, end]
 
@@ -135,34 +183,30 @@ def _period(value: Any) -> list[str] | None:
 def _months(value: Any) -> list[int] | None:
     if value is None:
         return None
-    if (
-        not isinstance(value, list)
-        or not value
-        or not all(isinstance(m, int) and not isinstance(m, bool) and 1 <= m <= 12 for m in value)
-    ):
-        raise ValueError(f"expected a list of month numbers 1..12, e.g. [12, 1, 2]; got {value!r}")
+    if not isinstance(value, list) or not value or not all(_is_whole(m) and 1 <= m <= 12 for m in value):
+        raise ValueError(f"expected a list of month numbers 1..12, e.g. [12, 1, 2]; got {quoted(value)}")
     if len(set(value)) != len(value):
-        raise ValueError(f"a month is listed twice in {value!r}")
+        raise ValueError(f"a month is listed twice in {quoted(value)}")
     return value
 
 
 def _coordinate_value(value: Any) -> float | str | None:
-    if value is None or (isinstance(value, (int, float, str)) and not isinstance(value, bool)):
+    if value is None or isinstance(value, str) or _is_number(value):
         return value
-    raise ValueError(f"expected one coordinate value (a number or a name), or null; got {value!r}")
+    raise ValueError(f"expected one coordinate value (a finite number or a name), or null; got {quoted(value)}")
 
 
 def _fraction(value: Any) -> float:
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not 0 <= value < 1:
-        raise ValueError(f"expected a fraction from 0 up to (not including) 1; got {value!r}")
+    if not _is_number(value) or not 0 <= value < 1:
+        raise ValueError(f"expected a fraction from 0 up to (not including) 1; got {quoted(value)}")
     return float(value)
 
 
 def _sample_size(value: Any) -> int | str:
     if value == "auto":
         return value
-    if isinstance(value, bool) or not isinstance(value, int) or value < 2:
-        raise ValueError(f"expected auto or a whole number of 2 or more; got {value!r}")
+    if not _is_whole(value) or not 2 <= value <= 10**9:
+        raise ValueError(f"expected auto or a whole number from 2 to 1000000000; got {quoted(value)}")
     return value
 
 
@@ -171,7 +215,7 @@ def _formats(value: Any) -> list[str]:
         value = [value]
     allowed = ("netcdf", "geotiff")
     if not isinstance(value, list) or not all(v in allowed for v in value) or len(set(value)) != len(value):
-        raise ValueError(f"expected a list drawn from {', '.join(allowed)}; got {value!r}")
+        raise ValueError(f"expected a list drawn from {', '.join(allowed)}; got {quoted(value)}")
     if "netcdf" not in value:
         raise ValueError("netcdf is always written (modes.nc is the results file); list geotiff beside it")
     return value
@@ -189,15 +233,17 @@ def memory_bytes(text: str) -> int:
 
 
 def _memory(value: Any) -> str:
-    if not isinstance(value, str) or not _SIZE.match(value) or memory_bytes(value) < 50e6:
-        raise ValueError(f"expected a size of at least 50MB such as \"4GB\" or \"1.5GiB\"; got {value!r}")
+    match = _SIZE.match(value) if isinstance(value, str) else None
+    size = float(match.group(1)) * _FACTORS[match.group(2).lower()] if match else 0.0  # inf for 400 digits
+    if not 50e6 <= size <= 1e15:
+        raise ValueError(f"expected a size from 50MB to 1PB such as \"4GB\" or \"1.5GiB\"; got {quoted(value)}")
     return value.strip()
 
 
 def _workers(value: Any) -> int | str:
     if value == "auto":
         return value
-    return _positive_int(value)
+    return _whole(1, 4096)(value)
 
 
 def _key(check: Callable[[Any], Any], doc: str, default: Any = dataclasses.MISSING) -> Any:
@@ -213,9 +259,9 @@ def _key(check: Callable[[Any], Any], doc: str, default: Any = dataclasses.MISSI
 @dataclass(frozen=True)
 class InputSection:
     paths: list[str] = _key(_paths, "NetCDF files or glob patterns, read from the config's folder")
-    variable: str = _key(_text, "name of the field's variable in the files")
+    variable: str = _key(_name, "name of the field's variable in the files")
     chunks: dict[str, int] = _key(_chunks, "dask chunk length per axis (time, lat, lon)", {"time": 120})
-    cell_area: str | None = _key(_optional_text, "variable in the files holding cell areas (else the one CF "
+    cell_area: str | None = _key(_optional_name, "variable in the files holding cell areas (else the one CF "
                                  "cell_measures names)", None)
 
 
@@ -251,10 +297,10 @@ class PrepareSection:
 
 @dataclass(frozen=True)
 class ModesSection:
-    count: int = _key(_positive_int, "number of modes to keep", 10)
+    count: int = _key(_whole(1, 100_000), "number of modes to keep", 10)
     method: str = _key(_choice("auto", "exact", "gram", "randomized"),
                        "solver: auto chooses from the matrix shape and compute.memory", "auto")
-    seed: int = _key(_whole(0), "random seed of the randomized solver", 0)
+    seed: int = _key(_whole(0, 2**32 - 1), "random seed of the randomized solver", 0)
     effective_sample_size: int | str = _key(
         _sample_size, "sample size for North's errors: auto (from PC autocorrelation) or a number", "auto"
     )
@@ -269,7 +315,7 @@ class ComputeSection:
 
 @dataclass(frozen=True)
 class OutputSection:
-    dir: str = _key(_text, "results folder, read from the config's folder", "results")
+    dir: str = _key(_path, "results folder, read from the config's folder", "results")
     formats: list[str] = _key(_formats, "files to write: netcdf (always), geotiff (modes.tif)", ["netcdf"])
     figures: bool = _key(_boolean, "draw a map per mode, the PC series and the variance spectrum", True)
     overwrite: bool = _key(_boolean, "replace an existing results folder", False)
@@ -277,7 +323,11 @@ class OutputSection:
 
 @dataclass(frozen=True)
 class RunSpec:
-    """A validated run: every key present, every default filled in, paths absolute."""
+    """A validated run: every key present, every default filled in, paths absolute.
+
+    ``written`` keeps each path key as the config wrote it beside its absolute form, so that the text
+    recorded with the results (:meth:`to_yaml`) is the same in every checkout of the config.
+    """
 
     source: Path
     input: InputSection
@@ -286,10 +336,18 @@ class RunSpec:
     modes: ModesSection
     compute: ComputeSection
     output: OutputSection
+    written: dict[tuple[str, str], tuple[Any, Any]] = field(default_factory=dict, compare=False)
 
     def to_yaml(self) -> str:
-        """The resolved configuration as YAML text (what ``climodes check`` prints)."""
+        """The configuration with every default filled in, as YAML text (what ``climodes check`` prints).
+
+        Paths appear as the config wrote them (relative ones are read from the config's folder), so the
+        text does not depend on where the config is kept.
+        """
         body = {name: dataclasses.asdict(getattr(self, name)) for name in SECTIONS}
+        for (section, key), (as_written, absolute) in self.written.items():
+            if body[section][key] == absolute:  # not replaced since the config was read
+                body[section][key] = as_written
         return yaml.safe_dump(body, sort_keys=False, default_flow_style=None, width=100)
 
 
@@ -306,6 +364,87 @@ SECTIONS = {
 # --- loading
 
 
+class _Refused(yaml.MarkedYAMLError):
+    """YAML that parses but that a config may not hold (alias bombs, recursive aliases, deep nesting)."""
+
+
+_TIMESTAMP = "tag:yaml.org,2002:timestamp"
+
+
+class _ConfigLoader(yaml.SafeLoader):
+    """PyYAML's safe loader with three limits, checked while the document is composed.
+
+    Aliases may add at most ``ALIAS_VALUES`` values to the document all together (an "alias bomb" of
+    nested aliases would otherwise expand exponentially), an alias may not stand for a value that holds
+    it (a recursive alias), and lists and mappings may not nest more than ``NESTING`` deep.  Dates stay
+    text (the schema checks them, so 2001-02-30 is reported, not a crash of Python's date).
+    """
+
+    yaml_implicit_resolvers = {
+        first: [(tag, regexp) for tag, regexp in resolvers if tag != _TIMESTAMP]
+        for first, resolvers in yaml.SafeLoader.yaml_implicit_resolvers.items()
+    }
+
+    def __init__(self, stream: str):
+        super().__init__(stream)
+        self._values: dict[int, int] = {}  # id(node): values it holds with its aliases expanded
+        self._added = 0  # values the aliases have added so far
+        self._open: list[str | None] = []  # anchors of the nodes being composed, outermost first
+
+    def compose_node(self, parent: yaml.Node | None, index: Any) -> yaml.Node:
+        event = self.peek_event()
+        if isinstance(event, yaml.AliasEvent):
+            if event.anchor in self._open:
+                raise _Refused(None, None, f"the alias *{shortened(event.anchor)} stands for a value that holds "
+                               "it (a recursive alias); write the value out", event.start_mark)
+            node = super().compose_node(parent, index)
+            self._added += self._values[id(node)]
+            if self._added > ALIAS_VALUES:
+                raise _Refused(None, None, f"YAML aliases expand to more than {ALIAS_VALUES} values here; "
+                               "write the values out instead of nesting aliases", event.start_mark)
+            return node
+        if len(self._open) >= NESTING:
+            raise _Refused(None, None, f"lists and mappings nested more than {NESTING} deep", event.start_mark)
+        self._open.append(getattr(event, "anchor", None))
+        try:
+            node = super().compose_node(parent, index)
+        finally:
+            self._open.pop()
+        if isinstance(node, yaml.MappingNode):
+            children = [child for pair in node.value for child in pair]
+        else:
+            children = node.value if isinstance(node, yaml.SequenceNode) else []
+        self._values[id(node)] = 1 + sum(self._values[id(child)] for child in children)
+        return node
+
+    def construct_object(self, node: yaml.Node, deep: bool = False) -> Any:
+        try:
+            return super().construct_object(node, deep)
+        except (ValueError, TypeError, OverflowError):  # e.g. !!int abc, !!timestamp 2001-02-30
+            raise _Refused(None, None, f"cannot read {quoted(node.value)} as YAML {node.tag.split(':')[-1]}",
+                           node.start_mark) from None
+
+
+def _parse(text: str, where: str, lines: dict, problems: list[str]) -> Any:
+    """The YAML document in ``text``; the line of each key goes to ``lines`` (see :func:`_key_lines`)."""
+    loader = _ConfigLoader(text)
+    try:
+        root = loader.get_single_node()
+        if root is None:
+            return None
+        _key_lines(root, (), lines, problems, where)  # before merge keys (<<) are folded into their mappings
+        return loader.construct_document(root)
+    except yaml.YAMLError as err:
+        mark = getattr(err, "problem_mark", None)
+        line = f":{mark.line + 1}" if mark else ""
+        reason = getattr(err, "problem", None) or str(err).splitlines()[0]
+        if not isinstance(err, _Refused):
+            reason = f"not valid YAML: {shortened(str(reason), 100)}"
+        raise ConfigError([f"{where}{line}: {reason}"]) from None
+    finally:
+        loader.dispose()
+
+
 def _key_lines(node: yaml.Node, path: tuple[str, ...], lines: dict, problems: list[str], where: str) -> None:
     """Record the line of every mapping key, and report keys given twice."""
     if isinstance(node, yaml.MappingNode):
@@ -315,7 +454,7 @@ def _key_lines(node: yaml.Node, path: tuple[str, ...], lines: dict, problems: li
             line = key_node.start_mark.line + 1
             dotted = ".".join(path + (key,))
             if key in seen:
-                problems.append(f"{where}:{line}: {dotted}: given twice; keep one")
+                problems.append(f"{where}:{line}: {shortened(dotted)}: given twice; keep one")
             seen.add(key)
             lines[path + (key,)] = line
             _key_lines(value_node, path + (key,), lines, problems, where)
@@ -332,7 +471,7 @@ def load_spec(config_path: str | Path) -> RunSpec:
     Returns
     -------
     RunSpec
-        The validated run with all defaults filled in.
+        The validated run with all defaults filled in and its paths made absolute.
 
     Raises
     ------
@@ -345,37 +484,29 @@ def load_spec(config_path: str | Path) -> RunSpec:
         text = path.read_text(encoding="utf-8")
     except (OSError, UnicodeDecodeError) as err:
         raise ConfigError([f"{where}: cannot read the config ({getattr(err, 'strerror', None) or err})"]) from None
-    try:
-        data = yaml.safe_load(text)
-        root = yaml.compose(text)
-    except yaml.YAMLError as err:
-        mark = getattr(err, "problem_mark", None)
-        line = f":{mark.line + 1}" if mark else ""
-        reason = getattr(err, "problem", None) or str(err).splitlines()[0]
-        raise ConfigError([f"{where}{line}: not valid YAML: {reason}"]) from None
-    if not isinstance(data, dict):
-        raise ConfigError([f"{where}:1: expected a mapping with sections input, select, prepare, modes, output"])
-
     problems: list[str] = []
     lines: dict[tuple[str, ...], int] = {}
-    _key_lines(root, (), lines, problems, where)
+    data = _parse(text, where, lines, problems)
+    if not isinstance(data, dict):
+        raise ConfigError([f"{where}:1: expected a mapping with sections input, select, prepare, modes, output"])
     for name in data:
         if name not in SECTIONS:
-            problems.append(f"{where}:{lines.get((str(name),), 1)}: {name}: unknown section{_suggest(name, SECTIONS)}")
+            problems.append(f"{where}:{lines.get((str(name),), 1)}: {shortened(str(name))}: unknown section"
+                            f"{_suggest(name, SECTIONS)}")
 
     resolved = {}
     for name, cls in SECTIONS.items():
         given = data.get(name) or {}
         line = lines.get((name,), 1)
         if not isinstance(given, dict):
-            problems.append(f"{where}:{line}: {name}: expected a mapping of keys; got {given!r}")
+            problems.append(f"{where}:{line}: {name}: expected a mapping of keys; got {quoted(given)}")
             given = {}
         values = {}
         keys = {f.name: f for f in dataclasses.fields(cls)}
         for key, value in given.items():
             key_line = lines.get((name, str(key)), line)
             if key not in keys:
-                problems.append(f"{where}:{key_line}: {name}.{key}: unknown key{_suggest(key, keys)}")
+                problems.append(f"{where}:{key_line}: {name}.{shortened(str(key))}: unknown key{_suggest(key, keys)}")
                 continue
             try:
                 values[key] = keys[key].metadata["check"](value)
@@ -392,6 +523,7 @@ def load_spec(config_path: str | Path) -> RunSpec:
 
     spec = RunSpec(source=path.resolve(), **resolved)
     _check_together(spec, lines, where, problems)
+    _check_name_lengths(spec, lines, where, problems)
     if problems:
         raise ConfigError(problems)
     return _resolve_paths(spec)
@@ -419,12 +551,34 @@ def _check_together(spec: RunSpec, lines: dict, where: str, problems: list[str])
         report("prepare", "baseline", "is only used with anomalies: climatology or mean")
 
 
+def _name_max(folder: Path) -> int:
+    """The longest file name (in bytes) the file system of ``folder`` allows; 255 where it does not say."""
+    try:
+        limit = os.pathconf(folder, "PC_NAME_MAX")
+    except (OSError, ValueError, AttributeError):  # AttributeError: no pathconf on this system
+        return 255
+    return limit if limit > 0 else 255
+
+
+def _check_name_lengths(spec: RunSpec, lines: dict, where: str, problems: list[str]) -> None:
+    """Every name in a path (between separators) must fit the file system's limit; glob patterns may be longer."""
+    limit = _name_max(spec.source.parent)
+    for section, key, paths in (("input", "paths", spec.input.paths), ("output", "dir", [spec.output.dir])):
+        for p in paths:
+            long = [part for part in Path(p).parts if len(os.fsencode(part)) > limit and not glob.has_magic(part)]
+            if long:
+                line = lines.get((section, key), lines.get((section,), 1))
+                problems.append(f"{where}:{line}: {section}.{key}: the name {quoted(long[0])} is "
+                                f"{len(os.fsencode(long[0]))} bytes long; this system allows {limit}")
+
+
 def _resolve_paths(spec: RunSpec) -> RunSpec:
     folder = spec.source.parent
 
     def absolute(p: str) -> str:
-        return os.path.normpath(folder / Path(p).expanduser())
+        return os.path.normpath(folder / os.path.expanduser(p))
 
     inputs = dataclasses.replace(spec.input, paths=[absolute(p) for p in spec.input.paths])
     output = dataclasses.replace(spec.output, dir=absolute(spec.output.dir))
-    return dataclasses.replace(spec, input=inputs, output=output)
+    written = {("input", "paths"): (spec.input.paths, inputs.paths), ("output", "dir"): (spec.output.dir, output.dir)}
+    return dataclasses.replace(spec, input=inputs, output=output, written=written)

@@ -20,3 +20,17 @@ class ConfigError(UserError):
     def __init__(self, problems: list[str]):
         self.problems = problems
         super().__init__("\n".join(problems))
+
+
+def shortened(text: str, limit: int = 60) -> str:
+    """``text`` cut to ``limit`` characters, an ellipsis marking the cut, for a one-line message.
+
+    >>> shortened("x" * 100, limit=10)
+    'xxxxxxx...'
+    """
+    return text if len(text) <= limit else text[: limit - 3] + "..."
+
+
+def quoted(value: object, limit: int = 60) -> str:
+    """``repr(value)`` cut to ``limit`` characters (see :func:`shortened`): a value quoted in a message."""
+    return shortened(repr(value), limit)

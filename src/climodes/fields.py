@@ -26,6 +26,7 @@ import numpy as np
 import xarray as xr
 
 from climodes.config import InputSection, SelectSection
+from climodes.dates import in_period
 from climodes.errors import UserError
 from climodes.grid import GRID_LAT, GRID_LON
 
@@ -344,7 +345,8 @@ def select(opened: OpenedField, spec: SelectSection) -> xr.DataArray:
         if spec.lon is not None:
             da = _select_lon(da, *spec.lon)
     if spec.period is not None:
-        da = da.sel(time=slice(*spec.period))
+        kept = np.flatnonzero(in_period(da["time"].values, spec.period, "select.period"))
+        da = da.isel(time=slice(kept[0], kept[-1] + 1) if kept.size else slice(0))  # steps are in time order
         if da.sizes["time"] == 0:
             raise UserError(f"select.period: {spec.period} holds no time step of the input; "
                             f"it runs {_date(opened.data['time'].values[0])} to {_date(opened.data['time'].values[-1])}")

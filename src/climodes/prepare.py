@@ -23,6 +23,7 @@ import numpy as np
 import xarray as xr
 
 from climodes.config import PrepareSection
+from climodes.dates import in_period
 from climodes.errors import UserError
 
 
@@ -172,10 +173,8 @@ def climatology_step(da: xr.DataArray, how: str, baseline: list[str] | None) -> 
     """
     if how == "none":
         return TimeSteps()
-    in_base = np.ones(da.sizes["time"], dtype=bool)
-    if baseline is not None:
-        in_base[:] = False
-        in_base[da["time"].to_index().slice_indexer(*baseline)] = True
+    in_base = (np.ones(da.sizes["time"], dtype=bool) if baseline is None
+               else in_period(da["time"].values, baseline, "prepare.baseline"))
     if not in_base.any():
         raise UserError(f"prepare.baseline: {baseline} holds no time step of the selected data; "
                         "choose a baseline inside select.period")
