@@ -176,10 +176,14 @@ def _regular(values: np.ndarray) -> bool:
 
 
 def check_geotiff_grid(field: xr.DataArray) -> None:
-    """A GeoTIFF holds a regular grid only; say so before any work is done."""
+    """A GeoTIFF holds a regular grid of known spacing only; say so before any work is done."""
     if GRID_LAT in field.coords:
         raise UserError("output.formats: geotiff needs a regular latitude-longitude grid, and this one is "
                         "curvilinear (2-D latitudes); drop geotiff (modes.nc carries the 2-D coordinates)")
+    if field.sizes["lat"] < 2 or field.sizes["lon"] < 2:
+        raise UserError(f"output.formats: geotiff needs the grid spacing, which a grid of {field.sizes['lat']} "
+                        f"latitude(s) x {field.sizes['lon']} longitude(s) does not give; drop geotiff or select at "
+                        "least two latitudes and two longitudes")
     for name, values in (("latitude", field["lat"].values), ("longitude", field["lon"].values)):
         if not _regular(values):
             raise UserError(f"output.formats: geotiff needs a regularly spaced grid, but the {name} spacing "
