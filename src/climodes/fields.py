@@ -27,7 +27,7 @@ import xarray as xr
 
 from climodes.config import InputSection, SelectSection
 from climodes.errors import UserError
-from climodes.grid import GRID_LAT, GRID_LON
+from climodes.grid import GRID_LAT, GRID_LON, GRID_X, GRID_Y
 
 _LAT_UNITS = {"degrees_north", "degree_north", "degree_n", "degrees_n", "degreen", "degreesn"}
 _LON_UNITS = {"degrees_east", "degree_east", "degree_e", "degrees_e", "degreee", "degreese"}
@@ -60,6 +60,7 @@ class OpenedField:
     pieces: list[xr.DataArray] = field(default_factory=list)  # each file's lazy array, in time order
     restamped: bool = False  # stamps moved to the middles of time bounds
     grid: tuple[str, str] | None = None  # the files' names of 2-D latitude and longitude (curvilinear grids)
+    grid_mapping: xr.DataArray | None = None  # the files' CF grid-mapping variable (curvilinear grids)
     opening_notes: list[str] = field(default_factory=list)  # what opening the files changed, to say every time
     notes: list[str] = field(default_factory=list)
 
@@ -402,6 +403,14 @@ def _in_grid_order(da: xr.DataArray, names: dict[str, str], path: str) -> tuple[
     return da.isel(lon=np.roll(np.arange(lon.size), -start)), note
 
 
+def _grid_mapping(da: xr.DataArray, ds: xr.Dataset) -> xr.DataArray | None:
+    """The grid-mapping variable the field names (CF ``grid_mapping``), if the file holds it."""
+    name = str(da.attrs.get("grid_mapping", da.encoding.get("grid_mapping", ""))).split(":")[0].strip()
+    if name in ds.variables and "grid_mapping_name" in ds[name].attrs:
+        return ds[name]
+    return None
+
+
 def _check_agreement(first: tuple, other: tuple, variable: str) -> None:
     """Refuse files whose calendars or units differ from those of the first file (both named)."""
     (path_a, a, encoding_a), (path_b, b, encoding_b) = first, other
@@ -438,7 +447,7 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
     paths = expand_paths(spec.paths)
     pieces, moved, notes = [], [], []
     names: dict[str, str] = {}
-    grid_names = None
+    grid_names, grid_mapping = None, None
     for path in paths:
         da, ds = _open_one(path, spec.variable)
         axes, grid = find_axes(da, path)
@@ -447,10 +456,12 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
         names = axes
         _check_time(da[axes["time"]], ds, path)
         da = pick_extra_dims(da, axes, choice, path)
-        if grid:  # the rows and columns keep no 1-D coordinates (rotated ones are not latitudes)
+        if grid:  # the rows and columns keep their 1-D coordinates (rotated ones are not latitudes) under own names
+            rows = {inner: (dim, da[dim].values, da[dim].attrs)
+                    for inner, dim in ((GRID_Y, axes["lat"]), (GRID_X, axes["lon"])) if dim in da.coords}
             da = da.drop_vars([axes["lat"], axes["lon"]], errors="ignore")
-            da = da.rename({grid[0]: GRID_LAT, grid[1]: GRID_LON})
-            grid_names = grid
+            da = da.rename({grid[0]: GRID_LAT, grid[1]: GRID_LON}).assign_coords(rows)
+            grid_names, grid_mapping = grid, _grid_mapping(da, ds)
         da = _with_cell_areas(da, ds, spec.cell_area, path)
         da, restamped = _stamp_at_interval_middles(da, ds, axes["time"])
         moved.append(restamped)
@@ -478,7 +489,7 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
     files = [InputFile(str(Path(p).resolve()), os.stat(p).st_size, os.stat(p).st_mtime) for p in paths]
     encoding = {k: v for k, v in pieces[0][2].items() if k in ("units", "calendar", "dtype")}
     opened = OpenedField(xr.DataArray(), files, names, encoding, pieces=[p[1] for p in pieces], grid=grid_names,
-                         opening_notes=notes)
+                         grid_mapping=grid_mapping, opening_notes=notes)
     opened.restamped = any(moved)
     return rechunked(opened, spec.chunks)
 
