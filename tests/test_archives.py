@@ -184,6 +184,17 @@ def test_archive_defects_are_refused_at_open_without_reading_the_field(tmp_path,
     assert values_read["values"] == 0
 
 
+def test_the_time_variable_that_gives_no_dates_is_the_one_named(tmp_path):
+    path = archive_file(tmp_path / "f.nc")
+    with netCDF4.Dataset(path, "r+") as nc:  # the field's time is fine; another variable's is not
+        issued = nc.createVariable("issued", "f8", ())
+        issued.units = "months since 1999-12-01"
+        issued[...] = 1.0
+        nc["tas"].coordinates = "issued"  # a CF scalar coordinate: read after the time coordinate
+    with pytest.raises(UserError, match=r"f.nc: time variable 'issued' has units 'months since 1999-12-01'"):
+        open_field(InputSection(paths=[str(path)], variable="tas"))
+
+
 @pytest.mark.parametrize("calendars", [("standard", "gregorian"), ("standard", "proleptic_gregorian"),
                                        ("noleap", "365_day"), (None, "standard")])
 def test_calendar_names_for_the_same_days_agree(tmp_path, calendars):
