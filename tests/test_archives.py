@@ -118,6 +118,12 @@ def _two(tmp_path, first: dict, second: dict):
     return [archive_file(tmp_path / "a.nc", **first), archive_file(tmp_path / "b.nc", first_day=800.0, **second)]
 
 
+def _without_time_values(path):
+    """A time dimension with no time variable: the steps' positions would be taken for dates."""
+    xr.open_dataset(archive_file(path.with_suffix(".plain.nc"))).load().drop_vars("time").to_netcdf(path)
+    return path
+
+
 REFUSED = {
     # name: (files made in tmp_path, select section, what the one line says).
     # CF 4.4: a time coordinate has units "UNIT since DATE" and a calendar (4.4.1); CF 3.1: units say what the
@@ -141,17 +147,25 @@ REFUSED = {
                          r"b.nc: its calendar 'noleap' differs from the calendar 'standard' of .*a.nc"),
     "calendars differ, both cftime": (lambda t: _two(t, {"calendar": "360_day"}, {"calendar": "365_day"}), {},
                                       r"b.nc: its calendar 'noleap' differs from the calendar '360_day' of .*a.nc"),
+    # CF 4.4.1: the standard calendar is Julian before 1582-10-15; xarray holds such dates as cftime objects
+    "dates before and after the Gregorian reform": (
+        lambda t: _two(t, {"time_units": "days since 1500-01-01"}, {"time_units": "days since 2000-01-01"}), {},
+        r"b.nc: its dates \(from 2002-03-11\) cannot share one time axis with those of .*a.nc \(from 1500-01-16\)"),
     "units differ": (lambda t: _two(t, {}, {"units": "degC"}), {}, r"b.nc: tas is in 'degC', but in 'K' in .*a.nc"),
     "units missing in one file": (lambda t: _two(t, {}, {"units": None}), {},
                                   r"b.nc: tas has no units, but in 'K' in .*a.nc"),
     "units only in one file": (lambda t: _two(t, {"units": None}, {}), {},
                                r"b.nc: tas is in 'K', but without units in .*a.nc"),
+    "time steps without dates": (lambda t: [_without_time_values(t / "f.nc")], {},
+                                 r"f.nc: the time dimension time of variable 'tas' has no coordinate values"),
     "latitudes without values": (lambda t: [archive_file(t / "f.nc", lat=None)], {},
                                  r"f.nc: the latitude dimension lat of variable 'tas' has no coordinate values"),
     "longitudes without values": (lambda t: [archive_file(t / "f.nc", lon=None)], {},
                                   r"f.nc: the longitude dimension lon of variable 'tas' has no coordinate values"),
     "latitudes beyond the poles": (lambda t: [archive_file(t / "f.nc", lat=np.array([0.0, 45, 90, 135, 180]))], {},
                                    r"f.nc: latitude lat holds values from 0 to 180, outside -90..90"),
+    "a latitude missing": (lambda t: [archive_file(t / "f.nc", lat=np.array([0.0, 10, np.nan, 20, 30]))], {},
+                           r"f.nc: lat holds missing or infinite values; give every row its latitude"),
     "latitudes out of order": (lambda t: [archive_file(t / "f.nc", lat=np.array([0.0, 10, -10, 20, 30]))], {},
                                r"f.nc: latitudes lat are out of order \(10 then -10 at row 2\)"),
     "latitude repeated": (lambda t: [archive_file(t / "f.nc", lat=np.array([0.0, 10, 10, 20, 30]))], {},
@@ -178,6 +192,7 @@ REFUSED = {
 def test_archive_defects_are_refused_at_open_without_reading_the_field(tmp_path, values_read, case):
     make, choice, message = REFUSED[case]
     paths = make(tmp_path)
+    values_read["values"] = 0  # count from here: making a file may read another
     with pytest.raises(UserError, match=message):
         opened = open_field(InputSection(paths=[str(p) for p in paths], variable="tas"), SelectSection(**choice))
         select(opened, SelectSection(**choice))

@@ -139,6 +139,26 @@ def _disk_full(tmp_path, monkeypatch):
     return [_ok(tmp_path)], {}
 
 
+def _no_time_values(tmp_path, *_):
+    path = tmp_path / "f.nc"
+    xr.Dataset({"tas": (("time", "lat", "lon"), red_field((24, 5, 6)))},
+               coords={"lat": ("lat", np.linspace(-40, 40, 5), {"units": "degrees_north"}),
+                       "lon": ("lon", np.arange(0, 60.0, 10), {"units": "degrees_east"})}).to_netcdf(path)
+    return [path], {}
+
+
+def _one_level(tmp_path, *_):
+    """A field at 500 hPa, stored as a CF scalar coordinate, asked for at 850."""
+    import netCDF4
+
+    path = archive_file(tmp_path / "f.nc")
+    with netCDF4.Dataset(path, "r+") as nc:
+        level = nc.createVariable("plev", "f8", ())
+        level.units, level.positive, level[...] = "hPa", "down", 500.0
+        nc["tas"].coordinates = "plev"
+    return [path], {"select": {"level": 850}}
+
+
 CATALOGUE = {
     "missing file": (lambda t, m: ([t / "absent.nc"], {}), "absent.nc: no such file"),
     "empty glob": (lambda t, m: ([t / "nothing_*.nc"], {}), "matches no file"),
@@ -199,6 +219,14 @@ CATALOGUE = {
                                         "select.level: 850 is given, but variable 'tas' in"),
     "member of a field without members": (lambda t, m: ([archive_file(t / "f.nc")], {"select": {"member": 2}}),
                                           "select.member: 2 is given, but variable 'tas' in"),
+    "time dimension without dates": (_no_time_values, "f.nc: the time dimension time of variable 'tas' has no "
+                                                      "coordinate values"),
+    "a latitude missing": (lambda t, m: ([archive_file(t / "f.nc", lat=np.array([0.0, 10, np.nan, 20, 30]))], {}),
+                           "f.nc: lat holds missing or infinite values"),
+    "dates on both sides of 1582": (lambda t, m: ([archive_file(t / "a.nc", time_units="days since 1500-01-01"),
+                                                   archive_file(t / "b.nc", first_day=800)], {}),
+                                    "cannot share one time axis with those of"),
+    "a level the file does not hold": (_one_level, "select.level: 850 is not the level of variable 'tas' in"),
     "one point with geotiff": (lambda t, m: ([archive_file(t / "f.nc", lat=[10.0], lon=[20.0])],
                                              {"modes": {"count": 1}, "output": {"formats": ["netcdf", "geotiff"]}}),
                                "output.formats: geotiff needs the grid spacing, which a grid of 1 latitude(s) x 1"),
