@@ -99,3 +99,43 @@ def cf_strict(path: Path) -> subprocess.CompletedProcess:
     tool = shutil.which("compliance-checker") or str(Path(sys.executable).parent / "compliance-checker")
     return subprocess.run([tool, "-t", "cf:1.10", "-c", "strict", str(path)], capture_output=True, text=True,
                           timeout=300)
+
+
+def archive_file(path: Path, steps: int = 24, lat: np.ndarray | None = np.linspace(-40, 40, 5),
+                 lon: np.ndarray | None = np.arange(0, 60.0, 10), time_units: str | None = "days since 2000-01-01",
+                 calendar: str | None = None, first_day: float = 15.0, units: str | None = "K",
+                 coord_attrs: dict | None = None, seed: int = 0) -> Path:
+    """A (time, lat, lon) field written with netCDF4 as an archive writes it, its defects included.
+
+    ``lat`` or ``lon`` ``None`` writes that dimension without a coordinate
+    variable; ``time_units`` or ``units`` ``None`` writes no units;
+    ``coord_attrs`` adds attributes to coordinate variables, e.g.
+    ``{"lat": {"actual_range": [-90, 90]}}``.  Steps are 30 days apart from
+    ``first_day``; the field is :func:`red_field` noise.
+    """
+    import netCDF4
+
+    ny = 5 if lat is None else len(lat)
+    nx = 6 if lon is None else len(lon)
+    with netCDF4.Dataset(path, "w") as nc:
+        for name, size in (("time", steps), ("lat", ny), ("lon", nx)):
+            nc.createDimension(name, size)
+        time = nc.createVariable("time", "f8", ("time",))
+        time.standard_name = "time"
+        if time_units is not None:
+            time.units = time_units
+        if calendar is not None:
+            time.calendar = calendar
+        time[:] = first_day + 30.0 * np.arange(steps)
+        for name, values, axis_units in (("lat", lat, "degrees_north"), ("lon", lon, "degrees_east")):
+            if values is not None:
+                coord = nc.createVariable(name, "f8", (name,))
+                coord.units = axis_units
+                coord[:] = values
+        for name, attrs in (coord_attrs or {}).items():
+            nc[name].setncatts(attrs)
+        field = nc.createVariable("tas", "f4", ("time", "lat", "lon"))
+        if units is not None:
+            field.units = units
+        field[:] = red_field((steps, ny, nx), seed) + 280
+    return path

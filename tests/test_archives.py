@@ -1,5 +1,8 @@
 """What archives hold: CF calendars (cftime), stamps at the start, middle or end of the month with and
-without CF time bounds, packed integers (CF scale_factor/add_offset, _FillValue, missing_value), gaps."""
+without CF time bounds, packed integers (CF scale_factor/add_offset, _FillValue, missing_value), gaps;
+and what they hold wrong (stale or missing attributes, odd axes, mixed units), refused from coordinates
+and attributes alone, or put right and said so.  Reference: the CF conventions 1.10 (section numbers
+beside each case)."""
 
 import datetime as dt
 
@@ -9,8 +12,9 @@ import pytest
 import xarray as xr
 
 from climodes.config import InputSection, SelectSection
+from climodes.errors import UserError
 from climodes.fields import open_field, select
-from conftest import red_field, write_config
+from conftest import archive_file, red_field, write_config
 
 CALENDARS = ["standard", "proleptic_gregorian", "noleap", "365_day", "360_day", "all_leap"]
 
@@ -105,3 +109,155 @@ def test_gaps_in_time_are_allowed_and_reported(tmp_path, cli):
     code, _, err = cli("run", write_config(tmp_path, [with_gap], modes={"count": 2}))
     assert code == 0
     assert "note: gap in time: nothing between 2000-12-16 and 2002-01-16" in err
+
+
+# --- what real archive files hold: read right or refused, from coordinates and attributes alone
+
+def _two(tmp_path, first: dict, second: dict):
+    """Two files one after the other (the second starts 800 days after the first)."""
+    return [archive_file(tmp_path / "a.nc", **first), archive_file(tmp_path / "b.nc", first_day=800.0, **second)]
+
+
+def _without_time_values(path):
+    """A time dimension with no time variable: the steps' positions would be taken for dates."""
+    xr.open_dataset(archive_file(path.with_suffix(".plain.nc"))).load().drop_vars("time").to_netcdf(path)
+    return path
+
+
+REFUSED = {
+    # name: (files made in tmp_path, select section, what the one line says).
+    # CF 4.4: a time coordinate has units "UNIT since DATE" and a calendar (4.4.1); CF 3.1: units say what the
+    # values mean, so files in different units do not add up; CF 4.1: latitudes lie in -90..90; CF 1.3 and 5:
+    # coordinate variables hold one value per index, strictly monotonic.
+    "time without units": (lambda t: [archive_file(t / "f.nc", time_units=None)], {},
+                           r"f.nc: time variable 'time' has no units, so its values are not dates"),
+    "time in kelvin": (lambda t: [archive_file(t / "f.nc", time_units="K")], {},
+                       r"f.nc: time variable 'time' has units 'K', not CF time units \('UNIT since DATE'\)"),
+    # cftime turns months since a date into dates only in the 360_day calendar (from memory of its documentation);
+    # CF 4.4 advises against month units
+    "months since a date": (lambda t: [archive_file(t / "f.nc", time_units="months since 2000-01-01")], {},
+                            r"f.nc: time variable 'time' has units 'months since 2000-01-01' with calendar "
+                            r"'standard', which cannot be turned into dates"),
+    "time since no date": (lambda t: [archive_file(t / "f.nc", time_units="days since someday")], {},
+                           r"f.nc: time variable 'time' has units 'days since someday'"),
+    "no time steps": (lambda t: [archive_file(t / "f.nc", steps=0)], {},
+                      r"f.nc: no time steps \(its time dimension is empty\); remove the file from input.paths"),
+    "no time steps among good files": (lambda t: _two(t, {}, {"steps": 0}), {}, r"b.nc: no time steps"),
+    "calendars differ": (lambda t: _two(t, {}, {"calendar": "noleap"}), {},
+                         r"b.nc: its calendar 'noleap' differs from the calendar 'standard' of .*a.nc"),
+    "calendars differ, both cftime": (lambda t: _two(t, {"calendar": "360_day"}, {"calendar": "365_day"}), {},
+                                      r"b.nc: its calendar 'noleap' differs from the calendar '360_day' of .*a.nc"),
+    # CF 4.4.1: the standard calendar is Julian before 1582-10-15; xarray holds such dates as cftime objects
+    "dates before and after the Gregorian reform": (
+        lambda t: _two(t, {"time_units": "days since 1500-01-01"}, {"time_units": "days since 2000-01-01"}), {},
+        r"b.nc: its dates \(from 2002-03-11\) cannot share one time axis with those of .*a.nc \(from 1500-01-16\)"),
+    "units differ": (lambda t: _two(t, {}, {"units": "degC"}), {}, r"b.nc: tas is in 'degC', but in 'K' in .*a.nc"),
+    "units missing in one file": (lambda t: _two(t, {}, {"units": None}), {},
+                                  r"b.nc: tas has no units, but in 'K' in .*a.nc"),
+    "units only in one file": (lambda t: _two(t, {"units": None}, {}), {},
+                               r"b.nc: tas is in 'K', but without units in .*a.nc"),
+    "time steps without dates": (lambda t: [_without_time_values(t / "f.nc")], {},
+                                 r"f.nc: the time dimension time of variable 'tas' has no coordinate values"),
+    "latitudes without values": (lambda t: [archive_file(t / "f.nc", lat=None)], {},
+                                 r"f.nc: the latitude dimension lat of variable 'tas' has no coordinate values"),
+    "longitudes without values": (lambda t: [archive_file(t / "f.nc", lon=None)], {},
+                                  r"f.nc: the longitude dimension lon of variable 'tas' has no coordinate values"),
+    "latitudes beyond the poles": (lambda t: [archive_file(t / "f.nc", lat=np.array([0.0, 45, 90, 135, 180]))], {},
+                                   r"f.nc: latitude lat holds values from 0 to 180, outside -90..90"),
+    "a latitude missing": (lambda t: [archive_file(t / "f.nc", lat=np.array([0.0, 10, np.nan, 20, 30]))], {},
+                           r"f.nc: lat holds missing or infinite values; give every row its latitude"),
+    "latitudes out of order": (lambda t: [archive_file(t / "f.nc", lat=np.array([0.0, 10, -10, 20, 30]))], {},
+                               r"f.nc: latitudes lat are out of order \(10 then -10 at row 2\)"),
+    "latitude repeated": (lambda t: [archive_file(t / "f.nc", lat=np.array([0.0, 10, 10, 20, 30]))], {},
+                          r"f.nc: latitudes lat are out of order \(10 then 10 at row 2\)"),
+    "longitudes out of order": (lambda t: [archive_file(t / "f.nc", lon=np.array([0.0, 20, 10, 30, 40, 50]))], {},
+                                r"f.nc: longitudes lon are out of order \(20 then 10 at column 2\)"),
+    # rolled twice round: no one start makes it increase
+    "longitudes rolled twice": (lambda t: [archive_file(t / "f.nc", lon=np.array([180.0, 270, 0, 90, 200, 300]))],
+                                {}, r"f.nc: longitudes lon are out of order \(270 then 0 at column 2\)"),
+    # increasing round the circle from 180, but 180 and -180 are one meridian
+    "longitudes rolled onto themselves": (
+        lambda t: [archive_file(t / "f.nc", lon=np.array([90.0, 180, -180, -90, 0, 45]))], {},
+        r"f.nc: longitudes lon are out of order \(180 then -180 at column 2\)"),
+    "level asked of a field without levels": (lambda t: [archive_file(t / "f.nc")], {"level": 500},
+                                              r"select.level: 500 is given, but variable 'tas' in .*f.nc has no "
+                                              r"vertical axis \(time, lat, lon\); remove select.level"),
+    "member asked of a field without members": (lambda t: [archive_file(t / "f.nc")], {"member": 3},
+                                                r"select.member: 3 is given, but variable 'tas' in .*f.nc has no "
+                                                r"ensemble axis"),
+}
+
+
+@pytest.mark.parametrize("case", list(REFUSED))
+def test_archive_defects_are_refused_at_open_without_reading_the_field(tmp_path, values_read, case):
+    make, choice, message = REFUSED[case]
+    paths = make(tmp_path)
+    values_read["values"] = 0  # count from here: making a file may read another
+    with pytest.raises(UserError, match=message):
+        opened = open_field(InputSection(paths=[str(p) for p in paths], variable="tas"), SelectSection(**choice))
+        select(opened, SelectSection(**choice))
+    assert values_read["values"] == 0
+
+
+def test_the_time_variable_that_gives_no_dates_is_the_one_named(tmp_path):
+    path = archive_file(tmp_path / "f.nc")
+    with netCDF4.Dataset(path, "r+") as nc:  # the field's time is fine; another variable's is not
+        issued = nc.createVariable("issued", "f8", ())
+        issued.units = "months since 1999-12-01"
+        issued[...] = 1.0
+        nc["tas"].coordinates = "issued"  # a CF scalar coordinate: read after the time coordinate
+    with pytest.raises(UserError, match=r"f.nc: time variable 'issued' has units 'months since 1999-12-01'"):
+        open_field(InputSection(paths=[str(path)], variable="tas"))
+
+
+@pytest.mark.parametrize("calendars", [("standard", "gregorian"), ("standard", "proleptic_gregorian"),
+                                       ("noleap", "365_day"), (None, "standard")])
+def test_calendar_names_for_the_same_days_agree(tmp_path, calendars):
+    # CF 4.4.1: gregorian is standard, 365_day is noleap; standard and proleptic_gregorian differ before 1582 only
+    paths = _two(tmp_path, {"calendar": calendars[0]}, {"calendar": calendars[1]})
+    assert open_field(InputSection(paths=[str(p) for p in paths], variable="tas")).data.sizes["time"] == 48
+
+
+@pytest.mark.parametrize("lon", [np.r_[np.arange(180.0, 360, 30), np.arange(0.0, 180, 30)],
+                                 np.r_[np.arange(0.0, 180, 30), np.arange(-180.0, 0, 30)]])
+def test_longitudes_rolled_round_the_circle_are_put_in_order(tmp_path, values_read, lon):
+    path = archive_file(tmp_path / "rolled.nc", lon=lon)
+    with netCDF4.Dataset(path, "r+") as nc:  # each column holds its own longitude, to follow the values
+        nc["tas"][:] = np.broadcast_to(lon, nc["tas"].shape)
+    opened = open_field(InputSection(paths=[str(path)], variable="tas"))
+    assert values_read["values"] == 0
+    got = opened.data["lon"].values
+    np.testing.assert_array_equal(got, np.sort(lon))
+    np.testing.assert_array_equal(opened.data.isel(time=0, lat=0).values, got)
+    assert f"longitudes stored from {lon[0]:g} round to {lon[-1]:g} were put in increasing order" in opened.notes[0]
+    box = select(opened, SelectSection(lon=[100.0, 200.0]))  # across the stored seam
+    np.testing.assert_array_equal(box.isel(time=0, lat=0).values % 360, [120, 150, 180])
+
+
+def _scalar_level(path, level: float):
+    """A field at one pressure level, stored as a CF scalar coordinate (CF 5.7), as CMIP files store it."""
+    ds = xr.open_dataset(archive_file(path.with_suffix(".plain.nc"))).load()
+    ds = ds.assign_coords(plev=((), level, {"units": "Pa", "standard_name": "air_pressure", "positive": "down"}))
+    ds.to_netcdf(path)
+    return path
+
+
+def test_a_level_given_must_be_the_level_a_field_holds(tmp_path):
+    path = _scalar_level(tmp_path / "f.nc", 50000.0)
+    opened = open_field(InputSection(paths=[str(path)], variable="tas"), SelectSection(level=50000))
+    assert float(opened.data["plev"]) == 50000
+    with pytest.raises(UserError, match=r"select.level: 500 is not the level of variable 'tas' in .*f.nc, which "
+                                        r"holds plev = 50000.0 Pa only"):
+        open_field(InputSection(paths=[str(path)], variable="tas"), SelectSection(level=500))
+
+
+def test_a_level_dimension_of_length_one_must_hold_the_level_given(tmp_path):
+    ds = xr.open_dataset(archive_file(tmp_path / "plain.nc")).load()
+    ds["tas"] = ds["tas"].expand_dims(plev=[85000.0], axis=1)
+    ds["plev"].attrs = {"units": "Pa", "positive": "down"}
+    ds.to_netcdf(tmp_path / "f.nc")
+    spec = InputSection(paths=[str(tmp_path / "f.nc")], variable="tas")
+    assert float(open_field(spec).data["plev"]) == 85000  # kept as a scalar coordinate
+    assert open_field(spec, SelectSection(level=85000)).data.dims == ("time", "lat", "lon")
+    with pytest.raises(UserError, match=r"select.level: 50000 is not a value of plev in .*f.nc; there: 85000.0"):
+        open_field(spec, SelectSection(level=50000))

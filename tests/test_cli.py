@@ -9,7 +9,7 @@ import pytest
 import xarray as xr
 import yaml
 
-from conftest import field_dataset, red_field, write_config
+from conftest import archive_file, field_dataset, red_field, write_config
 
 
 def test_check_prints_the_resolved_config(tmp_path, small_field, cli):
@@ -165,6 +165,26 @@ _BOMB = "\n".join(['a0: &a0 ["lol","lol","lol","lol","lol","lol","lol","lol","lo
     f"a{k}: &a{k} [{','.join([f'*a{k - 1}'] * 9)}]" for k in range(1, 9)]) + "\ninput: {{paths: *a8, variable: tas}}\n"
 
 
+def _no_time_values(tmp_path, *_):
+    path = tmp_path / "f.nc"
+    xr.Dataset({"tas": (("time", "lat", "lon"), red_field((24, 5, 6)))},
+               coords={"lat": ("lat", np.linspace(-40, 40, 5), {"units": "degrees_north"}),
+                       "lon": ("lon", np.arange(0, 60.0, 10), {"units": "degrees_east"})}).to_netcdf(path)
+    return [path], {}
+
+
+def _one_level(tmp_path, *_):
+    """A field at 500 hPa, stored as a CF scalar coordinate, asked for at 850."""
+    import netCDF4
+
+    path = archive_file(tmp_path / "f.nc")
+    with netCDF4.Dataset(path, "r+") as nc:
+        level = nc.createVariable("plev", "f8", ())
+        level.units, level.positive, level[...] = "hPa", "down", 500.0
+        nc["tas"].coordinates = "plev"
+    return [path], {"select": {"level": 850}}
+
+
 CATALOGUE = {
     "missing file": (lambda t, m: ([t / "absent.nc"], {}), "absent.nc: no such file"),
     "empty glob": (lambda t, m: ([t / "nothing_*.nc"], {}), "matches no file"),
@@ -224,6 +244,58 @@ CATALOGUE = {
                                        "output.dir: the name 'xxxxxxxx"),
     "variable name over the NetCDF limit": (lambda t, m: ([_ok(t)], {"input": {"variable": "v" * 100_000}}),
                                             "input.variable: a NetCDF variable name holds at most 256 bytes"),
+    # --- archive files: what real archives hold wrong, refused before any value of the field is read
+    "time without units": (lambda t, m: ([archive_file(t / "f.nc", time_units=None)], {}),
+                           "f.nc: time variable 'time' has no units, so its values are not dates"),
+    "time units not CF": (lambda t, m: ([archive_file(t / "f.nc", time_units="days after 2000-01-01")], {}),
+                          "f.nc: time variable 'time' has units 'days after 2000-01-01', not CF time units"),
+    "time units that give no dates": (lambda t, m: ([archive_file(t / "f.nc", time_units="months since 2000-01")], {}),
+                                      "f.nc: time variable 'time' has units 'months since 2000-01' with calendar "
+                                      "'standard', which cannot be turned into dates"),
+    "file without time steps": (lambda t, m: ([archive_file(t / "f.nc", steps=0)], {}),
+                                "f.nc: no time steps (its time dimension is empty)"),
+    "empty file among good ones": (lambda t, m: ([archive_file(t / "a.nc"), archive_file(t / "b.nc", steps=0)], {}),
+                                   "b.nc: no time steps"),
+    "calendars differ": (lambda t, m: ([archive_file(t / "a.nc"),
+                                        archive_file(t / "b.nc", calendar="360_day", first_day=800)], {}),
+                         "b.nc: its calendar '360_day' differs from the calendar 'standard' of"),
+    "units differ between files": (lambda t, m: ([archive_file(t / "a.nc"),
+                                                  archive_file(t / "b.nc", units="degC", first_day=800)], {}),
+                                   "b.nc: tas is in 'degC', but in 'K' in"),
+    "units missing in one file": (lambda t, m: ([archive_file(t / "a.nc"),
+                                                 archive_file(t / "b.nc", units=None, first_day=800)], {}),
+                                  "b.nc: tas has no units, but in 'K' in"),
+    "latitudes without values": (lambda t, m: ([archive_file(t / "f.nc", lat=None)], {}),
+                                 "f.nc: the latitude dimension lat of variable 'tas' has no coordinate values"),
+    "longitudes without values": (lambda t, m: ([archive_file(t / "f.nc", lon=None)], {}),
+                                  "f.nc: the longitude dimension lon of variable 'tas' has no coordinate values"),
+    "latitudes beyond the poles": (lambda t, m: ([archive_file(t / "f.nc", lat=np.linspace(-120, 120, 5))], {}),
+                                   "f.nc: latitude lat holds values from -120 to 120, outside -90..90"),
+    "latitudes out of order": (lambda t, m: ([archive_file(t / "f.nc", lat=np.array([20.0, -40, 0, 40, -20]))], {}),
+                               "f.nc: latitudes lat are out of order (-40 then 0 at row 2)"),
+    "longitudes out of order": (lambda t, m: ([archive_file(t / "f.nc", lon=np.array([0.0, 10, 30, 20, 40, 50]))],
+                                              {}), "f.nc: longitudes lon are out of order (30 then 20 at column 3)"),
+    "level of a field without levels": (lambda t, m: ([archive_file(t / "f.nc")], {"select": {"level": 850}}),
+                                        "select.level: 850 is given, but variable 'tas' in"),
+    "member of a field without members": (lambda t, m: ([archive_file(t / "f.nc")], {"select": {"member": 2}}),
+                                          "select.member: 2 is given, but variable 'tas' in"),
+    "time dimension without dates": (_no_time_values, "f.nc: the time dimension time of variable 'tas' has no "
+                                                      "coordinate values"),
+    "a latitude missing": (lambda t, m: ([archive_file(t / "f.nc", lat=np.array([0.0, 10, np.nan, 20, 30]))], {}),
+                           "f.nc: lat holds missing or infinite values"),
+    "dates on both sides of 1582": (lambda t, m: ([archive_file(t / "a.nc", time_units="days since 1500-01-01"),
+                                                   archive_file(t / "b.nc", first_day=800)], {}),
+                                    "cannot share one time axis with those of"),
+    "a level the file does not hold": (_one_level, "select.level: 850 is not the level of variable 'tas' in"),
+    "one point with geotiff": (lambda t, m: ([archive_file(t / "f.nc", lat=[10.0], lon=[20.0])],
+                                             {"modes": {"count": 1}, "output": {"formats": ["netcdf", "geotiff"]}}),
+                               "output.formats: geotiff needs the grid spacing, which a grid of 1 latitude(s) x 1"),
+    "one row with geotiff": (lambda t, m: ([archive_file(t / "f.nc", lat=[10.0])],
+                                           {"modes": {"count": 2}, "output": {"formats": ["netcdf", "geotiff"]}}),
+                             "grid of 1 latitude(s) x 6 longitude(s) does not give"),
+    "one column with geotiff": (lambda t, m: ([archive_file(t / "f.nc", lon=[20.0])],
+                                              {"modes": {"count": 2}, "output": {"formats": ["netcdf", "geotiff"]}}),
+                                "grid of 5 latitude(s) x 1 longitude(s) does not give"),
 }
 
 

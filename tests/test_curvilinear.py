@@ -16,22 +16,26 @@ from conftest import cf_strict, red_field, write_config
 
 
 def _regional_model(path, measures=True):
-    """A skewed regional grid, as a rotated-pole model writes it: 1-D rotated axes, 2-D lat/lon."""
+    """A skewed regional grid, as a rotated-pole model writes it: 1-D rotated axes (one with a stale
+    actual_range), 2-D lat/lon, the rotated pole as a CF grid mapping (CF 5.6, appendix F)."""
     rlat, rlon = np.linspace(-10, 10, 12), np.linspace(-15, 15, 16)
     r_lon, r_lat = np.meshgrid(rlon, rlat)
     lat2d = 50 + r_lat + 0.3 * r_lon
     lon2d = 10 + r_lon / np.cos(np.deg2rad(lat2d)) + 0.2 * r_lat
     area = 1e8 * np.cos(np.deg2rad(lat2d)) * (1 + 0.1 * np.sin(r_lon))
     time = xr.date_range("2000-01-01", periods=60, freq="MS")
-    attrs = {"units": "K", "coordinates": "lat lon"}
+    attrs = {"units": "K", "coordinates": "lat lon", "grid_mapping": "rotated_pole"}
     if measures:
         attrs["cell_measures"] = "area: areacella"
     ds = xr.Dataset(
         {"tas": (("time", "rlat", "rlon"), red_field((60, 12, 16), 9), attrs),
-         "areacella": (("rlat", "rlon"), area, {"units": "m2", "standard_name": "cell_area"})},
+         "areacella": (("rlat", "rlon"), area, {"units": "m2", "standard_name": "cell_area"}),
+         "rotated_pole": ((), b"", {"grid_mapping_name": "rotated_latitude_longitude",
+                                    "grid_north_pole_latitude": 39.25, "grid_north_pole_longitude": -162.0})},
         coords={"time": time,
-                "rlat": ("rlat", rlat, {"standard_name": "grid_latitude", "units": "degrees"}),
-                "rlon": ("rlon", rlon, {"standard_name": "grid_longitude", "units": "degrees"}),
+                "rlat": ("rlat", rlat, {"standard_name": "grid_latitude", "units": "degrees", "axis": "Y",
+                                        "actual_range": [-12.0, 12.0]}),
+                "rlon": ("rlon", rlon, {"standard_name": "grid_longitude", "units": "degrees", "axis": "X"}),
                 "lat": (("rlat", "rlon"), lat2d, {"standard_name": "latitude", "units": "degrees_north"}),
                 "lon": (("rlat", "rlon"), lon2d, {"standard_name": "longitude", "units": "degrees_east"})},
     )
@@ -125,3 +129,23 @@ def test_curvilinear_results_are_cf_compliant_and_drawn(tmp_path, cli):
     assert done.returncode == 0, done.stdout[-3000:]
     code, out, _ = cli("show", tmp_path / "out")
     assert code == 0 and "(2-D)" in out
+
+
+@pytest.mark.slow
+def test_a_box_keeps_the_rotated_coordinates_and_the_grid_mapping(tmp_path, cli):
+    ds = _regional_model(tmp_path / "rcm.nc")
+    config = write_config(tmp_path, [tmp_path / "rcm.nc"], modes={"count": 2}, prepare={"weighting": "cell_area"},
+                          select={"lat": [45.0, 55.0]})
+    code, _, err = cli("run", config)
+    assert code == 0, err
+    found = xr.open_dataset(tmp_path / "out" / "modes.nc")
+    rows = found["rlat"].values
+    assert 0 < rows.size < ds.sizes["rlat"]  # the rows holding the box, with their own rotated latitudes
+    np.testing.assert_allclose(rows, ds["rlat"].values[np.isin(ds["rlat"].values, rows)])
+    np.testing.assert_allclose(found["rlon"].values, ds["rlon"].values)
+    np.testing.assert_allclose(found["lat"].values, ds["lat"].sel(rlat=rows).values)
+    assert found["rlat"].attrs == {"standard_name": "grid_latitude", "units": "degrees", "axis": "Y"}
+    assert found["eof"].attrs["grid_mapping"] == "rotated_pole"
+    assert found["rotated_pole"].attrs == ds["rotated_pole"].attrs
+    done = cf_strict(tmp_path / "out" / "modes.nc")
+    assert done.returncode == 0, done.stdout[-3000:]

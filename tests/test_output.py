@@ -9,7 +9,7 @@ import pytest
 import xarray as xr
 import yaml
 
-from conftest import field_dataset, red_field, write_config
+from conftest import archive_file, cf_strict, field_dataset, red_field, write_config
 
 
 @pytest.fixture
@@ -94,3 +94,53 @@ def test_missing_data_rule_is_counted_in_the_log_and_the_file(tmp_path, cli):
     assert "note: dropped 1 points missing at more than 10% of the steps" in log
     assert "note: set 2 missing values at 1 points to zero anomaly" in log
     assert "note: dropped 1 points" in err  # also told on the terminal
+
+
+def _stale_archive(path):
+    """Coordinates as archives leave them: ranges of the whole stored grid (one already wrong), bounds named."""
+    archive_file(path, lat=np.linspace(-80, 80, 9), lon=np.arange(0.0, 360, 30),
+                 coord_attrs={"lat": {"actual_range": [-90.0, 90.0], "valid_range": [-90.0, 90.0],
+                                      "bounds": "lat_bnds", "long_name": "latitude"},
+                              "lon": {"valid_min": 0.0, "valid_max": 360.0, "actual_range": [0.0, 357.5]},
+                              "time": {"actual_range": [15.0, 705.0], "long_name": "time"}})
+    with netCDF4.Dataset(path, "r+") as nc:
+        nc.createDimension("nv", 2)
+        bounds = nc.createVariable("lat_bnds", "f8", ("lat", "nv"))
+        bounds[:] = np.column_stack([np.linspace(-90, 70, 9), np.linspace(-70, 90, 9)])
+
+
+@pytest.mark.slow
+def test_only_attributes_that_stay_true_are_copied(tmp_path, cli):
+    _stale_archive(tmp_path / "stale.nc")
+    config = write_config(tmp_path, [tmp_path / "stale.nc"], modes={"count": 2}, select={"lat": [-45, 45]})
+    code, _, err = cli("run", config)
+    assert code == 0, err
+    with netCDF4.Dataset(tmp_path / "out" / "modes.nc") as nc:
+        for name in ("lat", "lon", "time"):  # ranges of the input's values, bounds not written: gone
+            assert not {"actual_range", "valid_range", "valid_min", "valid_max", "bounds"} & set(nc[name].ncattrs())
+        assert nc["lat"].long_name == "latitude" and nc["time"].long_name == "time"  # what they are: kept
+        assert "lat_bnds" not in nc.variables
+    done = cf_strict(tmp_path / "out" / "modes.nc")  # CF 2.5.1: actual_range must hold the values' extremes
+    assert done.returncode == 0, done.stdout[-3000:]
+
+
+@pytest.mark.slow
+def test_the_level_analysed_is_a_scalar_coordinate(tmp_path, cli):
+    ds = xr.open_dataset(archive_file(tmp_path / "plain.nc", steps=30)).load()
+    ds["tas"] = (ds["tas"].expand_dims(plev=[100000.0, 85000.0, 50000.0], axis=1)
+                 * xr.DataArray([1.0, 2.0, 3.0], dims="plev"))
+    ds["plev"].attrs = {"units": "Pa", "positive": "down", "standard_name": "air_pressure", "axis": "Z",
+                        "long_name": "pressure", "actual_range": [50000.0, 100000.0]}
+    ds.to_netcdf(tmp_path / "levels.nc")
+    config = write_config(tmp_path, [tmp_path / "levels.nc"], modes={"count": 2}, select={"level": 85000})
+    code, _, err = cli("run", config)
+    assert code == 0, err
+    with netCDF4.Dataset(tmp_path / "out" / "modes.nc") as nc:
+        level = nc["plev"]
+        assert level.dimensions == () and float(level[...]) == 85000.0  # CF 5.7: a scalar coordinate variable
+        assert {k: level.getncattr(k) for k in level.ncattrs()} == {
+            "units": "Pa", "positive": "down", "standard_name": "air_pressure", "axis": "Z", "long_name": "pressure"}
+        assert "plev" in nc["eof"].coordinates.split() and "plev" in nc["pc"].coordinates.split()
+        assert "coordinates" not in nc["crs"].ncattrs()
+    done = cf_strict(tmp_path / "out" / "modes.nc")
+    assert done.returncode == 0, done.stdout[-3000:]

@@ -28,7 +28,7 @@ import xarray as xr
 from climodes.config import InputSection, SelectSection
 from climodes.dates import in_period
 from climodes.errors import UserError
-from climodes.grid import GRID_LAT, GRID_LON
+from climodes.grid import GRID_LAT, GRID_LON, GRID_X, GRID_Y
 
 _LAT_UNITS = {"degrees_north", "degree_north", "degree_n", "degrees_n", "degreen", "degreesn"}
 _LON_UNITS = {"degrees_east", "degree_east", "degree_e", "degrees_e", "degreee", "degreese"}
@@ -61,6 +61,8 @@ class OpenedField:
     pieces: list[xr.DataArray] = field(default_factory=list)  # each file's lazy array, in time order
     restamped: bool = False  # stamps moved to the middles of time bounds
     grid: tuple[str, str] | None = None  # the files' names of 2-D latitude and longitude (curvilinear grids)
+    grid_mapping: xr.DataArray | None = None  # the files' CF grid-mapping variable (curvilinear grids)
+    opening_notes: list[str] = field(default_factory=list)  # what opening the files changed, to say every time
     notes: list[str] = field(default_factory=list)
 
 
@@ -119,23 +121,37 @@ def find_axes(da: xr.DataArray, where: str) -> tuple[dict[str, str], tuple[str, 
     coordinates (CF ``coordinates``) is on a curvilinear grid: ``lat`` and
     ``lon`` then name its row and column dimensions, and the second value
     returned names the 2-D coordinates (``None`` on a regular grid).
+
+    Raises
+    ------
+    UserError
+        If an axis is missing, or is a dimension without coordinate values
+        (its positions would otherwise be taken for dates or degrees).
     """
     found: dict[str, str] = {}
     grid = None
+    what = {"time": "time", "lat": "latitude", "lon": "longitude"}
     for axis in ("time", "lat", "lon"):
         by_attrs = [d for d in da.dims if d in da.coords and _is_axis(da[d], axis) and d not in found.values()]
         by_name = [d for d in da.dims if str(d).lower() in _NAMES[axis] and d not in found.values()]
-        candidates = by_attrs or by_name
+        candidates = by_attrs or [d for d in by_name if d in da.coords]
         if not candidates and axis != "time" and (grid := grid or _grid_coordinates(da)):
             found["lat"], found["lon"] = (str(d) for d in da[grid[0]].dims)
             break
+        if not candidates and by_name:
+            dim = by_name[0]
+            raise UserError(
+                f"{where}: the {what[axis]} dimension {dim} of variable {da.name!r} has no coordinate values "
+                f"(no variable {dim} in the file), so its {'dates' if axis == 'time' else 'degrees'} are "
+                f"unknown; add the {what[axis]} values to the file"
+            )
         if not candidates:
             looked = {"time": "axis=T, standard_name=time or a CF time unit",
                       "lat": "standard_name=latitude or units=degrees_north",
                       "lon": "standard_name=longitude or units=degrees_east"}[axis]
             raise UserError(
                 f"{where}: variable {da.name!r} has dimensions ({', '.join(map(str, da.dims))}) and none is "
-                f"{'a' if axis == 'time' else 'the'} {dict(time='time', lat='latitude', lon='longitude')[axis]} "
+                f"{'a' if axis == 'time' else 'the'} {what[axis]} "
                 f"axis (looked for {looked}, or a name like {_NAMES[axis][0]}); fix the file's attributes"
             )
         found[axis] = str(candidates[0])
@@ -161,35 +177,93 @@ def _matching(values: np.ndarray, wanted: float | str) -> np.ndarray:
     return np.flatnonzero(np.isclose(values.astype(float), float(wanted)))
 
 
+def _listed(values: np.ndarray) -> str:
+    return ", ".join(str(v) for v in values[:12]) + (" ..." if values.size > 12 else "")
+
+
 def pick_extra_dims(da: xr.DataArray, axes: dict[str, str], choice: SelectSection | None, where: str) -> xr.DataArray:
-    """Reduce every dimension besides time, lat and lon to one value: ``select.level`` for a vertical
-    axis, ``select.member`` for an ensemble axis; length-one dimensions simply drop."""
+    """Reduce every dimension besides time, lat and lon to one value.
+
+    ``select.level`` picks the value of a vertical axis, ``select.member`` that
+    of an ensemble axis; the value picked stays on the field as a scalar
+    coordinate, so the results can say what was analysed.  A field that holds
+    one level or member already (a dimension of length one, or a CF scalar
+    coordinate) must hold the one asked for.  Other length-one dimensions
+    simply drop.
+
+    Raises
+    ------
+    UserError
+        If a dimension is neither vertical nor ensemble, if a level or member
+        is needed and not given (or not there), or if ``select.level`` /
+        ``select.member`` is given for a field without that axis.
+    """
+    found: set[str] = set()
     for dim in [d for d in da.dims if d not in axes.values()]:
-        if da.sizes[dim] == 1:
+        kind = _extra_kind(da, dim)
+        if da.sizes[dim] == 1 and kind is None:
             da = da.squeeze(dim, drop=True)
             continue
-        kind = _extra_kind(da, dim)
         wanted = getattr(choice, kind, None) if kind else None
         values = da[dim].values if dim in da.coords else np.arange(da.sizes[dim])
-        listed = ", ".join(str(v) for v in values[:12]) + (" ..." if values.size > 12 else "")
         if kind is None:
             raise UserError(f"{where}: variable {da.name!r} has a dimension {dim} ({da.sizes[dim]}) besides time, "
                             "latitude and longitude that is neither a vertical nor an ensemble axis; "
                             "extract one slice of it first")
+        found.add(kind)
+        if wanted is None and da.sizes[dim] == 1:
+            da = da.squeeze(dim)
+            continue
         if wanted is None:
-            raise UserError(f"{where}: variable {da.name!r} has a {kind} dimension {dim} with values {listed}; "
-                            f"choose one with select.{kind}")
+            raise UserError(f"{where}: variable {da.name!r} has a {kind} dimension {dim} with values "
+                            f"{_listed(values)}; choose one with select.{kind}")
         match = _matching(values, wanted)
         if len(match) == 0:
-            raise UserError(f"select.{kind}: {wanted!r} is not a value of {dim} in {where}; there: {listed}")
-        da = da.isel({dim: int(match[0])}, drop=True)
+            raise UserError(f"select.{kind}: {wanted!r} is not a value of {dim} in {where}; there: {_listed(values)}")
+        da = da.isel({dim: int(match[0])})
+    for name in [c for c in da.coords if da[c].ndim == 0 and c not in da.dims]:
+        kind = _extra_kind(da, name)
+        if kind is None:
+            continue
+        found.add(kind)
+        wanted = getattr(choice, kind, None)
+        if wanted is not None and len(_matching(np.atleast_1d(da[name].values), wanted)) == 0:
+            units = f" {da[name].attrs['units']}" if "units" in da[name].attrs else ""
+            raise UserError(f"select.{kind}: {wanted!r} is not the {kind} of variable {da.name!r} in {where}, "
+                            f"which holds {name} = {da[name].values}{units} only; set select.{kind} to that "
+                            "value or remove it")
+    for kind, axis in (("level", "vertical"), ("member", "ensemble")):
+        if getattr(choice, kind, None) is not None and kind not in found:
+            raise UserError(f"select.{kind}: {getattr(choice, kind)!r} is given, but variable {da.name!r} in "
+                            f"{where} has no {axis} axis ({', '.join(map(str, da.dims))}); remove select.{kind}")
     return da
+
+
+def _refuse_undecodable_times(path: str) -> None:
+    """If ``path`` failed to open because a time variable's units cannot be turned into dates, say which."""
+    try:
+        raw = xr.open_dataset(path, engine="netcdf4", decode_times=False, decode_timedelta=False)
+    except Exception:  # not a time problem: the caller reports the file as unreadable
+        return
+    with raw:
+        for name, variable in raw.variables.items():
+            units = str(variable.attrs.get("units", ""))
+            if " since " not in f" {units.lower()} ":
+                continue
+            try:
+                xr.decode_cf(xr.Dataset({f"{name}_": variable}))  # decodes the first and last values only
+            except Exception:  # xarray and cftime each raise their own types
+                calendar = variable.attrs.get("calendar", "standard")
+                raise UserError(f"{path}: time variable {name!r} has units {units!r} with calendar {calendar!r}, "
+                                "which cannot be turned into dates; give it CF time units such as "
+                                "'days since 2000-01-01'") from None
 
 
 def _open_one(path: str, variable: str) -> tuple[xr.DataArray, xr.Dataset]:
     try:
         ds = xr.open_dataset(path, engine="netcdf4", decode_timedelta=False)
     except Exception as err:  # netCDF4, h5py and xarray each raise their own types
+        _refuse_undecodable_times(path)
         reason = str(err).splitlines()[0] if str(err) else type(err).__name__
         raise UserError(f"{path}: cannot be read as NetCDF ({reason}); check that the file is complete") from None
     if variable not in ds.data_vars:
@@ -251,39 +325,158 @@ def _time_gaps(time: np.ndarray) -> list[str]:
             for i in np.flatnonzero(days > 1.5 * usual)]
 
 
+_CALENDAR_SYNONYMS = {"gregorian": "standard", "365_day": "noleap", "366_day": "all_leap"}
+
+
+def _calendar(encoding: dict) -> str:
+    """A file's CF calendar (``standard`` when it names none), synonyms made one."""
+    name = str(encoding.get("calendar", "standard")).strip().lower()
+    return _CALENDAR_SYNONYMS.get(name, name)
+
+
+def _check_time(time: xr.DataArray, ds: xr.Dataset, path: str) -> None:
+    """Refuse a file without time steps, or whose time values are not dates (no CF time units)."""
+    name = str(time.name)
+    if time.size == 0:
+        raise UserError(f"{path}: no time steps (its {name} dimension is empty); remove the file from input.paths")
+    if np.issubdtype(time.dtype, np.datetime64) or hasattr(time.values.flat[0], "calendar"):
+        return
+    units = ds[name].attrs.get("units")
+    if units is None:
+        raise UserError(f"{path}: time variable {name!r} has no units, so its values are not dates; give it CF "
+                        "time units such as 'days since 2000-01-01'")
+    raise UserError(f"{path}: time variable {name!r} has units {units!r}, not CF time units ('UNIT since DATE'), "
+                    "so its values are not dates; give it units such as 'days since 2000-01-01'")
+
+
+def _first_disorder(values: np.ndarray) -> int | None:
+    """Index of the first value that breaks a strictly increasing or strictly decreasing order, if any."""
+    if values.size < 2:
+        return None
+    direction = np.sign(values[1] - values[0]) or 1
+    broken = np.flatnonzero(direction * np.diff(values) <= 0)
+    return int(broken[0]) + 1 if broken.size else None
+
+
+def _in_grid_order(da: xr.DataArray, names: dict[str, str], path: str) -> tuple[xr.DataArray, str | None]:
+    """Check the grid's coordinates and put longitudes stored rolled round the circle in increasing order.
+
+    Latitudes must be finite, within -90..90 and strictly monotonic, in either
+    direction.  Latitudes out of order are refused rather than sorted: no
+    archive convention stores them so, and such an axis most often means a
+    file was written or joined wrongly, which sorting would hide.  Longitudes
+    may increase or decrease.  Longitudes that increase round the circle from
+    some meridian (180 ... 357.5, 0 ... 177.5, as some archives store them) are
+    rolled to increase from their smallest value, lazily, and the second value
+    returned says so; any other order is refused.  A global grid's last
+    longitude repeating the first is left for :func:`rechunked` to drop.
+    """
+    if GRID_LAT in da.coords:
+        lat = da[GRID_LAT].values
+        if np.nanmin(lat) < -90 or np.nanmax(lat) > 90:
+            raise UserError(f"{path}: latitude {names['lat']} holds values from {np.nanmin(lat):g} to "
+                            f"{np.nanmax(lat):g}, outside -90..90; fix the file's latitudes")
+        return da, None
+    lat, lon = (np.asarray(da[axis].values, dtype=float) for axis in ("lat", "lon"))
+    for axis, values in (("lat", lat), ("lon", lon)):
+        if not np.all(np.isfinite(values)):
+            raise UserError(f"{path}: {names[axis]} holds missing or infinite values; give every "
+                            f"{'row its latitude' if axis == 'lat' else 'column its longitude'}")
+    if lat.min() < -90 or lat.max() > 90:
+        raise UserError(f"{path}: latitude {names['lat']} holds values from {lat.min():g} to {lat.max():g}, "
+                        "outside -90..90; fix the file's latitudes")
+    if (row := _first_disorder(lat)) is not None:
+        raise UserError(f"{path}: latitudes {names['lat']} are out of order ({lat[row - 1]:g} then {lat[row]:g} at "
+                        f"row {row}); store them increasing or decreasing")
+    repeats = lon.size > 2 and np.isclose((lon[-1] - lon[0]) % 360, 0) and not np.isclose(lon[-1], lon[0])
+    body = lon[:-1] if repeats else lon
+    column = _first_disorder(body)
+    if column is None:
+        return da, None
+    descents = np.flatnonzero(np.diff(body) < 0)
+    start = int(descents[0]) + 1 if descents.size == 1 and not repeats else 0
+    rolled = np.roll(body, -start)
+    if not start or not np.all(np.diff(rolled) > 0) or not np.all(np.diff((body - body[0]) % 360) > 0):
+        raise UserError(f"{path}: longitudes {names['lon']} are out of order ({lon[column - 1]:g} then "
+                        f"{lon[column]:g} at column {column}); store them increasing or decreasing")
+    note = (f"longitudes stored from {lon[0]:g} round to {lon[-1]:g} were put in increasing order "
+            f"({rolled[0]:g} to {rolled[-1]:g})")
+    return da.isel(lon=np.roll(np.arange(lon.size), -start)), note
+
+
+def _grid_mapping(da: xr.DataArray, ds: xr.Dataset) -> xr.DataArray | None:
+    """The grid-mapping variable the field names (CF ``grid_mapping``), if the file holds it."""
+    name = str(da.attrs.get("grid_mapping", da.encoding.get("grid_mapping", ""))).split(":")[0].strip()
+    if name in ds.variables and "grid_mapping_name" in ds[name].attrs:
+        return ds[name]
+    return None
+
+
+def _check_agreement(first: tuple, other: tuple, variable: str) -> None:
+    """Refuse files whose calendars or units differ from those of the first file (both named)."""
+    (path_a, a, encoding_a), (path_b, b, encoding_b) = first, other
+    calendar_a, calendar_b = _calendar(encoding_a), _calendar(encoding_b)
+    kind_a, kind_b = a["time"].dtype.kind, b["time"].dtype.kind  # "M": numpy dates, "O": cftime dates
+    # standard and proleptic_gregorian differ only before 1582-10-15, and xarray gives dates in numpy's
+    # datetime64 only after it: then both name the same days
+    gregorian = {calendar_a, calendar_b} <= {"standard", "proleptic_gregorian"} and kind_a == kind_b == "M"
+    if calendar_a != calendar_b and not gregorian:
+        raise UserError(f"{path_b}: its calendar {calendar_b!r} differs from the calendar {calendar_a!r} of "
+                        f"{path_a}; convert the files to one calendar")
+    if kind_a != kind_b:
+        raise UserError(f"{path_b}: its dates (from {_date(b['time'].values[0])}) cannot share one time axis with "
+                        f"those of {path_a} (from {_date(a['time'].values[0])}) in calendar {calendar_a!r}: dates "
+                        "before 1582-10-15 or outside 1678-2262 are stored differently; analyse them separately")
+    units_a, units_b = (str(d.attrs["units"]).strip() if "units" in d.attrs else None for d in (a, b))
+    if units_a != units_b:
+        said_a = f"in {units_a!r}" if units_a else "without units"
+        said_b = f"is in {units_b!r}" if units_b else "has no units"
+        raise UserError(f"{path_b}: {variable} {said_b}, but {said_a} in {path_a}; give every file the same "
+                        "units (convert the values, not just the attribute)")
+
+
 def open_field(spec: InputSection, choice: SelectSection | None = None) -> OpenedField:
     """Open ``spec.variable`` from every file of ``spec.paths`` as one lazy field.
 
-    Files are ordered by their first time step; their grids must agree and
-    their time steps must not overlap.  A vertical or ensemble dimension is
-    reduced to ``choice.level`` / ``choice.member``.  The field is chunked as
-    ``spec.chunks`` says; :func:`rechunked` cuts it otherwise.
+    Files are ordered by their first time step; their grids, calendars and
+    units must agree and their time steps must not overlap.  A vertical or
+    ensemble dimension is reduced to ``choice.level`` / ``choice.member``.  Only
+    coordinates and attributes are read, so every refusal here costs no read of
+    the field.  The field is chunked as ``spec.chunks`` says; :func:`rechunked`
+    cuts it otherwise.
     """
     paths = expand_paths(spec.paths)
-    pieces, moved = [], []
+    pieces, moved, notes = [], [], []
     names: dict[str, str] = {}
-    grid_names = None
+    grid_names, grid_mapping = None, None
     for path in paths:
         da, ds = _open_one(path, spec.variable)
         axes, grid = find_axes(da, path)
         if names and axes != names:
             raise UserError(f"{path}: axes are named {axes}, but {paths[0]} names them {names}; make them agree")
         names = axes
+        _check_time(da[axes["time"]], ds, path)
         da = pick_extra_dims(da, axes, choice, path)
-        if grid:  # the rows and columns keep no 1-D coordinates (rotated ones are not latitudes)
+        if grid:  # the rows and columns keep their 1-D coordinates (rotated ones are not latitudes) under own names
+            rows = {inner: (dim, da[dim].values, da[dim].attrs)
+                    for inner, dim in ((GRID_Y, axes["lat"]), (GRID_X, axes["lon"])) if dim in da.coords}
             da = da.drop_vars([axes["lat"], axes["lon"]], errors="ignore")
-            da = da.rename({grid[0]: GRID_LAT, grid[1]: GRID_LON})
-            grid_names = grid
+            da = da.rename({grid[0]: GRID_LAT, grid[1]: GRID_LON}).assign_coords(rows)
+            grid_names, grid_mapping = grid, _grid_mapping(da, ds)
         da = _with_cell_areas(da, ds, spec.cell_area, path)
         da, restamped = _stamp_at_interval_middles(da, ds, axes["time"])
         moved.append(restamped)
         da = da.rename({v: k for k, v in axes.items()}).transpose("time", "lat", "lon")
+        da, rolled = _in_grid_order(da, axes, path)
+        if rolled and rolled not in notes:
+            notes.append(rolled)
         steps = da["time"].values
         if steps.size > 1 and not all(b > a for a, b in zip(steps[:-1], steps[1:])):
             where = next(i for i in range(1, steps.size) if not steps[i] > steps[i - 1])
             raise UserError(f"{path}: time step {where} ({str(steps[where])[:19]}) repeats or goes back in time; "
                             "remove the duplicate or sort the steps")
         pieces.append((path, da, ds[axes["time"]].encoding))
+        _check_agreement(pieces[0], pieces[-1], spec.variable)
     pieces.sort(key=lambda p: p[1]["time"].values[0])
     for (path_a, a, _), (path_b, b, _) in zip(pieces, pieces[1:]):
         for axis in ("lat", "lon", GRID_LAT, GRID_LON):
@@ -296,7 +489,8 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
             raise UserError(f"{path_b}: its time steps overlap those of {path_a}; remove the duplicate steps")
     files = [InputFile(str(Path(p).resolve()), os.stat(p).st_size, os.stat(p).st_mtime) for p in paths]
     encoding = {k: v for k, v in pieces[0][2].items() if k in ("units", "calendar", "dtype")}
-    opened = OpenedField(xr.DataArray(), files, names, encoding, pieces=[p[1] for p in pieces], grid=grid_names)
+    opened = OpenedField(xr.DataArray(), files, names, encoding, pieces=[p[1] for p in pieces], grid=grid_names,
+                         grid_mapping=grid_mapping, opening_notes=notes)
     opened.restamped = any(moved)
     return rechunked(opened, spec.chunks)
 
@@ -312,7 +506,7 @@ def rechunked(opened: OpenedField, chunks: dict[str, int]) -> OpenedField:
     sizes = {axis: chunks.get(axis, -1) for axis in ("time", "lat", "lon")}
     data = xr.concat([piece.chunk(sizes) for piece in opened.pieces], dim="time", coords="minimal",
                      compat="override", join="override")
-    notes = _time_gaps(data["time"].values)
+    notes = [*opened.opening_notes, *_time_gaps(data["time"].values)]
     if opened.restamped:
         notes.append("time stamps moved to the middles of the files' time bounds")
     lon = data["lon"].values if "lon" in data.coords else np.array([])

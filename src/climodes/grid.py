@@ -3,9 +3,11 @@
 Inside climodes a field is ``(time, lat, lon)``.  On a regular grid ``lat``
 and ``lon`` are 1-D coordinates; on a curvilinear grid they are only the row
 and column dimensions, and the 2-D latitudes and longitudes travel as the
-coordinates :data:`GRID_LAT` and :data:`GRID_LON`.  A results file keeps the
-input's own names, so readers of it find the coordinates by their CF
-``standard_name`` (:func:`map_coordinates`).
+coordinates :data:`GRID_LAT` and :data:`GRID_LON`; the rows' and columns' own
+1-D coordinates, where the files give them (the rotated latitudes and
+longitudes of a rotated-pole grid), travel as :data:`GRID_Y` and
+:data:`GRID_X`.  A results file keeps the input's own names, so readers of it
+find the coordinates by their CF ``standard_name`` (:func:`map_coordinates`).
 """
 
 from __future__ import annotations
@@ -14,6 +16,7 @@ import numpy as np
 import xarray as xr
 
 GRID_LAT, GRID_LON = "grid_lat", "grid_lon"  # the 2-D coordinates of a curvilinear grid, inside climodes
+GRID_Y, GRID_X = "grid_y", "grid_x"  # the 1-D coordinates of its rows and columns, inside climodes
 
 
 def is_curvilinear(field: xr.DataArray | xr.Dataset) -> bool:

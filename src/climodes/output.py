@@ -25,7 +25,7 @@ from climodes import __version__
 from climodes.config import OutputSection, RunSpec
 from climodes.errors import UserError
 from climodes.fields import OpenedField
-from climodes.grid import GRID_LAT, GRID_LON
+from climodes.grid import GRID_LAT, GRID_LON, GRID_X, GRID_Y
 
 FILL = 9.969209968386869e36  # the netCDF default fill for doubles
 
@@ -73,29 +73,53 @@ def _squared_units(units: str | None) -> dict:
     return {"units": f"({units})^2"} if units else {}
 
 
+# a coordinate's CF attributes that stay true whatever part of it is kept: they say what it is, not what it holds
+_LASTING_ATTRS = ("standard_name", "long_name", "units", "axis", "positive")
+
+
+def lasting_attrs(attrs: dict) -> dict:
+    """The attributes of an input coordinate that stay true in the results.
+
+    An archive's ``actual_range``, ``valid_range``, ``valid_min`` and
+    ``valid_max`` describe the values it stored (and are often stale there
+    already), not the part the results keep; ``bounds`` and ``formula_terms``
+    name variables the results do not hold.  Only what says what the
+    coordinate is survives.
+
+    >>> lasting_attrs({"units": "degrees_north", "actual_range": [-90, 90], "bounds": "lat_bnds"})
+    {'units': 'degrees_north'}
+    """
+    return {k: v for k, v in attrs.items() if k in _LASTING_ATTRS}
+
+
 def results_dataset(modes: xr.Dataset, opened: OpenedField, spec: RunSpec, extra: dict) -> xr.Dataset:
     """Dress the solver's modes as the CF results of the contract.
 
     ``extra`` carries ``errors``, ``separated``, ``n_eff``, ``n_eff_how``,
-    ``method``, ``notes`` and ``units``.
+    ``method``, ``notes`` and ``units``.  Coordinates keep only their
+    attributes that stay true (:func:`lasting_attrs`); the level or member
+    analysed stays as a scalar coordinate; a curvilinear grid keeps its rows'
+    and columns' 1-D coordinates and its grid mapping, where the input has them.
     """
     units = extra["units"]
     field_name = spec.input.variable
     long_name = opened.data.attrs.get("long_name", field_name)
     ds = modes.copy()
+    ds = ds.assign_coords({name: c.variable for name, c in opened.data.coords.items() if c.ndim == 0})
+    for name in ds.coords:
+        ds[name].attrs = lasting_attrs(ds[name].attrs)
     curvilinear = GRID_LAT in ds.coords
     ds["mode"].attrs = {"long_name": "mode number, in order of decreasing variance", "units": "1"}
     lat, lon = (GRID_LAT, GRID_LON) if curvilinear else ("lat", "lon")
-    ds[lat].attrs = {**opened.data[lat].attrs, "standard_name": "latitude", "units": "degrees_north"}
-    ds[lon].attrs = {**opened.data[lon].attrs, "standard_name": "longitude", "units": "degrees_east"}
+    ds[lat].attrs = {**lasting_attrs(opened.data[lat].attrs), "standard_name": "latitude", "units": "degrees_north"}
+    ds[lon].attrs = {**lasting_attrs(opened.data[lon].attrs), "standard_name": "longitude", "units": "degrees_east"}
     if not curvilinear:
         ds["lat"].attrs["axis"], ds["lon"].attrs["axis"] = "Y", "X"
-    ds["time"].attrs = {k: v for k, v in opened.data["time"].attrs.items() if k not in ("units", "calendar", "bounds")}
+    ds["time"].attrs = {k: v for k, v in lasting_attrs(opened.data["time"].attrs).items() if k != "units"}
     ds["time"].attrs.update(standard_name="time", axis="T")
     ds["eof"].attrs = {
         "long_name": f"EOF map of {long_name}: regression of the anomaly on the standardised PC",
         **({"units": units} if units else {}),
-        **({} if curvilinear else {"grid_mapping": "crs"}),
         "comment": "anomaly ~= sum over mode of pc * eof; NaN where the point was not used. "
                    "The sign of a mode is arbitrary; climodes makes the largest absolute value of each map positive.",
     }
@@ -119,13 +143,26 @@ def results_dataset(modes: xr.Dataset, opened: OpenedField, spec: RunSpec, extra
         "flag_values": np.array([0, 1], dtype=np.int8),
         "flag_meanings": "mixed_with_a_neighbour separated",
     }
+    mapping = None
     if not curvilinear:  # a curvilinear grid has no geotransform: viewers place it by its 2-D coordinates
         import pyproj
 
-        ds["crs"] = xr.DataArray(np.int32(0), attrs=pyproj.CRS("EPSG:4326").to_cf())
+        mapping, ds["crs"] = "crs", xr.DataArray(np.int32(0), attrs=pyproj.CRS("EPSG:4326").to_cf())
+    elif opened.grid_mapping is not None:  # the input's own mapping (a rotated pole, a projection)
+        mapping = str(opened.grid_mapping.name)
+        ds[mapping] = xr.DataArray(np.int32(0), attrs=dict(opened.grid_mapping.attrs))
+    if mapping:
+        ds[mapping].encoding["coordinates"] = None  # a grid mapping describes the grid, not values at a level
+    if mapping:  # every map variable names it
+        for name, var in ds.data_vars.items():
+            if {"lat", "lon"} <= set(var.dims):
+                ds[name].attrs["grid_mapping"] = mapping
     ds = ds.rename({k: v for k, v in opened.names.items() if k != v})
     if curvilinear:
         ds = ds.rename({GRID_LAT: opened.grid[0], GRID_LON: opened.grid[1]})
+        rows = {opened.names["lat"]: GRID_Y, opened.names["lon"]: GRID_X}
+        ds = ds.drop_vars([GRID_Y, GRID_X], errors="ignore").assign_coords(
+            {dim: (dim, ds[inner].values, ds[inner].attrs) for dim, inner in rows.items() if inner in ds.coords})
     ds.attrs = provenance(spec, opened, extra)
     return ds
 
@@ -176,10 +213,14 @@ def _regular(values: np.ndarray) -> bool:
 
 
 def check_geotiff_grid(field: xr.DataArray) -> None:
-    """A GeoTIFF holds a regular grid only; say so before any work is done."""
+    """A GeoTIFF holds a regular grid of known spacing only; say so before any work is done."""
     if GRID_LAT in field.coords:
         raise UserError("output.formats: geotiff needs a regular latitude-longitude grid, and this one is "
                         "curvilinear (2-D latitudes); drop geotiff (modes.nc carries the 2-D coordinates)")
+    if field.sizes["lat"] < 2 or field.sizes["lon"] < 2:
+        raise UserError(f"output.formats: geotiff needs the grid spacing, which a grid of {field.sizes['lat']} "
+                        f"latitude(s) x {field.sizes['lon']} longitude(s) does not give; drop geotiff or select at "
+                        "least two latitudes and two longitudes")
     for name, values in (("latitude", field["lat"].values), ("longitude", field["lon"].values)):
         if not _regular(values):
             raise UserError(f"output.formats: geotiff needs a regularly spaced grid, but the {name} spacing "
