@@ -15,7 +15,14 @@ from conftest import field_dataset, red_field, write_config
 def test_check_prints_the_resolved_config(tmp_path, small_field, cli):
     config = write_config(tmp_path, [small_field], modes={"count": 3})
     code, out, err = cli("check", config)
-    assert code == 0 and err == ""
+    assert code == 0
+    assert err.splitlines() == [
+        f"reads   tas from 1 file(s), first {small_field}",
+        "steps   60, 1980-02-15 to 1985-01-15",
+        "grid    18 x 36 points",
+        "solver  exact (60 steps x 648 points (0 MB in float32) is small: the whole matrix fits in memory)",
+        f"writes  {tmp_path / 'out'} (a new folder)",
+    ]
     resolved = yaml.safe_load(out)
     assert resolved["modes"] == {"count": 3, "effective_sample_size": "auto", "method": "auto", "seed": 0}
     assert resolved["compute"] == {"memory": "4GB", "workers": "auto", "scheduler": "threads"}
@@ -28,8 +35,8 @@ def test_run_writes_results_and_prints_a_table(tmp_path, small_field, cli):
     assert code == 0, err
     assert out.splitlines()[0].startswith("climodes: 3 modes of tas from 1 file(s), 60 time steps x 648 points")
     assert out.splitlines()[1].split() == ["mode", "variance", "explained", "separated", "(North)"]
-    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["modes.nc", "run.log"]
-    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # no staging folder left
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == [".climodes-results.json", "modes.nc", "run.log"]
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # no staging folder or claim left
 
 
 def test_quiet_run_prints_nothing(tmp_path, small_field, cli):
@@ -182,15 +189,23 @@ def test_bad_input_gives_one_line_and_exit_2(tmp_path, cli, monkeypatch, case):
 
 def test_existing_output_dir_needs_overwrite(tmp_path, small_field, cli):
     config = write_config(tmp_path, [small_field], modes={"count": 2})
-    (tmp_path / "out").mkdir()
-    (tmp_path / "out" / "keep.txt").write_text("mine")
+    assert cli("run", config)[0] == 0
     code, _, err = cli("run", config)
     assert code == 2 and "output.dir:" in err and "overwrite: true" in err and len(err.strip().splitlines()) == 1
-    assert (tmp_path / "out" / "keep.txt").read_text() == "mine"
     config = write_config(tmp_path, [small_field], modes={"count": 2}, output={"overwrite": True})
     code, _, err = cli("run", config)
     assert code == 0, err
-    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["modes.nc", "run.log"]
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == [".climodes-results.json", "modes.nc", "run.log"]
+
+
+def test_a_folder_climodes_did_not_make_is_never_replaced(tmp_path, small_field, cli):
+    (tmp_path / "out").mkdir()
+    (tmp_path / "out" / "keep.txt").write_text("mine")
+    for overwrite in (False, True):
+        code, _, err = cli("run", write_config(tmp_path, [small_field], output={"overwrite": overwrite}))
+        assert code == 2 and "is not a climodes results folder" in err and len(err.strip().splitlines()) == 1
+        assert [p.name for p in (tmp_path / "out").iterdir()] == ["keep.txt"]
+        assert (tmp_path / "out" / "keep.txt").read_text() == "mine"
 
 
 def test_input_files_are_left_unchanged(tmp_path, small_field, cli):
