@@ -39,6 +39,31 @@ def test_run_writes_results_and_prints_a_table(tmp_path, small_field, cli):
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # no staging folder or claim left
 
 
+def test_count_above_the_rank_keeps_the_non_null_modes(tmp_path, cli):
+    """Three planted patterns with random amplitudes and a seasonal cycle: after the monthly climatology
+    the field has rank 3 (SVD algebra), whatever modes.count asks."""
+    rng = np.random.default_rng(5)
+    lat, lon = np.linspace(-60, 60, 7), np.arange(0, 360, 30.0)
+    patterns = rng.standard_normal((3, lat.size, lon.size))
+    cycle = np.sin(2 * np.pi * np.arange(48) / 12)[:, None, None] * patterns[0]
+    values = 280 + cycle + np.einsum("tk,kyx->tyx", rng.standard_normal((48, 3)) * [3, 2, 1], patterns)
+    field_dataset(values, lat, lon).to_netcdf(tmp_path / "rank3.nc")
+    config = write_config(tmp_path, [tmp_path / "rank3.nc"], modes={"count": 6}, output={"figures": True})
+    code, out, err = cli("run", config)
+    assert code == 0, err
+    assert out.splitlines()[0].startswith("climodes: 3 modes (6 asked, 3 not null) of tas")
+    assert sum(1 for line in out.splitlines() if line.strip()[:1].isdigit() and "%" in line) == 3
+    assert "the prepared field has only 3 that are not null" in err
+    ds = xr.open_dataset(tmp_path / "out" / "modes.nc")
+    assert ds.sizes["mode"] == 3 and "only 3 that are not null" in ds.attrs["climodes_notes"]
+    np.testing.assert_allclose(ds["pc"].std("time", ddof=1), 1.0, rtol=1e-8)
+    assert sorted(p.name for p in (tmp_path / "out").glob("mode_*.png")) == ["mode_01.png", "mode_02.png",
+                                                                            "mode_03.png"]
+    assert "not null" in (tmp_path / "out" / "run.log").read_text()
+    code, shown, _ = cli("show", tmp_path / "out")
+    assert code == 0 and sum(1 for line in shown.splitlines() if line.strip()[:1].isdigit() and "%" in line) == 3
+
+
 def test_quiet_run_prints_nothing(tmp_path, small_field, cli):
     code, out, err = cli("run", "--quiet", write_config(tmp_path, [small_field], modes={"count": 2}))
     assert (code, out, err) == (0, "", "")
