@@ -171,6 +171,30 @@ def _disk_full(tmp_path, monkeypatch):
     return [_ok(tmp_path)], {}
 
 
+def _input_folder(tmp_path, *_):
+    (tmp_path / "data").mkdir()
+    path = _ok(tmp_path).rename(tmp_path / "data" / "ok.nc")
+    return [path], {"output": {"dir": str(tmp_path / "data"), "overwrite": True}}
+
+
+def _not_ours(tmp_path, *_):
+    (tmp_path / "mine").mkdir()
+    (tmp_path / "mine" / "thesis.tex").write_text("years of work")
+    return [_ok(tmp_path)], {"output": {"dir": str(tmp_path / "mine"), "overwrite": True}}
+
+
+def _linked(tmp_path, *_):
+    (tmp_path / "elsewhere").mkdir()
+    (tmp_path / "link").symlink_to(tmp_path / "elsewhere")
+    return [_ok(tmp_path)], {"output": {"dir": str(tmp_path / "link"), "overwrite": True}}
+
+
+def _home(tmp_path, monkeypatch):
+    (tmp_path / "home").mkdir()
+    monkeypatch.setenv("HOME", str(tmp_path / "home"))
+    return [_ok(tmp_path)], {"output": {"dir": "~", "overwrite": True}}
+
+
 CATALOGUE = {
     "missing file": (lambda t, m: ([t / "absent.nc"], {}), "absent.nc: no such file"),
     "empty glob": (lambda t, m: ([t / "nothing_*.nc"], {}), "matches no file"),
@@ -196,7 +220,24 @@ CATALOGUE = {
     "output inside a file": (_inside_a_file, "which is a file; choose another folder"),
     "bad yaml syntax": (_bad_yaml, "run.yaml:3: not valid YAML"),
     "disk full": (_disk_full, "output.dir: cannot write the results to"),
+    # the results folder: where results may be written, and what may be replaced
+    "output.dir with a NUL byte": (lambda t, m: ([_ok(t)], {"output": {"dir": str(t / "o\0ut")}}),
+                                   "output.dir: the folder name holds a NUL byte"),
+    "output.dir name over the limit": (lambda t, m: ([_ok(t)], {"output": {"dir": str(t / ("x" * 300))}}),
+                                       "bytes long, over the file system's limit of 255"),
+    "output.dir is the config's folder": (lambda t, m: ([_ok(t)], {"output": {"dir": ".", "overwrite": True}}),
+                                          "holds the config file"),
+    "output.dir is the input folder": (_input_folder, "holds the input file"),
+    "output.dir not made by climodes": (_not_ours, "is not a climodes results folder (it has no .climodes-results"),
+    "output.dir is a symbolic link": (_linked, "is a symbolic link"),
+    "output.dir is the home folder": (_home, "is your home folder, which climodes never replaces"),
+    "output.dir is the root": (lambda t, m: ([_ok(t)], {"output": {"dir": "/", "overwrite": True}}),
+                               "is the root of the file system"),
 }
+
+# found only once the field's values are read or the results written: `climodes check` cannot see them
+FOUND_WHEN_READING = {"constant field", "nan everywhere", "an infinity (exact)", "an infinity (gram)",
+                      "an infinity (randomized)", "disk full"}
 
 
 @pytest.mark.parametrize("case", list(CATALOGUE))
@@ -210,6 +251,49 @@ def test_bad_input_gives_one_line_and_exit_2(tmp_path, cli, monkeypatch, case):
     assert expected in err and "Traceback" not in err
     assert not (tmp_path / "out").exists()
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".out")]
+
+
+@pytest.mark.parametrize("case", [c for c in CATALOGUE if c not in FOUND_WHEN_READING])
+def test_check_refuses_what_run_refuses(tmp_path, cli, monkeypatch, case):
+    """`climodes check` opens the files (metadata only) and looks at the output folder as `run` does."""
+    make, expected = CATALOGUE[case]
+    made = make(tmp_path, monkeypatch)
+    config = made if isinstance(made, Path) else write_config(tmp_path, made[0], **made[1])
+    code, out, err = cli("check", config)
+    assert code == 2 and out == ""
+    assert len(err.strip().splitlines()) == 1, err
+    assert expected in err and "Traceback" not in err
+    assert not (tmp_path / "out").exists()
+
+
+def test_config_problems_are_found_before_the_data_libraries_load(tmp_path):
+    """A config problem is reported without importing xarray or dask: well under a second."""
+    config = write_config(tmp_path, [tmp_path / "a.nc"], modes={"count": 0})
+    script = ("import sys; from climodes.cli import main; code = main(['check', sys.argv[1]]); "
+              "print(code, [m for m in ('xarray', 'dask', 'numpy', 'netCDF4') if m in sys.modules])")
+    done = subprocess.run([sys.executable, "-c", script, str(config)], capture_output=True, text=True, timeout=60)
+    assert done.stdout.split() == ["2", "[]"] and "modes.count" in done.stderr
+
+
+def test_library_warnings_become_notes(tmp_path, cli):
+    """A file whose variable carries two different fill values (CF: _FillValue and missing_value): xarray warns,
+    and the warning reaches the user as a note, never as a raw Python warning; --quiet prints nothing."""
+    import netCDF4
+
+    path = tmp_path / "twofills.nc"
+    values = red_field((24, 5, 6))
+    field_dataset(values, np.linspace(-40, 40, 5), np.arange(0, 60.0, 10)).to_netcdf(
+        path, encoding={"tas": {"_FillValue": -999.0}})
+    with netCDF4.Dataset(path, "a") as nc:
+        nc["tas"].missing_value = -888.0
+    config = write_config(tmp_path, [path], modes={"count": 2})
+    code, _, err = cli("run", config)
+    assert code == 0, err
+    assert "note: variable 'tas' has multiple fill values" in err
+    assert "Warning" not in err and ".py:" not in err
+    assert "multiple fill values" in (tmp_path / "out" / "run.log").read_text()
+    code, out, err = cli("run", "--quiet", "--overwrite", config)
+    assert (code, out, err) == (0, "", "")
 
 
 def test_existing_output_dir_needs_overwrite(tmp_path, small_field, cli):
