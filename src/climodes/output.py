@@ -132,7 +132,11 @@ def provenance(spec: RunSpec, opened: OpenedField, extra: dict) -> dict:
 
 
 def write_netcdf(ds: xr.Dataset, path: Path, time_encoding: dict) -> None:
-    """Write ``ds`` as NetCDF-4 with CF-friendly encodings (no fill values on coordinates)."""
+    """Write ``ds`` as NetCDF-4 with CF-friendly encodings (no fill values on coordinates).
+
+    SIGINT and SIGTERM wait until the file is closed: an interruption inside xarray's writer can
+    leave its file lock taken, and the close that follows would then wait for ever.
+    """
     encoding = {name: {"_FillValue": None} for name in ds.coords}
     for name, var in ds.data_vars.items():
         encoding[name] = {"_FillValue": FILL if var.dtype.kind == "f" else None}
@@ -140,7 +144,8 @@ def write_netcdf(ds: xr.Dataset, path: Path, time_encoding: dict) -> None:
             encoding[name].update(zlib=True, complevel=4)
     time_name = next(d for d in ds["pc"].dims if d != "mode")
     encoding[time_name].update(time_encoding)
-    ds.to_netcdf(path, format="NETCDF4", encoding=encoding)
+    with _signals_held(act=True):
+        ds.to_netcdf(path, format="NETCDF4", encoding=encoding)
 
 
 def _regular(values: np.ndarray) -> bool:
@@ -171,7 +176,10 @@ def geotiff_layout(eof: xr.DataArray) -> xr.DataArray:
 
 
 def write_geotiff(ds: xr.Dataset, path: Path) -> None:
-    """Write the EOF maps as one north-up, DEFLATE-compressed GeoTIFF band per mode (EPSG:4326, NaN nodata)."""
+    """Write the EOF maps as one north-up, DEFLATE-compressed GeoTIFF band per mode (EPSG:4326, NaN nodata).
+
+    SIGINT and SIGTERM wait until the file is closed, as for :func:`write_netcdf`.
+    """
     import rasterio
     import rioxarray  # noqa: F401  (registers the .rio accessor)
 
@@ -182,11 +190,12 @@ def write_geotiff(ds: xr.Dataset, path: Path) -> None:
     bands = bands.rio.write_crs("EPSG:4326").rio.write_nodata(np.nan)
     units = ds["eof"].attrs.get("units", "")
     tags = {name: str(value) for name, value in ds.attrs.items() if name != "Conventions"}
-    bands.rio.to_raster(path, driver="GTiff", compress="DEFLATE", tags={**tags, "units": units})
-    with rasterio.open(path, "r+") as raster:
-        for k in range(ds.sizes["mode"]):
-            share = 100 * float(ds["variance_explained"][k])
-            raster.set_band_description(k + 1, f"mode {k + 1} EOF ({units}), {share:.1f}% of variance")
+    with _signals_held(act=True):
+        bands.rio.to_raster(path, driver="GTiff", compress="DEFLATE", tags={**tags, "units": units})
+        with rasterio.open(path, "r+") as raster:
+            for k in range(ds.sizes["mode"]):
+                share = 100 * float(ds["variance_explained"][k])
+                raster.set_band_description(k + 1, f"mode {k + 1} EOF ({units}), {share:.1f}% of variance")
 
 
 
