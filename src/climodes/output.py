@@ -14,6 +14,7 @@ import contextlib
 import ctypes
 import datetime as dt
 import errno
+import functools
 import glob
 import hashlib
 import json
@@ -231,9 +232,10 @@ def _host_tag() -> str:
 
 def _short(name: str) -> str:
     """``name`` as it appears in the hidden names beside it: a long one shortened, kept unique by a hash."""
-    if len(name.encode()) <= 100:
+    encoded = os.fsencode(name)
+    if len(encoded) <= 100:
         return name
-    return name.encode()[:60].decode(errors="ignore") + "-" + hashlib.sha256(name.encode()).hexdigest()[:16]
+    return encoded[:60].decode(errors="ignore") + "-" + hashlib.sha256(encoded).hexdigest()[:16]
 
 
 def _hidden_name(final: Path, what: str, suffix: str = "") -> str:
@@ -394,6 +396,15 @@ def check_output_dir(spec: RunSpec) -> str:
         raise UserError(f"output.dir: {final} is a file, not a folder; choose another output.dir")
     _refuse_protected(final)
     _refuse_run_files(final, spec)
+    try:
+        return _check_replaceable(final, spec.output.overwrite)
+    except OSError as err:
+        raise UserError(f"output.dir: cannot look into {final} ({err.strerror or err}); choose another "
+                        "output.dir") from None
+
+
+def _check_replaceable(final: Path, overwrite: bool) -> str:
+    """Refuse an existing folder that is not a results folder climodes made, or ``overwrite`` is off."""
     mark = read_mark(final)
     if mark is None:
         raise UserError(f"output.dir: {final} exists and is not a climodes results folder (it has no {MARK}); "
@@ -402,7 +413,7 @@ def check_output_dir(spec: RunSpec) -> str:
         more = f" and {len(extra) - 1} more" if len(extra) > 1 else ""
         raise UserError(f"output.dir: {final} holds {extra[0]}{more}, which climodes did not write there; "
                         "move it out or choose another output.dir")
-    if not spec.output.overwrite:
+    if not overwrite:
         raise UserError(f"output.dir: {final} exists already; set output.overwrite: true (or --overwrite) to "
                         "replace it, or choose another folder")
     return f"{final} (replaces the results written there on {mark.get('finished', '?')})"
@@ -411,13 +422,24 @@ def check_output_dir(spec: RunSpec) -> str:
 # --- claiming, staging and putting in place
 
 
-def _renameat2(source: Path, target: Path, flag: int) -> bool:
-    """Linux ``renameat2``; False where the C library or the file system does not offer it."""
+@functools.cache
+def _libc_renameat2() -> Callable | None:
+    """The C library's ``renameat2`` (Linux, glibc 2.28 or later), or None."""
+    if not sys.platform.startswith("linux"):
+        return None
     try:
         function = ctypes.CDLL(None, use_errno=True).renameat2
     except (OSError, AttributeError):
-        return False
+        return None
     function.argtypes = [ctypes.c_int, ctypes.c_char_p, ctypes.c_int, ctypes.c_char_p, ctypes.c_uint]
+    return function
+
+
+def _renameat2(source: Path, target: Path, flag: int) -> bool:
+    """Linux ``renameat2`` with ``flag``; False where the C library or the file system does not offer it."""
+    function = _libc_renameat2()
+    if function is None:
+        return False
     if function(_AT_FDCWD, os.fsencode(source), _AT_FDCWD, os.fsencode(target), flag) == 0:
         return True
     code = ctypes.get_errno()
@@ -442,7 +464,15 @@ def _move_noreplace(source: Path, target: Path) -> None:
                 os.rmdir(target)
             raise
     else:
-        os.link(source, target)  # exclusive for files on every file system that has links
+        try:
+            os.link(source, target)  # exclusive for files
+        except FileExistsError:
+            raise
+        except OSError:  # a file system without hard links: the check as close to the rename as it gets
+            if os.path.lexists(target):
+                raise FileExistsError(errno.EEXIST, os.strerror(errno.EEXIST), str(target)) from None
+            os.rename(source, target)
+            return
         os.unlink(source)
 
 
@@ -494,7 +524,9 @@ def _remove_stale(final: Path) -> list[str]:
             elif match.group(1) == "stage" and stat.S_ISDIR(mode) and _read_json(path / MARK):
                 if read_mark(path) is None:  # still being written when its run was killed
                     shutil.rmtree(path)
-                elif _remove_results(path):  # old results moved aside by a replace that was cut short
+                elif left := _remove_results(path):  # old results moved aside by a replace cut short
+                    notes.append(f"kept {path}, left by a run (pid {match.group(2)}) that was killed: it holds "
+                                 f"{', '.join(left)}, which climodes did not write")
                     continue
             else:
                 continue
@@ -514,7 +546,7 @@ def _claim(final: Path, me: dict) -> Path:
             holder = _read_json(claim)
             if not _stale(holder):
                 who = (f"pid {holder.get('pid')} on {holder.get('host')}, started {holder.get('started')}"
-                       if holder else "its claim is being written")
+                       if holder else "its claim file cannot be read yet")
                 raise UserError(f"output.dir: {final} is being written by another climodes run ({who}); wait for "
                                 f"it or choose another output.dir (if no such run is going, remove {claim})") from None
             _break_claim(claim, holder)
@@ -596,7 +628,12 @@ def _put_in_place(stage: Path, final: Path, before: tuple | None) -> list[str]:
         if _identity(old) != before:
             _move_noreplace(old, final)
             raise _changed(final)
-        _move_noreplace(stage, final)
+        try:
+            _move_noreplace(stage, final)
+        except OSError:  # something took the name meanwhile: the old results go back if they can
+            with contextlib.suppress(OSError):
+                _move_noreplace(old, final)
+            raise _changed(final) from None
     left = _remove_results(old)
     return [f"the replaced results folder held {', '.join(left)}, which climodes did not write; left in {old}"] \
         if left else []
