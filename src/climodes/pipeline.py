@@ -23,6 +23,7 @@ from climodes.config import RunSpec, memory_bytes
 from climodes.diagnostics import effective_sample_size, north_errors, separated
 from climodes.errors import UserError
 from climodes.fields import OpenedField, open_field, rechunked, select
+from climodes.grid import GRID_LAT
 from climodes.output import (
     check_geotiff_grid,
     check_output_dir,
@@ -131,7 +132,7 @@ def check(spec: RunSpec) -> list[str]:
         planned = _plan(spec)
     field, files = planned.field, planned.opened.files
     times = field["time"].values
-    grid = f"{field.sizes['lat']} x {field.sizes['lon']}" + (" (curvilinear)" if "grid_lat" in field.coords else "")
+    grid = f"{field.sizes['lat']} x {field.sizes['lon']}" + (" (curvilinear)" if GRID_LAT in field.coords else "")
     return [
         f"reads   {spec.input.variable} from {len(files)} file(s), first {files[0].path}",
         f"steps   {times.size}, {str(times[0])[:10]} to {str(times[-1])[:10]}",
@@ -143,13 +144,15 @@ def check(spec: RunSpec) -> list[str]:
 
 
 def _solve(spec: RunSpec, planned: Planned, progress: bool):
-    """The decomposition of the planned field (the first pass over the data happens here)."""
+    """The decomposition of the planned field (the first pass over the data happens here); a streaming
+    solver gets the field opened again in its blocks of latitude rows."""
+    field, along_time = planned.field, planned.along_time
     if planned.plan.lat_rows:
         opened = rechunked(planned.opened, {"time": -1, "lat": planned.plan.lat_rows, "lon": -1})
-        planned.field, planned.along_time, planned.notes = _prepared(spec, opened)
+        field, along_time, _ = _prepared(spec, opened)
     with dask_settings(spec.compute):
-        return solve(planned.field, planned.weights, spec.modes.count, spec.prepare.max_missing, planned.plan,
-                     spec.modes.seed, pass_context(progress, planned.workers), planned.along_time)
+        return solve(field, planned.weights, spec.modes.count, spec.prepare.max_missing, planned.plan,
+                     spec.modes.seed, pass_context(progress, planned.workers), along_time)
 
 
 def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress: bool = False) -> RunSummary:
