@@ -382,6 +382,15 @@ def check_output_dir(spec: RunSpec) -> str:
         What a run would do there, for ``climodes check``.
     """
     final = _checked_name(spec.output.dir)
+    try:
+        return _check_place(final, spec)
+    except OSError as err:  # a folder on the way that cannot be looked into
+        raise UserError(f"output.dir: cannot look at {final} ({err.strerror or err}); choose a folder you can "
+                        "read and write") from None
+
+
+def _check_place(final: Path, spec: RunSpec) -> str:
+    """The checks of :func:`check_output_dir` once the name itself is known to be valid."""
     if final.is_symlink():
         raise UserError(f"output.dir: {final} is a symbolic link; climodes writes only to a real folder; "
                         "choose another output.dir")
@@ -396,11 +405,7 @@ def check_output_dir(spec: RunSpec) -> str:
         raise UserError(f"output.dir: {final} is a file, not a folder; choose another output.dir")
     _refuse_protected(final)
     _refuse_run_files(final, spec)
-    try:
-        return _check_replaceable(final, spec.output.overwrite)
-    except OSError as err:
-        raise UserError(f"output.dir: cannot look into {final} ({err.strerror or err}); choose another "
-                        "output.dir") from None
+    return _check_replaceable(final, spec.output.overwrite)
 
 
 def _check_replaceable(final: Path, overwrite: bool) -> str:
