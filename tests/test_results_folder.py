@@ -8,6 +8,7 @@ with RENAME_NOREPLACE and RENAME_EXCHANGE, and the liveness probe is POSIX kill(
 import hashlib
 import json
 import os
+import socket
 import stat
 import subprocess
 import sys
@@ -278,18 +279,20 @@ def _reaped() -> int:
     return child.pid
 
 
-def _stage(parent: Path, name: str, pid: int, marked: bool = True, host: str | None = None) -> Path:
+def _stage(parent: Path, name: str, pid: int, marked: bool = True) -> Path:
+    """A staging folder as a run of ``pid`` on this host leaves it, half written."""
     stage = parent / f".{name}.climodes-stage-{output._host_tag()}-{pid}-{os.urandom(4).hex()}"
     stage.mkdir()
     (stage / "modes.nc").write_bytes(b"half written")
     if marked:
-        mark = {"kind": "climodes results folder", "run_id": "x", "host": host or os.uname().nodename, "pid": pid,
+        mark = {"kind": "climodes results folder", "run_id": "x", "host": socket.gethostname(), "pid": pid,
                 "files": None}
         (stage / MARK).write_text(json.dumps(mark))
     return stage
 
 
 def _claim(parent: Path, name: str, pid: int, host: str) -> Path:
+    """A claim on ``name`` as a run of ``pid`` on ``host`` leaves it."""
     claim = parent / f".{name}.climodes-claim"
     claim.write_text(json.dumps({"kind": "climodes results folder", "run_id": "y", "host": host, "pid": pid,
                                  "started": "2026-01-01T00:00:00+00:00"}))
@@ -298,8 +301,6 @@ def _claim(parent: Path, name: str, pid: int, host: str) -> Path:
 
 def test_leftovers_of_killed_runs_are_removed_and_nothing_else(site, cli):
     project, source = site
-    import socket
-
     dead, alive = _reaped(), os.getppid()
     stale = _stage(project, "results", dead)
     running = _stage(project, "results", alive)
@@ -319,8 +320,6 @@ def test_leftovers_of_killed_runs_are_removed_and_nothing_else(site, cli):
 @pytest.mark.parametrize("whose", ["a live run here", "a run on another host"])
 def test_a_claim_held_by_another_run_is_respected(site, cli, whose, tmp_path):
     project, source = site
-    import socket
-
     pid, host = (os.getppid(), socket.gethostname()) if whose == "a live run here" else (_reaped(), "node042")
     claim = _claim(project, "results", pid, host)
     config = write_config(project, [source], output={"dir": "results"})
