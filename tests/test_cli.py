@@ -15,7 +15,14 @@ from conftest import archive_file, field_dataset, red_field, write_config
 def test_check_prints_the_resolved_config(tmp_path, small_field, cli):
     config = write_config(tmp_path, [small_field], modes={"count": 3})
     code, out, err = cli("check", config)
-    assert code == 0 and err == ""
+    assert code == 0
+    assert err.splitlines() == [
+        f"reads   tas from 1 file(s), first {small_field}",
+        "steps   60, 1980-02-15 to 1985-01-15",
+        "grid    18 x 36 points",
+        "solver  exact (60 steps x 648 points (0 MB in float32) is small: the whole matrix fits in memory)",
+        f"writes  {tmp_path / 'out'} (a new folder)",
+    ]
     resolved = yaml.safe_load(out)
     assert resolved["modes"] == {"count": 3, "effective_sample_size": "auto", "method": "auto", "seed": 0}
     assert resolved["compute"] == {"memory": "4GB", "workers": "auto", "scheduler": "threads"}
@@ -28,8 +35,33 @@ def test_run_writes_results_and_prints_a_table(tmp_path, small_field, cli):
     assert code == 0, err
     assert out.splitlines()[0].startswith("climodes: 3 modes of tas from 1 file(s), 60 time steps x 648 points")
     assert out.splitlines()[1].split() == ["mode", "variance", "explained", "separated", "(North)"]
-    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["modes.nc", "run.log"]
-    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # no staging folder left
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == [".climodes-results.json", "modes.nc", "run.log"]
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # no staging folder or claim left
+
+
+def test_count_above_the_rank_keeps_the_non_null_modes(tmp_path, cli):
+    """Three planted patterns with random amplitudes and a seasonal cycle: after the monthly climatology
+    the field has rank 3 (SVD algebra), whatever modes.count asks."""
+    rng = np.random.default_rng(5)
+    lat, lon = np.linspace(-60, 60, 7), np.arange(0, 360, 30.0)
+    patterns = rng.standard_normal((3, lat.size, lon.size))
+    cycle = np.sin(2 * np.pi * np.arange(48) / 12)[:, None, None] * patterns[0]
+    values = 280 + cycle + np.einsum("tk,kyx->tyx", rng.standard_normal((48, 3)) * [3, 2, 1], patterns)
+    field_dataset(values, lat, lon).to_netcdf(tmp_path / "rank3.nc")
+    config = write_config(tmp_path, [tmp_path / "rank3.nc"], modes={"count": 6}, output={"figures": True})
+    code, out, err = cli("run", config)
+    assert code == 0, err
+    assert out.splitlines()[0].startswith("climodes: 3 modes (6 asked, 3 not null) of tas")
+    assert sum(1 for line in out.splitlines() if line.strip()[:1].isdigit() and "%" in line) == 3
+    assert "the prepared field has only 3 that are not null" in err
+    ds = xr.open_dataset(tmp_path / "out" / "modes.nc")
+    assert ds.sizes["mode"] == 3 and "only 3 that are not null" in ds.attrs["climodes_notes"]
+    np.testing.assert_allclose(ds["pc"].std("time", ddof=1), 1.0, rtol=1e-8)
+    assert sorted(p.name for p in (tmp_path / "out").glob("mode_*.png")) == ["mode_01.png", "mode_02.png",
+                                                                            "mode_03.png"]
+    assert "not null" in (tmp_path / "out" / "run.log").read_text()
+    code, shown, _ = cli("show", tmp_path / "out")
+    assert code == 0 and sum(1 for line in shown.splitlines() if line.strip()[:1].isdigit() and "%" in line) == 3
 
 
 def test_quiet_run_prints_nothing(tmp_path, small_field, cli):
@@ -185,6 +217,30 @@ def _one_level(tmp_path, *_):
     return [path], {"select": {"level": 850}}
 
 
+def _input_folder(tmp_path, *_):
+    (tmp_path / "data").mkdir()
+    path = _ok(tmp_path).rename(tmp_path / "data" / "ok.nc")
+    return [path], {"output": {"dir": str(tmp_path / "data"), "overwrite": True}}
+
+
+def _not_ours(tmp_path, *_):
+    (tmp_path / "mine").mkdir()
+    (tmp_path / "mine" / "thesis.tex").write_text("years of work")
+    return [_ok(tmp_path)], {"output": {"dir": str(tmp_path / "mine"), "overwrite": True}}
+
+
+def _linked(tmp_path, *_):
+    (tmp_path / "elsewhere").mkdir()
+    (tmp_path / "link").symlink_to(tmp_path / "elsewhere")
+    return [_ok(tmp_path)], {"output": {"dir": str(tmp_path / "link"), "overwrite": True}}
+
+
+def _home(tmp_path, monkeypatch):
+    (tmp_path / "home").mkdir()
+    monkeypatch.setenv("HOME", str(tmp_path / "home"))
+    return [_ok(tmp_path)], {"output": {"dir": "~", "overwrite": True}}
+
+
 CATALOGUE = {
     "missing file": (lambda t, m: ([t / "absent.nc"], {}), "absent.nc: no such file"),
     "empty glob": (lambda t, m: ([t / "nothing_*.nc"], {}), "matches no file"),
@@ -296,7 +352,20 @@ CATALOGUE = {
     "one column with geotiff": (lambda t, m: ([archive_file(t / "f.nc", lon=[20.0])],
                                               {"modes": {"count": 2}, "output": {"formats": ["netcdf", "geotiff"]}}),
                                 "grid of 5 latitude(s) x 1 longitude(s) does not give"),
+    # the results folder: where results may be written, and what may be replaced
+    "output.dir is the config's folder": (lambda t, m: ([_ok(t)], {"output": {"dir": ".", "overwrite": True}}),
+                                          "holds the config file"),
+    "output.dir is the input folder": (_input_folder, "holds the input file"),
+    "output.dir not made by climodes": (_not_ours, "is not a climodes results folder (it has no .climodes-results"),
+    "output.dir is a symbolic link": (_linked, "is a symbolic link"),
+    "output.dir is the home folder": (_home, "is your home folder, which climodes never replaces"),
+    "output.dir is the root": (lambda t, m: ([_ok(t)], {"output": {"dir": "/", "overwrite": True}}),
+                               "is the root of the file system"),
 }
+
+# found only once the field's values are read or the results written: `climodes check` cannot see them
+FOUND_WHEN_READING = {"constant field", "nan everywhere", "an infinity (exact)", "an infinity (gram)",
+                      "an infinity (randomized)", "disk full"}
 
 
 @pytest.mark.parametrize("case", list(CATALOGUE))
@@ -312,17 +381,68 @@ def test_bad_input_gives_one_line_and_exit_2(tmp_path, cli, monkeypatch, case):
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".out")]
 
 
+@pytest.mark.parametrize("case", [c for c in CATALOGUE if c not in FOUND_WHEN_READING])
+def test_check_refuses_what_run_refuses(tmp_path, cli, monkeypatch, case):
+    """`climodes check` opens the files (metadata only) and looks at the output folder as `run` does."""
+    make, expected = CATALOGUE[case]
+    made = make(tmp_path, monkeypatch)
+    config = made if isinstance(made, Path) else write_config(tmp_path, made[0], **made[1])
+    code, out, err = cli("check", config)
+    assert code == 2 and out == ""
+    assert len(err.strip().splitlines()) == 1, err
+    assert expected in err and "Traceback" not in err
+    assert not (tmp_path / "out").exists()
+
+
+def test_config_problems_are_found_before_the_data_libraries_load(tmp_path):
+    """A config problem is reported without importing xarray or dask: well under a second."""
+    config = write_config(tmp_path, [tmp_path / "a.nc"], modes={"count": 0})
+    script = ("import sys; from climodes.cli import main; code = main(['check', sys.argv[1]]); "
+              "print(code, [m for m in ('xarray', 'dask', 'numpy', 'netCDF4') if m in sys.modules])")
+    done = subprocess.run([sys.executable, "-c", script, str(config)], capture_output=True, text=True, timeout=60)
+    assert done.stdout.split() == ["2", "[]"] and "modes.count" in done.stderr
+
+
+def test_library_warnings_become_notes(tmp_path, cli):
+    """A file whose variable carries two different fill values (CF: _FillValue and missing_value): xarray warns,
+    and the warning reaches the user as a note, never as a raw Python warning; --quiet prints nothing."""
+    import netCDF4
+
+    path = tmp_path / "twofills.nc"
+    values = red_field((24, 5, 6))
+    field_dataset(values, np.linspace(-40, 40, 5), np.arange(0, 60.0, 10)).to_netcdf(
+        path, encoding={"tas": {"_FillValue": -999.0}})
+    with netCDF4.Dataset(path, "a") as nc:
+        nc["tas"].missing_value = -888.0
+    config = write_config(tmp_path, [path], modes={"count": 2})
+    code, _, err = cli("run", config)
+    assert code == 0, err
+    assert "note: variable 'tas' has multiple fill values" in err
+    assert "Warning" not in err and ".py:" not in err
+    assert "multiple fill values" in (tmp_path / "out" / "run.log").read_text()
+    code, out, err = cli("run", "--quiet", "--overwrite", config)
+    assert (code, out, err) == (0, "", "")
+
+
 def test_existing_output_dir_needs_overwrite(tmp_path, small_field, cli):
     config = write_config(tmp_path, [small_field], modes={"count": 2})
-    (tmp_path / "out").mkdir()
-    (tmp_path / "out" / "keep.txt").write_text("mine")
+    assert cli("run", config)[0] == 0
     code, _, err = cli("run", config)
     assert code == 2 and "output.dir:" in err and "overwrite: true" in err and len(err.strip().splitlines()) == 1
-    assert (tmp_path / "out" / "keep.txt").read_text() == "mine"
     config = write_config(tmp_path, [small_field], modes={"count": 2}, output={"overwrite": True})
     code, _, err = cli("run", config)
     assert code == 0, err
-    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["modes.nc", "run.log"]
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == [".climodes-results.json", "modes.nc", "run.log"]
+
+
+def test_a_folder_climodes_did_not_make_is_never_replaced(tmp_path, small_field, cli):
+    (tmp_path / "out").mkdir()
+    (tmp_path / "out" / "keep.txt").write_text("mine")
+    for overwrite in (False, True):
+        code, _, err = cli("run", write_config(tmp_path, [small_field], output={"overwrite": overwrite}))
+        assert code == 2 and "is not a climodes results folder" in err and len(err.strip().splitlines()) == 1
+        assert [p.name for p in (tmp_path / "out").iterdir()] == ["keep.txt"]
+        assert (tmp_path / "out" / "keep.txt").read_text() == "mine"
 
 
 def test_input_files_are_left_unchanged(tmp_path, small_field, cli):

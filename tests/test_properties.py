@@ -1,11 +1,15 @@
-"""Property-based (hypothesis): no mutation of a valid config or input file makes climodes crash.
+"""Property-based (hypothesis): no mutation of a valid config or input file makes climodes crash, and
+no output.dir makes it remove or change a file it did not write.
 
 Whatever the change, the run either works (exit 0) or says what is wrong in one line (exit 2); exit 1
 (an internal error, with a traceback) means a bug.
 """
 
 import contextlib
+import hashlib
 import io
+import os
+import shutil
 import tempfile
 from pathlib import Path
 
@@ -16,6 +20,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from climodes.cli import main
+from climodes.output import MARK, read_mark
 from conftest import field_dataset, red_field
 
 pytestmark = __import__("pytest").mark.slow
@@ -121,3 +126,97 @@ def test_period_mutations_never_crash(calendar, key, dates):
     assert "Traceback" not in err
     if code == 2:
         assert len(err.strip().splitlines()) == 1, err
+
+
+# --- whatever output.dir says, with overwrite on, no file climodes did not write is removed or changed
+
+OUTPUT_DIRS = [".", "./", "..", "~", "~/..", "~/project", "/", "{root}", "data", "data/", "{root}/home/project/data",
+               "new/../data", "{root}/elsewhere", "link", "link/new", "datalink", "papers", "papers/new/deeper", "previous",
+               "previous/sub", "new", "a/b/c", "data/field.nc", "data/field.nc/x", "thesis.tex"]
+
+
+def _template() -> Path:
+    """A user's home: a project with its data, a thesis, a folder of papers, links, an earlier results
+    folder; and a folder elsewhere.  Built once; each example works on a copy."""
+    if not hasattr(_template, "root"):
+        root = Path(tempfile.mkdtemp())
+        project = root / "home" / "project"
+        (project / "data").mkdir(parents=True)
+        (project / "papers").mkdir()
+        (root / "elsewhere").mkdir()
+        lat, lon = np.linspace(-60, 60, 5), np.arange(0, 360, 60.0)
+        field_dataset(red_field((30, lat.size, lon.size), 1), lat, lon).to_netcdf(project / "data" / "field.nc")
+        (project / "thesis.tex").write_text("chapter 1")
+        (project / "papers" / "thesis.pdf").write_bytes(b"%PDF years of work")
+        (root / "home" / "notes.txt").write_text("do not lose")
+        (root / "elsewhere" / "keep.txt").write_text("kept")
+        (project / "link").symlink_to(root / "elsewhere")
+        (project / "datalink").symlink_to(project / "data")
+        _template.root = root
+        assert _run_in(root, _configure(root, "previous"))[0] == 0
+    return _template.root
+
+
+def _configure(root: Path, output_dir: str) -> Path:
+    """The project's config, writing to ``output_dir`` with overwrite on."""
+    config = root / "home" / "project" / "run.yaml"
+    config.write_text(yaml.safe_dump({
+        "input": {"paths": ["data/field.nc"], "variable": "tas"}, "modes": {"count": 2},
+        "output": {"dir": output_dir.format(root=root), "figures": False, "overwrite": True}}))
+    return config
+
+
+def _run_in(root: Path, config: Path) -> tuple[int, str]:
+    """Run ``config`` from the project folder of ``root`` with HOME set to its home; return (code, stderr)."""
+    project = root / "home" / "project"
+    home, cwd = os.environ.get("HOME"), os.getcwd()
+    os.environ["HOME"] = str(root / "home")
+    os.chdir(project)
+    try:
+        err = io.StringIO()
+        with contextlib.redirect_stderr(err), contextlib.redirect_stdout(io.StringIO()):
+            code = main(["run", str(config)])
+    finally:
+        os.chdir(cwd)
+        if home is None:
+            del os.environ["HOME"]
+        else:
+            os.environ["HOME"] = home
+    return code, err.getvalue()
+
+
+def _users_files(root: Path) -> dict[str, tuple]:
+    """Every file under ``root`` that no climodes manifest lists, with its digest and modification time."""
+    found = {}
+    for folder, _, files in os.walk(root):
+        mark = read_mark(Path(folder))
+        ours = set(mark["files"]) | {MARK} if mark else set()
+        for name in set(files) - ours:
+            path = Path(folder) / name
+            if not path.is_symlink():
+                found[str(path.relative_to(root))] = (hashlib.sha256(path.read_bytes()).hexdigest(),
+                                                      path.stat().st_mtime_ns)
+            else:
+                found[str(path.relative_to(root))] = ("link", os.readlink(path))
+    return found
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(output_dir=st.sampled_from(OUTPUT_DIRS), extra=st.sampled_from([None, "previous", "papers", "data"]))
+def test_no_users_file_is_ever_removed_or_changed(output_dir, extra):
+    """Random output.dir values (the current, parent, home and input folders, links, a folder of papers,
+    nested new folders, an earlier results folder, a file), overwrite on, sometimes with a file of the
+    user's added to a folder first: every file no climodes manifest lists is still there, unchanged."""
+    root = Path(tempfile.mkdtemp()) / "site"
+    shutil.copytree(_template(), root, symlinks=True)
+    if extra:
+        (root / "home" / "project" / extra / "mine.txt").write_text("added by the user")
+    config = _configure(root, output_dir)
+    before = _users_files(root)
+    code, err = _run_in(root, config)
+    assert code in (0, 2), err
+    assert len(err.strip().splitlines()) <= 1 or code == 0, err
+    after = _users_files(root)
+    assert {k: v for k, v in after.items() if k in before} == before
+    assert not [name for name in after if ".climodes-" in name]  # no claim, staging folder or temporary left
+    shutil.rmtree(root.parent)

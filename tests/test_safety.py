@@ -1,5 +1,6 @@
 """An interrupted run leaves nothing under the final name; inputs are never changed (POSIX signals:
-SIGINT, SIGTERM, and SIGKILL, which no program can catch)."""
+SIGINT, SIGTERM, and SIGKILL, which no program can catch).  A caught signal also removes the run's
+staging folder and claim; after a SIGKILL they stay until the next run into that folder removes them."""
 
 import hashlib
 import signal
@@ -33,17 +34,29 @@ def _digest(path):
 def test_interrupted_while_writing(slow_run, sig, code):
     folder, source, config = slow_run
     before = _digest(source)
+    # SIGINT as a terminal delivers it, even where the suite itself runs with SIGINT ignored (a background job)
     proc = subprocess.Popen([sys.executable, "-m", "climodes", "run", str(config)],
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                            preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL))
     deadline = time.monotonic() + 120
-    while not list(folder.glob(".out.partial-*")) and proc.poll() is None and time.monotonic() < deadline:
+    while not list(folder.glob(".out.climodes-stage-*/modes.nc")) and proc.poll() is None \
+            and time.monotonic() < deadline:
         time.sleep(0.005)  # wait until the results are being written: the riskiest moment
     assert proc.poll() is None, "the run ended before it could be interrupted"
     proc.send_signal(sig)
     _, err = proc.communicate(timeout=120)
-    assert proc.returncode == code
+    assert proc.returncode == code, err
     assert not (folder / "out").exists()  # nothing under the final name
-    if sig != signal.SIGKILL:  # a caught signal cleans up its staging folder too
+    if sig != signal.SIGKILL:  # a caught signal cleans up its staging folder and claim too
         assert not list(folder.glob(".out*")) and "interrupted; no results were written" in err
         assert "Traceback" not in err
+    else:  # what a SIGKILL leaves: the claim and the staging folder, both naming the dead run
+        stage, = folder.glob(".out.climodes-stage-*")
+        assert (folder / ".out.climodes-claim").exists()
+        again = subprocess.run([sys.executable, "-m", "climodes", "run", str(config)], capture_output=True,
+                               text=True, timeout=300)
+        assert again.returncode == 0, again.stderr
+        assert f"note: removed {stage}, left by a run (pid {proc.pid}) that was killed" in again.stderr
+        assert sorted(p.name for p in folder.glob(".out*")) == []  # the next run removed them
+        assert (folder / "out" / "modes.nc").exists()
     assert _digest(source) == before

@@ -11,7 +11,7 @@ from eofs.standard import Eof
 from sklearn.decomposition import PCA
 
 from climodes.diagnostics import reconstruct
-from climodes.solvers import exact_modes, sign_rule, solve
+from climodes.solvers import SolverPlan, exact_modes, sign_rule, solve
 from climodes.weights import area_weights
 from conftest import red_field
 
@@ -126,3 +126,46 @@ def test_exact_modes_zero_weight_points_still_get_a_map():
     expected = a.T @ result.pcs / 39
     np.testing.assert_allclose(result.patterns, expected)
     assert np.all(np.isfinite(result.patterns[0]))
+
+
+def _known_rank_field(eigenvalues: list[float], dtype=np.float64, nt: int = 60) -> xr.DataArray:
+    """A field of rank ``len(eigenvalues)`` whose weighted covariance has exactly those eigenvalues.
+
+    Built from orthonormal weighted patterns q_k and centred, orthogonal series a_k with
+    sum(a_k^2) = (n - 1) lambda_k, so that X = sum_k a_k q_k^T is already its own SVD (SVD algebra).
+    """
+    rng = np.random.default_rng(11)
+    lat, lon = np.linspace(-80, 80, 17), np.arange(0, 360, 12.0)
+    w = area_weights(xr.DataArray(lat, dims="lat"), xr.DataArray(lon, dims="lon"), "coslat").values.reshape(-1)
+    q = np.linalg.qr(rng.standard_normal((w.size, len(eigenvalues))))[0]
+    series = rng.standard_normal((nt, len(eigenvalues)))
+    a = np.linalg.qr(series - series.mean(axis=0))[0] * np.sqrt((nt - 1) * np.array(eigenvalues))
+    values = (a @ q.T / w).reshape(nt, lat.size, lon.size).astype(dtype)
+    return xr.DataArray(values, dims=("time", "lat", "lon"), coords={"time": np.arange(nt), "lat": lat, "lon": lon})
+
+
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+@pytest.mark.parametrize("method", ["exact", "gram", "randomized"])
+def test_count_above_the_rank_keeps_only_the_non_null_modes(method, dtype):
+    """A rank-3 field asked for 6 modes: 3 come back, with the planted eigenvalues (SVD algebra), unit-variance
+    uncorrelated PCs (the contract), and a note; the next eigenvalue is null, so mode 3 stands apart."""
+    field = _known_rank_field([9.0, 4.0, 1.0], dtype)
+    plan = SolverPlan(method, "test", None if method == "exact" else 4)
+    modes, result, _ = solve(field, area_weights(field["lat"], field["lon"], "coslat"), 6, 0.0, plan)
+    assert modes.sizes["mode"] == 3 and modes["mode"].values.tolist() == [1, 2, 3]
+    np.testing.assert_allclose(modes["eigenvalue"].values, [9.0, 4.0, 1.0], rtol=1e-5)
+    np.testing.assert_allclose(np.cov(modes["pc"].values), np.eye(3), atol=1e-5)
+    np.testing.assert_allclose(modes["variance_explained"].values.sum(), 1.0, rtol=1e-5)
+    assert result.next_eigenvalue == 0.0
+    assert result.notes[-1] == ("modes.count asks for 6 modes, but the prepared field has only 3 that are not null "
+                                "(eigenvalue 4 is below 1e-08 of the first): 3 modes kept")
+
+
+@pytest.mark.parametrize("method", ["exact", "gram"])
+def test_a_weak_mode_above_the_null_tolerance_is_kept(method):
+    """The null rule is relative to the leading eigenvalue: a mode 1e-6 of it is weak, not null."""
+    field = _known_rank_field([1.0, 0.5, 1e-6])
+    plan = SolverPlan(method, "test", None if method == "exact" else 4)
+    modes, result, _ = solve(field, area_weights(field["lat"], field["lon"], "coslat"), 4, 0.0, plan)
+    assert modes.sizes["mode"] == 3
+    np.testing.assert_allclose(modes["eigenvalue"].values, [1.0, 0.5, 1e-6], rtol=1e-6)

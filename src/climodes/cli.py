@@ -12,6 +12,7 @@ import dataclasses
 import signal
 import sys
 import traceback
+import warnings
 
 from climodes import __version__
 from climodes.errors import ConfigError, UserError
@@ -24,7 +25,8 @@ def _parser() -> argparse.ArgumentParser:
     )
     parser.add_argument("--version", action="version", version=f"climodes {__version__}")
     commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
-    check = commands.add_parser("check", help="validate a config and print it with every default filled in")
+    check = commands.add_parser("check", help="validate a config against its files and output folder; print it "
+                                              "with every default filled in")
     check.add_argument("config", help="YAML run configuration")
     run = commands.add_parser("run", help="run a config: write modes.nc, figures and run.log")
     run.add_argument("config", help="YAML run configuration")
@@ -43,6 +45,12 @@ def main(argv: list[str] | None = None) -> int:
     """Entry point of the ``climodes`` console script; returns the exit code."""
     args = _parser().parse_args(argv)
     signal.signal(signal.SIGTERM, _interrupt)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # the run turns the warnings worth telling into notes
+        return _command(args)
+
+
+def _command(args: argparse.Namespace) -> int:
     from climodes.config import load_spec
 
     try:
@@ -51,9 +59,13 @@ def main(argv: list[str] | None = None) -> int:
 
             print(summary(args.results))
             return 0
-        spec = load_spec(args.config)
+        spec = load_spec(args.config)  # config problems are found here, before the big imports
         if args.command == "check":
+            from climodes.pipeline import check
+
+            described = check(spec)
             print(spec.to_yaml(), end="")
+            print("\n".join(described), file=sys.stderr)
             return 0
         from climodes.cluster import show_progress
         from climodes.pipeline import run

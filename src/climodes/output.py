@@ -1,72 +1,46 @@
-"""Write the results: a CF-1.10 ``modes.nc`` with its provenance, atomically.
+"""Write the results: a CF-1.10 ``modes.nc`` with its provenance, into a results folder that is
+claimed at the start and appears complete or not at all.
 
-A results folder appears complete or not at all: everything is written into a
-hidden folder beside it and renamed into place at the end; on any failure the
-hidden folder is removed.
+A results folder is climodes' own: it carries a manifest (:data:`MARK`) naming
+the run and every file it wrote, and it is the only kind of folder climodes
+ever replaces (:func:`check_output_dir` says which folders are refused).
+:func:`results_folder` claims it, stages the files beside it and renames them
+into place; :func:`write_file_atomically` does the same for a single file.
 """
 
 from __future__ import annotations
 
 import contextlib
+import ctypes
 import datetime as dt
+import errno
+import functools
+import glob
 import hashlib
+import json
 import os
+import re
+import secrets
 import shlex
 import shutil
+import signal
+import socket
+import stat
 import sys
-import tempfile
+import threading
 from pathlib import Path
-from typing import Iterator
+from typing import Callable, Iterator
 
 import numpy as np
 import xarray as xr
 
 from climodes import __version__
-from climodes.config import OutputSection, RunSpec
+from climodes.config import RunSpec
 from climodes.errors import UserError
 from climodes.fields import OpenedField
 from climodes.grid import GRID_LAT, GRID_LON, GRID_X, GRID_Y
 
 FILL = 9.969209968386869e36  # the netCDF default fill for doubles
-
-
-def check_output_dir(spec: OutputSection) -> None:
-    """Fail early, before any data are read, if the results could not be written."""
-    final = Path(spec.dir)
-    if final.exists() and not final.is_dir():
-        raise UserError(f"output.dir: {final} is a file, not a folder; choose another output.dir")
-    if final.exists() and not spec.overwrite:
-        raise UserError(f"output.dir: {final} exists already; set output.overwrite: true or choose another folder")
-    ancestor = final.parent
-    while not ancestor.exists():
-        ancestor = ancestor.parent
-    if not ancestor.is_dir():
-        raise UserError(f"output.dir: {final} would lie inside {ancestor}, which is a file; choose another folder")
-    if not os.access(ancestor, os.W_OK | os.X_OK):
-        raise UserError(f"output.dir: cannot write in {ancestor}; choose a folder you can write to")
-
-
-@contextlib.contextmanager
-def staged_dir(final: Path) -> Iterator[Path]:
-    """Yield a hidden folder to write into; rename it to ``final`` when the block succeeds."""
-    created = [p for p in reversed(final.parents) if not p.exists()]
-    final.parent.mkdir(parents=True, exist_ok=True)
-    stage = Path(tempfile.mkdtemp(prefix=f".{final.name}.partial-", dir=final.parent))
-    try:
-        yield stage
-        if final.exists():
-            old = Path(tempfile.mkdtemp(prefix=f".{final.name}.old-", dir=final.parent))
-            os.replace(final, old / final.name)
-            os.replace(stage, final)
-            shutil.rmtree(old)
-        else:
-            os.replace(stage, final)
-    except BaseException:
-        shutil.rmtree(stage, ignore_errors=True)
-        for folder in reversed(created):
-            with contextlib.suppress(OSError):
-                folder.rmdir()
-        raise
 
 
 def _squared_units(units: str | None) -> dict:
@@ -196,7 +170,11 @@ def provenance(spec: RunSpec, opened: OpenedField, extra: dict) -> dict:
 
 
 def write_netcdf(ds: xr.Dataset, path: Path, time_encoding: dict) -> None:
-    """Write ``ds`` as NetCDF-4 with CF-friendly encodings (no fill values on coordinates)."""
+    """Write ``ds`` as NetCDF-4 with CF-friendly encodings (no fill values on coordinates).
+
+    SIGINT and SIGTERM wait until the file is closed: an interruption inside xarray's writer can
+    leave its file lock taken, and the close that follows would then wait for ever.
+    """
     encoding = {name: {"_FillValue": None} for name in ds.coords}
     for name, var in ds.data_vars.items():
         encoding[name] = {"_FillValue": FILL if var.dtype.kind == "f" else None}
@@ -204,7 +182,8 @@ def write_netcdf(ds: xr.Dataset, path: Path, time_encoding: dict) -> None:
             encoding[name].update(zlib=True, complevel=4)
     time_name = next(d for d in ds["pc"].dims if d != "mode")
     encoding[time_name].update(time_encoding)
-    ds.to_netcdf(path, format="NETCDF4", encoding=encoding)
+    with _signals_held(act=True):
+        ds.to_netcdf(path, format="NETCDF4", encoding=encoding)
 
 
 def _regular(values: np.ndarray) -> bool:
@@ -239,7 +218,10 @@ def geotiff_layout(eof: xr.DataArray) -> xr.DataArray:
 
 
 def write_geotiff(ds: xr.Dataset, path: Path) -> None:
-    """Write the EOF maps as one north-up, DEFLATE-compressed GeoTIFF band per mode (EPSG:4326, NaN nodata)."""
+    """Write the EOF maps as one north-up, DEFLATE-compressed GeoTIFF band per mode (EPSG:4326, NaN nodata).
+
+    SIGINT and SIGTERM wait until the file is closed, as for :func:`write_netcdf`.
+    """
     import rasterio
     import rioxarray  # noqa: F401  (registers the .rio accessor)
 
@@ -250,8 +232,570 @@ def write_geotiff(ds: xr.Dataset, path: Path) -> None:
     bands = bands.rio.write_crs("EPSG:4326").rio.write_nodata(np.nan)
     units = ds["eof"].attrs.get("units", "")
     tags = {name: str(value) for name, value in ds.attrs.items() if name != "Conventions"}
-    bands.rio.to_raster(path, driver="GTiff", compress="DEFLATE", tags={**tags, "units": units})
-    with rasterio.open(path, "r+") as raster:
-        for k in range(ds.sizes["mode"]):
-            share = 100 * float(ds["variance_explained"][k])
-            raster.set_band_description(k + 1, f"mode {k + 1} EOF ({units}), {share:.1f}% of variance")
+    with _signals_held(act=True):
+        bands.rio.to_raster(path, driver="GTiff", compress="DEFLATE", tags={**tags, "units": units})
+        with rasterio.open(path, "r+") as raster:
+            for k in range(ds.sizes["mode"]):
+                share = 100 * float(ds["variance_explained"][k])
+                raster.set_band_description(k + 1, f"mode {k + 1} EOF ({units}), {share:.1f}% of variance")
+
+
+
+# --- the results folder: its mark, its claim and the atomic replace
+#
+# A results folder carries a manifest (MARK) naming the run that wrote it and every file it wrote there;
+# climodes replaces a folder only when that manifest lists everything in it.  A run claims its output at
+# the start with an exclusive create of a claim file beside the final folder, writes into a hidden staging
+# folder beside it, and at the end renames the staging folder into place without ever replacing anything
+# but the results folder it checked at the start (Linux renameat2 with RENAME_NOREPLACE or RENAME_EXCHANGE).
+# The claim, the staging folder and a single file's temporary name carry the run's host and pid, so the
+# next run can tell the leftovers of a killed run (same host, pid no longer alive) from a running one.
+
+MARK = ".climodes-results.json"  # the manifest inside every results folder
+_KIND = "climodes results folder"  # the manifest's "kind": what tells it from any other JSON file
+_RENAME_NOREPLACE, _RENAME_EXCHANGE = 1, 2  # linux/fs.h
+_AT_FDCWD = -100
+
+
+def _run_identity(config: Path) -> dict:
+    """Who is writing: the run id, host, pid, start time, config and version carried by its claim and mark."""
+    return {"kind": _KIND, "run_id": secrets.token_hex(8), "host": socket.gethostname(), "pid": os.getpid(),
+            "started": _now(), "config": str(config), "climodes": __version__}
+
+
+def _now() -> str:
+    return dt.datetime.now(dt.timezone.utc).replace(microsecond=0).isoformat()
+
+
+def _host_tag() -> str:
+    return hashlib.sha256(socket.gethostname().encode()).hexdigest()[:8]
+
+
+def _short(name: str) -> str:
+    """``name`` as it appears in the hidden names beside it: a long one shortened, kept unique by a hash."""
+    encoded = os.fsencode(name)
+    if len(encoded) <= 100:
+        return name
+    return encoded[:60].decode(errors="ignore") + "-" + hashlib.sha256(encoded).hexdigest()[:16]
+
+
+def _hidden_name(final: Path, what: str, suffix: str = "") -> str:
+    """A fresh hidden name beside ``final`` (``what``: stage or temporary) saying which host and pid made it."""
+    return f".{_short(final.name)}.climodes-{what}-{_host_tag()}-{os.getpid()}-{secrets.token_hex(4)}{suffix}"
+
+
+def _claim_path(final: Path) -> Path:
+    return final.parent / f".{_short(final.name)}.climodes-claim"
+
+
+def _read_json(path: Path) -> dict | None:
+    """The JSON object climodes wrote (its ``kind`` says so) in the regular file ``path``, else None."""
+    try:
+        if not stat.S_ISREG(os.lstat(path).st_mode):
+            return None
+        with open(path, "rb") as f:
+            data = json.loads(f.read(1_000_000))
+    except (OSError, ValueError):
+        return None
+    return data if isinstance(data, dict) and data.get("kind") == _KIND else None
+
+
+def read_mark(folder: Path) -> dict | None:
+    """The manifest of a finished results folder, or None if ``folder`` has none that climodes wrote."""
+    mark = _read_json(Path(folder) / MARK)
+    files = mark.get("files") if mark else None
+    plain = isinstance(files, list) and all(
+        isinstance(f, str) and f not in ("", ".", "..") and f == os.path.basename(f) for f in files)
+    return mark if plain else None
+
+
+def unlisted(folder: Path, mark: dict) -> list[str]:
+    """What ``folder`` holds beyond the regular files its manifest lists (sub-folders and links included)."""
+    listed = set(mark["files"]) | {MARK}
+    with os.scandir(folder) as entries:
+        return sorted(e.name for e in entries if e.name not in listed or not e.is_file(follow_symlinks=False))
+
+
+def _pid_alive(pid: object) -> bool:
+    """Whether process ``pid`` of this host may still run (anything unsure counts as alive)."""
+    if os.name != "posix" or not isinstance(pid, int) or isinstance(pid, bool) or pid <= 0:
+        return True  # os.kill(pid, 0) is a probe on POSIX only; elsewhere it would stop the process
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except (OSError, OverflowError):  # not ours to signal (so it exists), or a number no pid can be
+        return True
+    return True
+
+
+def _stale(holder: dict | None) -> bool:
+    """Whether a claim was left by a run of this host that is no longer alive."""
+    return holder is not None and holder.get("host") == socket.gethostname() and not _pid_alive(holder.get("pid"))
+
+
+# --- which folders climodes may write to
+
+
+def _nearest_existing(path: Path) -> Path:
+    return next(p for p in (path, *path.parents) if os.path.lexists(p))
+
+
+def _limit(folder: Path, name: str, default: int) -> int:
+    try:
+        return os.pathconf(folder, name)
+    except (OSError, ValueError, AttributeError):  # not asked of this file system, or no pathconf here
+        return default
+
+
+def _checked_name(text: str) -> Path:
+    """``output.dir`` as a path, or a one-line error if no file system could hold the name."""
+    if "\0" in text:
+        raise UserError("output.dir: the folder name holds a NUL byte, which no file system allows; fix output.dir")
+    try:
+        encoded = os.fsencode(text)
+    except UnicodeError:
+        raise UserError("output.dir: the folder name cannot be written in this system's file-name encoding; "
+                        "use plain characters") from None
+    path = Path(text)
+    existing = _nearest_existing(path)
+    name_max, path_max = _limit(existing, "PC_NAME_MAX", 255), _limit(existing, "PC_PATH_MAX", 4096)
+    for part in path.parts:
+        if len(os.fsencode(part)) > name_max:
+            raise UserError(f"output.dir: the name {part[:40]}... is {len(os.fsencode(part))} bytes long, over the "
+                            f"file system's limit of {name_max}; choose a shorter output.dir")
+    if len(encoded) >= path_max:
+        raise UserError(f"output.dir: the path is {len(encoded)} bytes long, over the file system's limit of "
+                        f"{path_max}; choose a shorter output.dir")
+    return path
+
+
+def _run_files(spec: RunSpec) -> list[Path]:
+    """The config file and every input file the run would read (patterns expanded, missing files skipped)."""
+    found = [spec.source]
+    for pattern in spec.input.paths:
+        found += [Path(p) for p in (sorted(glob.glob(pattern)) if glob.has_magic(pattern) else [pattern])]
+    return found
+
+
+def _within(path: Path, folder: Path) -> bool:
+    return path == folder or folder in path.parents
+
+
+def _refuse_protected(final: Path) -> None:
+    """Refuse the root of the file system, the home and current folders and their ancestors."""
+    real = Path(os.path.realpath(final))
+    if real == Path(real.anchor):
+        raise UserError(f"output.dir: {final} is the root of the file system; choose a folder for the results")
+    for what, where in (("your home folder", Path.home), ("the current folder", Path.cwd)):
+        try:
+            folder = Path(os.path.realpath(where()))
+        except (OSError, RuntimeError):  # no home known, or the current folder was removed
+            continue
+        if _within(folder, real):
+            how = "is" if folder == real else "holds"
+            raise UserError(f"output.dir: {final} {how} {what}, which climodes never replaces; choose a new folder "
+                            "for the results, e.g. a results folder inside it")
+
+
+def _refuse_run_files(final: Path, spec: RunSpec) -> None:
+    """Refuse a folder that is or holds the config or an input file (by its path as given or resolved)."""
+    for path in _run_files(spec):
+        if _within(Path(os.path.abspath(path)), Path(os.path.abspath(final))) or \
+                _within(Path(os.path.realpath(path)), Path(os.path.realpath(final))):
+            what = "the config file" if path == spec.source else "the input file"
+            raise UserError(f"output.dir: {final} holds {what} {path}; results never replace the run's own files: "
+                            "choose an output.dir apart from them")
+
+
+def check_output_dir(spec: RunSpec) -> str:
+    """Refuse, before any data are read, an ``output.dir`` the results may not be written to.
+
+    A new folder is fine if the folder above it can be made and written in.  An existing one may be
+    replaced only with ``output.overwrite``, and only if it is a results folder climodes made: it
+    carries the mark (:data:`MARK`) and holds nothing its manifest does not list.  Never the root,
+    the home or current folder or an ancestor of either, a folder holding the config or an input
+    file, or a symbolic link.
+
+    Returns
+    -------
+    str
+        What a run would do there, for ``climodes check``.
+    """
+    final = _checked_name(spec.output.dir)
+    try:
+        return _check_place(final, spec)
+    except OSError as err:  # a folder on the way that cannot be looked into
+        raise UserError(f"output.dir: cannot look at {final} ({err.strerror or err}); choose a folder you can "
+                        "read and write") from None
+
+
+def _check_place(final: Path, spec: RunSpec) -> str:
+    """The checks of :func:`check_output_dir` once the name itself is known to be valid."""
+    if final.is_symlink():
+        raise UserError(f"output.dir: {final} is a symbolic link; climodes writes only to a real folder; "
+                        "choose another output.dir")
+    if not final.exists():
+        ancestor = _nearest_existing(final)
+        if not ancestor.is_dir():
+            raise UserError(f"output.dir: {final} would lie inside {ancestor}, which is a file; choose another folder")
+        if not os.access(ancestor, os.W_OK | os.X_OK):
+            raise UserError(f"output.dir: cannot write in {ancestor}; choose a folder you can write to")
+        return f"{final} (a new folder)"
+    if not final.is_dir():
+        raise UserError(f"output.dir: {final} is a file, not a folder; choose another output.dir")
+    _refuse_protected(final)
+    _refuse_run_files(final, spec)
+    return _check_replaceable(final, spec.output.overwrite)
+
+
+def _check_replaceable(final: Path, overwrite: bool) -> str:
+    """Refuse an existing folder that is not a results folder climodes made, or ``overwrite`` is off."""
+    mark = read_mark(final)
+    if mark is None:
+        raise UserError(f"output.dir: {final} exists and is not a climodes results folder (it has no {MARK}); "
+                        "climodes replaces only folders it made: choose another output.dir")
+    if extra := unlisted(final, mark):
+        more = f" and {len(extra) - 1} more" if len(extra) > 1 else ""
+        raise UserError(f"output.dir: {final} holds {extra[0]}{more}, which climodes did not write there; "
+                        "move it out or choose another output.dir")
+    if not overwrite:
+        raise UserError(f"output.dir: {final} exists already; set output.overwrite: true (or --overwrite) to "
+                        "replace it, or choose another folder")
+    return f"{final} (replaces the results written there on {mark.get('finished', '?')})"
+
+
+# --- claiming, staging and putting in place
+
+
+@functools.cache
+def _libc_renameat2() -> Callable | None:
+    """The C library's ``renameat2`` (Linux, glibc 2.28 or later), or None."""
+    if not sys.platform.startswith("linux"):
+        return None
+    try:
+        function = ctypes.CDLL(None, use_errno=True).renameat2
+    except (OSError, AttributeError):
+        return None
+    function.argtypes = [ctypes.c_int, ctypes.c_char_p, ctypes.c_int, ctypes.c_char_p, ctypes.c_uint]
+    return function
+
+
+def _renameat2(source: Path, target: Path, flag: int) -> bool:
+    """Linux ``renameat2`` with ``flag``; False where the C library or the file system does not offer it."""
+    function = _libc_renameat2()
+    if function is None:
+        return False
+    if function(_AT_FDCWD, os.fsencode(source), _AT_FDCWD, os.fsencode(target), flag) == 0:
+        return True
+    code = ctypes.get_errno()
+    if code in (errno.ENOSYS, errno.EINVAL, errno.ENOTSUP, errno.EOPNOTSUPP):
+        return False
+    raise OSError(code, os.strerror(code), str(target))
+
+
+def _move_noreplace(source: Path, target: Path) -> None:
+    """Rename ``source`` to ``target``, raising FileExistsError if anything is there: in one atomic step
+    where the system allows; elsewhere by an exclusive create of ``target`` first."""
+    if _renameat2(source, target, _RENAME_NOREPLACE):
+        return
+    if os.name != "posix":
+        os.rename(source, target)  # Windows: a rename never replaces
+    elif source.is_dir():
+        os.mkdir(target)  # exclusive; the POSIX rename then replaces only this empty folder, or fails if filled
+        try:
+            os.rename(source, target)
+        except OSError:
+            with contextlib.suppress(OSError):
+                os.rmdir(target)
+            raise
+    else:
+        try:
+            os.link(source, target)  # exclusive for files
+        except FileExistsError:
+            raise
+        except OSError:  # a file system without hard links: the check as close to the rename as it gets
+            if os.path.lexists(target):
+                raise FileExistsError(errno.EEXIST, os.strerror(errno.EEXIST), str(target)) from None
+            os.rename(source, target)
+            return
+        os.unlink(source)
+
+
+def _identity(folder: Path) -> tuple | None:
+    """What says a results folder is still the same one: its device, inode and the run of its mark."""
+    try:
+        info = os.lstat(folder)
+    except FileNotFoundError:
+        return None
+    mark = read_mark(folder) if stat.S_ISDIR(info.st_mode) else None
+    return info.st_dev, info.st_ino, mark and mark.get("run_id")
+
+
+def _remove_results(folder: Path) -> list[str]:
+    """Remove the files a results folder's manifest lists, then the folder; return the names that stay."""
+    mark = read_mark(folder)
+    if mark is None:
+        return sorted(os.listdir(folder))
+    for name in mark["files"]:
+        with contextlib.suppress(FileNotFoundError):
+            if stat.S_ISREG(os.lstat(folder / name).st_mode):
+                os.unlink(folder / name)
+    os.unlink(folder / MARK)
+    left = sorted(os.listdir(folder))
+    if not left:
+        os.rmdir(folder)
+    return left
+
+
+def _remove_stale(final: Path) -> list[str]:
+    """Remove the staging folders and temporary files beside ``final`` left by killed runs of this host.
+
+    Only names of the pattern climodes gives them, made on this host by a pid no longer alive; a
+    staging folder must carry a mark as well, and of a finished one only the listed files go.
+    Returns a note for each thing removed.
+    """
+    pattern = re.compile(rf"\.{re.escape(_short(final.name))}\.climodes-(stage|temporary)-"
+                         rf"{_host_tag()}-(\d+)-[0-9a-f]{{8}}(\..*)?")
+    with os.scandir(final.parent) as entries:
+        found = [(final.parent / e.name, m) for e in entries if (m := pattern.fullmatch(e.name))]
+    notes = []
+    for path, match in found:
+        if _pid_alive(int(match.group(2))):
+            continue
+        try:
+            mode = os.lstat(path).st_mode
+            if match.group(1) == "temporary" and stat.S_ISREG(mode):
+                os.unlink(path)
+            elif match.group(1) == "stage" and stat.S_ISDIR(mode) and _read_json(path / MARK):
+                if read_mark(path) is None:  # still being written when its run was killed
+                    shutil.rmtree(path)
+                elif left := _remove_results(path):  # old results moved aside by a replace cut short
+                    notes.append(f"kept {path}, left by a run (pid {match.group(2)}) that was killed: it holds "
+                                 f"{', '.join(left)}, which climodes did not write")
+                    continue
+            else:
+                continue
+        except OSError:  # best effort: a leftover that cannot go now is tried again next time
+            continue
+        notes.append(f"removed {path}, left by a run (pid {match.group(2)}) that was killed")
+    return notes
+
+
+def _claim(final: Path, me: dict) -> Path:
+    """Claim ``final`` for this run by an exclusive create of its claim file (a stale one is broken)."""
+    claim = _claim_path(final)
+    for _ in range(3):
+        try:
+            fd = os.open(claim, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666)
+        except FileExistsError:
+            holder = _read_json(claim)
+            if not _stale(holder):
+                who = (f"pid {holder.get('pid')} on {holder.get('host')}, started {holder.get('started')}"
+                       if holder else "its claim file cannot be read yet")
+                raise UserError(f"output.dir: {final} is being written by another climodes run ({who}); wait for "
+                                f"it or choose another output.dir (if no such run is going, remove {claim})") from None
+            _break_claim(claim, holder)
+            continue
+        try:
+            with os.fdopen(fd, "w", encoding="utf-8") as f:
+                json.dump(me, f)
+        except BaseException:
+            os.unlink(claim)
+            raise
+        return claim
+    raise UserError(f"output.dir: {final} is claimed by other runs as soon as it is freed; try again")
+
+
+def _break_claim(claim: Path, holder: dict) -> None:
+    """Remove the stale claim ``holder`` read from ``claim`` and nothing else: it is renamed aside first
+    (one atomic step), and put back if it turns out to be a newer run's claim."""
+    aside = claim.with_name(f"{claim.name}-stale-{secrets.token_hex(4)}")
+    try:
+        os.rename(claim, aside)
+    except FileNotFoundError:
+        return  # another run broke it first
+    if _read_json(aside) != holder:
+        with contextlib.suppress(OSError):
+            os.link(aside, claim)  # a live claim taken by mistake: back in place, unless a newer one is there
+    os.unlink(aside)
+
+
+def _make_parents(final: Path) -> list[Path]:
+    """Make the folders above ``final`` that are missing; return the ones this run made."""
+    made = []
+    for folder in reversed(final.parents):
+        if os.path.isdir(folder):
+            continue
+        try:
+            os.mkdir(folder)
+        except FileExistsError:  # made meanwhile by someone else
+            continue
+        made.append(folder)
+    return made
+
+
+def _write_mark(folder: Path, me: dict, files: list[str] | None) -> None:
+    """Write the manifest of ``folder``: the ``files`` it holds, or None while it is being written."""
+    body = {**me, "files": files, **({"finished": _now()} if files is not None else {})}
+    write_file_atomically(folder / MARK, lambda path: path.write_text(json.dumps(body, indent=1), encoding="utf-8"),
+                          replace=True)
+
+
+def _changed(final: Path) -> UserError:
+    return UserError(f"output.dir: {final} appeared or changed while the run computed (not by this run); it was "
+                     "left untouched and no results were written; move it away or choose another output.dir")
+
+
+def _put_in_place(stage: Path, final: Path, before: tuple | None) -> list[str]:
+    """Move the finished ``stage`` to ``final``, replacing nothing but the results folder seen at the start.
+
+    ``before`` is :func:`_identity` of ``final`` once the run had claimed it (None: there was none).
+    Returns notes on anything that had to stay.
+    """
+    now = _identity(final)
+    if now is None:
+        try:
+            _move_noreplace(stage, final)
+        except FileExistsError:
+            raise _changed(final) from None
+        return []
+    mark = read_mark(final)
+    if now != before or mark is None or unlisted(final, mark):
+        raise _changed(final)
+    if _renameat2(stage, final, _RENAME_EXCHANGE):
+        old = stage
+        if _identity(old) != before:  # swapped for something else at the last instant: swap back
+            _renameat2(stage, final, _RENAME_EXCHANGE)
+            raise _changed(final)
+    else:  # no atomic exchange here: move the old results aside, check them, then move the new ones in
+        old = final.parent / _hidden_name(final, "stage")
+        os.rename(final, old)
+        if _identity(old) != before:
+            _move_noreplace(old, final)
+            raise _changed(final)
+        try:
+            _move_noreplace(stage, final)
+        except OSError:  # something took the name meanwhile: the old results go back if they can
+            with contextlib.suppress(OSError):
+                _move_noreplace(old, final)
+            raise _changed(final) from None
+    left = _remove_results(old)
+    return [f"the replaced results folder held {', '.join(left)}, which climodes did not write; left in {old}"] \
+        if left else []
+
+
+@contextlib.contextmanager
+def results_folder(spec: RunSpec, say: Callable[[str], None] = lambda line: None) -> Iterator[Path]:
+    """Claim ``spec.output.dir``, yield a staging folder to write the results into, then put them in place.
+
+    The claim is an exclusive create of a claim file beside the folder, so of two runs started
+    together one wins and the other is refused; leftovers of killed runs of this host are removed
+    once the claim is held.  When the block ends well, the staging folder gets its mark
+    (:data:`MARK`, listing every file in it) and is renamed to ``output.dir``, replacing only the
+    results folder checked at the start.  On any failure or interruption the staging folder, the
+    claim and the folders made above are removed.  Notes go to ``say``.
+    """
+    check_output_dir(spec)
+    final = Path(spec.output.dir)
+    me = _run_identity(spec.source)
+    made: list[Path] = []
+    claim = stage = None
+    done = False
+    try:
+        with _writing(final):
+            made = _make_parents(final)
+            claim = _claim(final, me)
+            for line in _remove_stale(final):
+                say(f"note: {line}")
+            check_output_dir(spec)  # again, now that no other run can change it
+            before = _identity(final)
+            stage = final.parent / _hidden_name(final, "stage")
+            os.mkdir(stage)  # with the user's umask
+            _write_mark(stage, me, None)
+        yield stage
+        with _writing(final), _signals_held(act=False):
+            _write_mark(stage, me, sorted(name for name in os.listdir(stage) if name != MARK))
+            if _read_json(claim) != me:
+                raise UserError(f"output.dir: another run took over the claim on {final}; no results were written")
+            notes = _put_in_place(stage, final, before)
+            done = True
+        for line in notes:
+            say(f"note: {line}")
+    finally:
+        with _signals_held(act=True), contextlib.suppress(OSError):
+            if stage is not None and not done:
+                shutil.rmtree(stage, ignore_errors=True)
+            if claim is not None and _read_json(claim) == me:
+                os.unlink(claim)
+            for folder in [] if done else reversed(made):
+                with contextlib.suppress(OSError):
+                    os.rmdir(folder)
+
+
+@contextlib.contextmanager
+def _writing(final: Path) -> Iterator[None]:
+    """Report a failure of the file system while the results are claimed or put in place as one line."""
+    try:
+        yield
+    except OSError as err:
+        reason = err.strerror or str(err)
+        raise UserError(f"output.dir: cannot write the results to {final} ({reason}); nothing was written; "
+                        "check the folder, free some space or choose another output.dir") from None
+
+
+@contextlib.contextmanager
+def _signals_held(act: bool) -> Iterator[None]:
+    """Hold SIGINT and SIGTERM while results are put in place or tidied away, so that neither is cut in
+    half.  A signal that arrived meanwhile is raised again at the end when ``act``, else dropped (the
+    results were complete before it could stop them)."""
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    caught: list[int] = []
+    previous = {s: signal.getsignal(s) for s in (signal.SIGINT, signal.SIGTERM)}
+    for s in previous:
+        signal.signal(s, lambda signum, frame: caught.append(signum))
+    try:
+        yield
+    finally:
+        for s, handler in previous.items():
+            signal.signal(s, signal.SIG_DFL if handler is None else handler)
+        if caught and act:
+            signal.raise_signal(caught[0])
+
+
+def write_file_atomically(path: Path, write: Callable[[Path], None], replace: bool = False) -> None:
+    """Write one file complete or not at all: ``write`` fills a temporary file beside ``path`` (same
+    suffix, hidden), which is then renamed into place.
+
+    For outputs written outside a results folder.  An existing file is replaced only with
+    ``replace``; a folder never.  Temporary files beside ``path`` left by killed runs of this host
+    are removed first.
+
+    Raises
+    ------
+    UserError
+        If ``path`` is a folder, or exists (or appears meanwhile) and ``replace`` is false.
+    """
+    path = Path(path)
+    if path.is_dir():
+        raise UserError(f"{path} is a folder; give a file name")
+    if not replace and os.path.lexists(path):
+        raise UserError(f"{path} exists already; choose another name or ask to replace it")
+    _remove_stale(path)
+    temporary = path.parent / _hidden_name(path, "temporary", path.suffix)
+    try:
+        write(temporary)
+        if replace:
+            os.replace(temporary, path)  # onto a folder this raises: a folder is never replaced
+        else:
+            _move_noreplace(temporary, path)
+    except FileExistsError:
+        raise UserError(f"{path} appeared while it was being written; it was left untouched; choose another "
+                        "name") from None
+    except IsADirectoryError:
+        raise UserError(f"{path} became a folder while it was being written; it was left untouched") from None
+    finally:
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(temporary)

@@ -2,32 +2,44 @@
 
 Each stage is a function of the previous one's result (see ``GUIDE``'s flow);
 this module only calls them in order and collects what the user should hear.
+:func:`check` goes through the same stages as :func:`run` up to the first
+pass over the data, so what ``run`` would refuse before computing, ``check``
+refuses too.
 """
 
 from __future__ import annotations
 
+import contextlib
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable
+from typing import Callable, Iterator
 
 import xarray as xr
+from dask.array import PerformanceWarning
 
 from climodes.cluster import dask_settings, pass_context, resident_bytes, worker_count
 from climodes.config import RunSpec, memory_bytes
 from climodes.diagnostics import effective_sample_size, north_errors, separated
 from climodes.errors import UserError
 from climodes.fields import OpenedField, open_field, rechunked, select
+from climodes.grid import GRID_LAT
 from climodes.output import (
     check_geotiff_grid,
     check_output_dir,
     results_dataset,
-    staged_dir,
+    results_folder,
     write_geotiff,
     write_netcdf,
 )
 from climodes.prepare import TimeSteps, time_steps
-from climodes.solvers import plan_solver, solve
+from climodes.solvers import SolverPlan, plan_solver, solve
 from climodes.weights import field_weights
+
+# warnings meant for programmers, not for someone running climodes: deprecations and dask's chunking
+# advice; numpy's floating-point warnings (plain RuntimeWarning: 0/0 at points missing at every step,
+# which the missing-data rule handles) are dropped too, but not their subclasses (xarray's decoding)
+_NOT_FOR_USERS = (DeprecationWarning, PendingDeprecationWarning, FutureWarning, PerformanceWarning)
 
 
 @dataclass
@@ -43,6 +55,41 @@ class RunSummary:
         return "\n".join([self.headline, *self.table])
 
 
+@dataclass
+class Planned:
+    """What a run reads and how it solves it, found from the files' coordinates alone."""
+
+    opened: OpenedField
+    field: xr.DataArray
+    along_time: TimeSteps
+    weights: xr.DataArray
+    plan: SolverPlan
+    workers: int
+    notes: list[str]
+
+
+def _for_users(message: warnings.WarningMessage) -> bool:
+    return not issubclass(message.category, _NOT_FOR_USERS) and message.category is not RuntimeWarning
+
+
+@contextlib.contextmanager
+def library_warnings(notes: list[str]) -> Iterator[None]:
+    """Catch what xarray, numpy, dask and the other libraries warn about while the block runs.
+
+    A warning that tells the user something about their data (a file's encoding, a decoding xarray
+    could not do) is appended to ``notes`` as one line, once; the rest (deprecations, numpy's
+    floating-point warnings, dask's chunking advice) are dropped.  None reaches stderr as a raw
+    Python warning.
+    """
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        yield
+    for message in caught:
+        text = " ".join(str(message.message).split())[:300]
+        if _for_users(message) and text and text not in notes:
+            notes.append(text)
+
+
 def _prepared(spec: RunSpec, opened: OpenedField) -> tuple[xr.DataArray, TimeSteps, list[str]]:
     """Select the opened field and take its seasonal or annual means, lazily: only coordinates are read.
 
@@ -53,8 +100,66 @@ def _prepared(spec: RunSpec, opened: OpenedField) -> tuple[xr.DataArray, TimeSte
     return field, steps, notes
 
 
+def _plan(spec: RunSpec) -> Planned:
+    """Open, select and prepare the field lazily and plan the solver: every check before the first pass."""
+    opened = open_field(spec.input, spec.select)
+    field, along_time, notes = _prepared(spec, opened)
+    workers = worker_count(spec.compute)
+    plan = plan_solver(field.shape, spec.modes.count, spec.modes.method, memory_bytes(spec.compute.memory), workers,
+                       in_use=resident_bytes())
+    steps = field.sizes["time"]
+    if steps < spec.modes.count + 1:
+        raise UserError(f"modes.count: {spec.modes.count} modes need at least {spec.modes.count + 1} time steps, "
+                        f"but the prepared field has {steps}; lower modes.count or lengthen select.period")
+    if "geotiff" in spec.output.formats:
+        check_geotiff_grid(field)
+    weights = field_weights(field, spec.prepare.weighting)
+    return Planned(opened, field, along_time, weights, plan, workers, notes)
+
+
+def check(spec: RunSpec) -> list[str]:
+    """Check ``spec`` against its files and its output folder as :func:`run` would, without reading the
+    field's values or writing anything; return a few lines on what the run would read, solve and write.
+
+    Raises
+    ------
+    UserError
+        Whatever :func:`run` would raise before its first pass over the data.
+    """
+    warned: list[str] = []
+    with library_warnings(warned):
+        where = check_output_dir(spec)
+        planned = _plan(spec)
+    field, files = planned.field, planned.opened.files
+    times = field["time"].values
+    grid = f"{field.sizes['lat']} x {field.sizes['lon']}" + (" (curvilinear)" if GRID_LAT in field.coords else "")
+    return [
+        f"reads   {spec.input.variable} from {len(files)} file(s), first {files[0].path}",
+        f"steps   {times.size}, {str(times[0])[:10]} to {str(times[-1])[:10]}",
+        f"grid    {grid} points",
+        f"solver  {planned.plan.method} ({planned.plan.reason})",
+        f"writes  {where}",
+        *(f"note: {line}" for line in planned.notes + warned),
+    ]
+
+
+def _solve(spec: RunSpec, planned: Planned, progress: bool):
+    """The decomposition of the planned field (the first pass over the data happens here); a streaming
+    solver gets the field opened again in its blocks of latitude rows."""
+    field, along_time = planned.field, planned.along_time
+    if planned.plan.lat_rows:
+        opened = rechunked(planned.opened, {"time": -1, "lat": planned.plan.lat_rows, "lon": -1})
+        field, along_time, _ = _prepared(spec, opened)
+    with dask_settings(spec.compute):
+        return solve(field, planned.weights, spec.modes.count, spec.prepare.max_missing, planned.plan,
+                     spec.modes.seed, pass_context(progress, planned.workers), along_time)
+
+
 def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress: bool = False) -> RunSummary:
     """Run ``spec`` end to end and write its results folder.
+
+    The folder is claimed before any data are read (:func:`climodes.output.results_folder`) and
+    appears complete or not at all.
 
     Parameters
     ----------
@@ -65,63 +170,60 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
     progress
         Draw a progress bar on stderr for each pass over the data.
     """
-    check_output_dir(spec.output)
-    opened = open_field(spec.input, spec.select)
-    field, along_time, notes = _prepared(spec, opened)
-    workers = worker_count(spec.compute)
-    plan = plan_solver(field.shape, spec.modes.count, spec.modes.method, memory_bytes(spec.compute.memory), workers,
-                       in_use=resident_bytes())
-    if plan.lat_rows:
-        opened = rechunked(opened, {"time": -1, "lat": plan.lat_rows, "lon": -1})
-        field, along_time, notes = _prepared(spec, opened)
-    steps = field.sizes["time"]
-    if steps < spec.modes.count + 1:
-        raise UserError(f"modes.count: {spec.modes.count} modes need at least {spec.modes.count + 1} time steps, "
-                        f"but the prepared field has {steps}; lower modes.count or lengthen select.period")
-    if "geotiff" in spec.output.formats:
-        check_geotiff_grid(field)
-    weights = field_weights(field, spec.prepare.weighting)
-    with dask_settings(spec.compute):
-        modes, result, counts = solve(field, weights, spec.modes.count, spec.prepare.max_missing, plan,
-                                      spec.modes.seed, pass_context(progress, workers), along_time)
-    notes += counts.notes + result.notes
-    n_eff, n_eff_how = effective_sample_size(result.pcs, spec.modes.effective_sample_size)
-    errors = north_errors(result.eigenvalues, n_eff)
-    apart = separated(result.eigenvalues, errors, result.next_eigenvalue)
-    for line in notes:
-        say(f"note: {line}")
-
-    units = "1" if spec.prepare.standardize else opened.data.attrs.get("units")
-    extra = dict(errors=errors, separated=apart, n_eff=n_eff, n_eff_how=n_eff_how,
-                 method=f"{result.method} (chosen because: {plan.reason})",
-                 notes=notes, units=units, total_variance=result.total_variance,
-                 points=(f"{counts.used} of {counts.grid} grid points used; {counts.always_missing} missing at every "
-                         f"step; {counts.too_often_missing} missing too often; {counts.filled_values} missing "
-                         "values set to zero anomaly"))
-    results = results_dataset(modes, opened, spec, extra)
     out = Path(spec.output.dir)
-    headline = (f"climodes: {spec.modes.count} modes of {spec.input.variable} from {len(opened.files)} file(s), "
-                f"{steps} time steps x {counts.used} points ({result.method.split(':')[0]} solver) -> {out}")
-    table = ["mode  variance explained  separated (North)"]
-    for k in range(spec.modes.count):
-        frac = 100 * float(results["variance_explained"][k])
-        err = 100 * float(results["variance_explained_error"][k])
-        table.append(f"{k + 1:>4}  {frac:8.1f}% +/- {err:4.1f}%   {'yes' if apart[k] else 'no, mixed'}")
-    table.append(f"effective sample size {n_eff:.0f} of {steps} steps")
-    log = [headline, *table, f"solver: {plan.method} ({plan.reason})", *(f"note: {n}" for n in notes), "",
-           "resolved config:", spec.to_yaml()]
-    try:
-        with staged_dir(out) as stage:
-            write_netcdf(results, stage / "modes.nc", opened.time_encoding)
-            if "geotiff" in spec.output.formats:
-                write_geotiff(results, stage / "modes.tif")
-            if spec.output.figures:
-                from climodes.figures import draw_all  # the numeric path never imports matplotlib
+    with results_folder(spec, say) as stage:
+        warned: list[str] = []
+        with library_warnings(warned):
+            planned = _plan(spec)
+            modes, result, counts = _solve(spec, planned, progress)
+        notes = planned.notes + counts.notes + result.notes + warned
+        for line in notes:
+            say(f"note: {line}")
+        kept = modes.sizes["mode"]
+        n_eff, n_eff_how = effective_sample_size(result.pcs, spec.modes.effective_sample_size)
+        errors = north_errors(result.eigenvalues, n_eff)
+        apart = separated(result.eigenvalues, errors, result.next_eigenvalue)
+        units = "1" if spec.prepare.standardize else planned.opened.data.attrs.get("units")
+        extra = dict(errors=errors, separated=apart, n_eff=n_eff, n_eff_how=n_eff_how,
+                     method=f"{result.method} (chosen because: {planned.plan.reason})",
+                     notes=notes, units=units, total_variance=result.total_variance,
+                     points=(f"{counts.used} of {counts.grid} grid points used; {counts.always_missing} missing at "
+                             f"every step; {counts.too_often_missing} missing too often; {counts.filled_values} "
+                             "missing values set to zero anomaly"))
+        results = results_dataset(modes, planned.opened, spec, extra)
+        steps = planned.field.sizes["time"]
+        asked = f" ({spec.modes.count} asked, {kept} not null)" if kept < spec.modes.count else ""
+        headline = (f"climodes: {kept} modes{asked} of {spec.input.variable} from {len(planned.opened.files)} "
+                    f"file(s), {steps} time steps x {counts.used} points ({result.method.split(':')[0]} solver) "
+                    f"-> {out}")
+        table = ["mode  variance explained  separated (North)"]
+        for k in range(kept):
+            frac = 100 * float(results["variance_explained"][k])
+            err = 100 * float(results["variance_explained_error"][k])
+            table.append(f"{k + 1:>4}  {frac:8.1f}% +/- {err:4.1f}%   {'yes' if apart[k] else 'no, mixed'}")
+        table.append(f"effective sample size {n_eff:.0f} of {steps} steps")
+        log = [headline, *table, f"solver: {planned.plan.method} ({planned.plan.reason})",
+               *(f"note: {n}" for n in notes), "", "resolved config:", spec.to_yaml()]
+        late: list[str] = []
+        with library_warnings(late):
+            _write(stage, results, spec, planned.opened, log)
+        for line in late:
+            say(f"note: {line}")
+    return RunSummary(out, headline, table, notes + late)
 
-                draw_all(results, stage)
-            (stage / "run.log").write_text("\n".join(log), encoding="utf-8")
-    except OSError as err:  # disk full, permissions, a vanished folder: nothing was left behind
+
+def _write(stage: Path, results: xr.Dataset, spec: RunSpec, opened: OpenedField, log: list[str]) -> None:
+    """Write every results file into the staging folder."""
+    try:
+        write_netcdf(results, stage / "modes.nc", opened.time_encoding)
+        if "geotiff" in spec.output.formats:
+            write_geotiff(results, stage / "modes.tif")
+        if spec.output.figures:
+            from climodes.figures import draw_all  # the numeric path never imports matplotlib
+
+            draw_all(results, stage)
+        (stage / "run.log").write_text("\n".join(log), encoding="utf-8")
+    except OSError as err:  # disk full, permissions, a vanished folder: nothing is left behind
         reason = err.strerror or str(err)
-        raise UserError(f"output.dir: cannot write the results to {out} ({reason}); nothing was written; "
-                        "free some space or choose another output.dir") from None
-    return RunSummary(out, headline, table, notes)
+        raise UserError(f"output.dir: cannot write the results to {spec.output.dir} ({reason}); nothing was "
+                        "written; free some space or choose another output.dir") from None

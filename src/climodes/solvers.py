@@ -68,6 +68,7 @@ from climodes.weights import usable_points
 OVERSAMPLING = 10
 POWER_ITERATIONS = 3  # at most; the randomized solver stops earlier once converged
 RITZ_TOLERANCE = 1e-4  # residual of a kept mode, relative to its eigenvalue (see _converged)
+NULL_TOLERANCE = 1e-8  # an eigenvalue below this fraction of the leading one is null (see _drop_null_modes)
 EXACT_MAX_VALUES = 5_000_000  # time steps x points up to which the exact solver is chosen
 GRAM_MAX_STEPS = 2_000  # the Gram product costs steps^2 x points: beyond this, randomized passes are cheaper
 BLOCK_MAX_BYTES = 128e6  # float32 bytes of one block as read
@@ -361,6 +362,27 @@ def sign_rule(patterns: np.ndarray, lat: np.ndarray, lon: np.ndarray) -> np.ndar
     return signs
 
 
+def _drop_null_modes(result: Decomposition, count: int) -> None:
+    """Keep only the modes whose eigenvalue exceeds ``NULL_TOLERANCE`` times the leading one; say so if any go.
+
+    A field of rank ``r`` (fewer independent maps or time steps than modes asked for, or the steps
+    the anomalies and trend take away) has ``r`` non-zero eigenvalues; beyond them every solver
+    returns rounding noise, whose "PCs" are neither unit variance nor meaningful.  The tolerance is
+    far above that noise in any of the three solvers (float64 products: about 1e-16 of the leading
+    eigenvalue; the float32 storage of a field with its mean: up to about 1e-10) and far below any
+    mode a measured field resolves (1e-8 of the variance is 1e-4 of the leading mode's amplitude).
+    """
+    kept = int(np.sum(result.eigenvalues > NULL_TOLERANCE * result.eigenvalues[0]))
+    if kept == result.eigenvalues.size:
+        return
+    result.notes.append(f"modes.count asks for {count} modes, but the prepared field has only {kept} that are not "
+                        f"null (eigenvalue {kept + 1} is below {NULL_TOLERANCE:g} of the first): {kept} modes kept")
+    result.eigenvalues = result.eigenvalues[:kept]
+    result.pcs = result.pcs[:, :kept]
+    result.patterns = result.patterns[:, :kept]
+    result.next_eigenvalue = 0.0
+
+
 def _refuse_infinities(found: bool) -> None:
     """Stop if the first pass met infinite values (its sums are then not finite): NaN is missing data,
     an infinity is not."""
@@ -430,7 +452,8 @@ def solve(field: xr.DataArray, weights: xr.DataArray, count: int, max_missing: f
     -------
     modes, decomposition, counts
         ``modes`` holds ``eof(mode, lat, lon)`` (NaN at unused points),
-        ``pc(mode, time)``, ``eigenvalue(mode)`` and ``variance_explained(mode)``.
+        ``pc(mode, time)``, ``eigenvalue(mode)`` and ``variance_explained(mode)``; fewer than ``count``
+        modes when the field has fewer that are not null (see :func:`_drop_null_modes`, and the note).
     """
     progress = progress or (lambda label: contextlib.nullcontext())
     w = np.asarray(weights.values, dtype=np.float64).reshape(-1)
@@ -446,12 +469,14 @@ def solve(field: xr.DataArray, weights: xr.DataArray, count: int, max_missing: f
     if result.total_variance == 0 or result.eigenvalues[0] <= 1e-12 * max(result.total_variance, 1e-300):
         raise UserError("input.variable: the prepared field is constant in time at every point, "
                         "so it has no modes; check the variable and prepare settings")
+    _drop_null_modes(result, count)
+    kept = result.eigenvalues.size
     lat2d, lon2d = (c.reshape(-1) for c in grid_coordinates(field))
     signs = sign_rule(result.patterns, lat2d, lon2d)
     result.pcs *= signs
     result.patterns *= signs
 
-    maps = result.patterns.T.reshape(count, field.sizes["lat"], field.sizes["lon"])
+    maps = result.patterns.T.reshape(kept, field.sizes["lat"], field.sizes["lon"])
     modes = xr.Dataset(
         {
             "eof": (("mode", "lat", "lon"), maps),
@@ -459,7 +484,7 @@ def solve(field: xr.DataArray, weights: xr.DataArray, count: int, max_missing: f
             "eigenvalue": ("mode", result.eigenvalues),
             "variance_explained": ("mode", result.eigenvalues / result.total_variance),
         },
-        coords={"mode": np.arange(1, count + 1),
+        coords={"mode": np.arange(1, kept + 1),
                 **{name: coord.variable for name, coord in field.coords.items() if name != "cell_area"}},
     )
     return modes, result, counts
