@@ -121,3 +121,89 @@ def test_prepare_applies_the_steps_in_order():
     scaled = prepare(_monthly(np.arange(48.0) % 7), PrepareSection(anomalies="mean", standardize=True), None, [])
     np.testing.assert_allclose(scaled.std("time", ddof=1).values, 1.0)
     assert scaled.attrs["units"] == "1"
+
+
+# --- seasonal means at points with missing months, calendar keys of daily and sub-monthly data
+
+
+def _daily(time, seed: int = 0) -> xr.DataArray:
+    """A seasonal cycle by day of the year plus noise at 2 x 3 points."""
+    rng = np.random.default_rng(seed)
+    phase = 2 * np.pi * xr.DataArray(time, dims="time").dt.dayofyear.values / 365.0
+    values = 10 * np.cos(phase)[:, None, None] + rng.standard_normal((len(time), 2, 3))
+    return xr.DataArray(values, dims=("time", "lat", "lon"), coords={"time": time, "lat": [0.0, 5], "lon": [0.0, 5, 10]})
+
+
+def _pandas_daily_anomalies(field: xr.DataArray, baseline: slice) -> np.ndarray:
+    """Reference (pandas groupby): anomalies against the mean of each calendar month and day over the
+    baseline, 29 February counted with 28 February (the rule climodes states)."""
+    index = field.indexes["time"]
+    key = pd.Series(100 * index.month + index.day).replace(229, 228).to_numpy()
+    table = pd.DataFrame(field.values.reshape(len(index), -1), index=index)
+    in_base = (index >= pd.Timestamp(baseline.start)) & (index <= pd.Timestamp(baseline.stop))
+    climatology = table[in_base].groupby(key[in_base]).mean()
+    return (table.to_numpy() - climatology.loc[key].to_numpy()).reshape(field.shape)
+
+
+@pytest.mark.parametrize("baseline", [slice("2000-01-01", "2003-12-31"), slice("2001-01-01", "2003-12-31")],
+                         ids=["baseline with a leap year", "baseline without a leap year"])
+def test_daily_climatology_by_calendar_month_and_day(baseline):
+    """Against pandas: every day of a leap year is compared with its own calendar day (1 March with
+    1 March, 31 December with every 31 December), and 29 February with 28 February."""
+    field = _daily(pd.date_range("2000-01-01", "2005-12-31", freq="D"))
+    out = anomalies(field, "climatology", [baseline.start, baseline.stop]).values
+    np.testing.assert_allclose(out, _pandas_daily_anomalies(field, baseline), atol=1e-12)
+
+
+@pytest.mark.parametrize("calendar, days", [("noleap", 365), ("360_day", 360), ("all_leap", 366)])
+def test_daily_climatology_on_model_calendars(calendar, days):
+    """Against xarray's own groupby by (month, day): on these calendars every calendar day is a key of its
+    own, 29 and 30 February of 360_day and 29 February of all_leap included."""
+    time = xr.date_range("2001-01-01", periods=4 * days, freq="D", calendar=calendar, use_cftime=True)
+    field = _daily(time)
+    key = field["time"].dt.month * 100 + field["time"].dt.day
+    base = field["time"].dt.year <= 2003
+    climatology = field.where(base, drop=True).groupby(key.where(base, drop=True).rename("key")).mean()
+    reference = field.groupby(key.rename("key")) - climatology
+    assert climatology.sizes["key"] == days
+    np.testing.assert_allclose(anomalies(field, "climatology", ["2001", "2003"]).values,
+                               reference.transpose("time", "lat", "lon").values, atol=1e-12)
+
+
+def test_pentads_get_a_climatology_of_bins_of_the_year():
+    """40 years of pentads: a seasonal cycle plus unit-variance noise.  Anomalies against 73 bins of the
+    year keep the noise variance: each bin holds one step a year, so the mean removes 1/40 of it (common
+    practice: a sample mean of n values takes 1/n of the variance with it), and the cycle left inside a
+    5-day bin adds about 3 % (by hand: slope^2 * 5^2/12).  Keyed by calendar day instead (8 steps a key
+    over 40 years) the anomalies lose 12 % of it."""
+    time = pd.date_range("1980-01-03", periods=40 * 73, freq="5D")
+    rng = np.random.default_rng(7)
+    phase = 2 * np.pi * (time.day_of_year.values - 1) / 365.25
+    noise = rng.standard_normal((time.size, 3, 4))
+    values = (10 * np.cos(phase) + 4 * np.sin(2 * phase))[:, None, None] + noise
+    field = xr.DataArray(values, dims=("time", "lat", "lon"),
+                         coords={"time": time, "lat": [0.0, 5, 10], "lon": [0.0, 5, 10, 15]})
+    out = anomalies(field, "climatology", None).values
+    assert abs(out.var() / noise.var() - 1) < 0.05
+    # reference (pandas groupby) of the same binning: floor(73 * the fraction of the year elapsed)
+    elapsed = (time.day_of_year.values - 1 + time.hour.values / 24) / np.where(time.is_leap_year, 366, 365)
+    key = np.floor(73 * elapsed + 1e-9).astype(int)
+    table = pd.DataFrame(values.reshape(time.size, -1))
+    reference = table - table.groupby(key).transform("mean")
+    assert np.bincount(key).min() >= 36
+    np.testing.assert_allclose(out.reshape(time.size, -1), reference.to_numpy(), atol=1e-12)
+
+
+@pytest.mark.parametrize("freq, rule", [("MS", "month"), ("D", "month_day"), ("6h", "month_day"),
+                                        ("5D", "bins73"), ("7D", "bins52"), ("YS", "yearly")])
+def test_key_rule_follows_the_spacing(freq, rule):
+    from climodes.prepare import key_rule
+
+    time = xr.DataArray(pd.date_range("1990-01-01", periods=30, freq=freq), dims="time")
+    assert key_rule(time) == rule
+
+
+def test_a_baseline_missing_a_calendar_day_names_it():
+    field = _daily(pd.date_range("2001-01-01", "2002-12-31", freq="D")).isel(time=slice(0, 700))
+    with pytest.raises(UserError, match=r"prepare.baseline: \['2001', '2001-11'\] has no data for day 12-01"):
+        anomalies(field, "climatology", ["2001", "2001-11"])

@@ -78,10 +78,11 @@ def aggregate(da: xr.DataArray, how: str, months: list[int] | None, notes: list[
     return means
 
 
-def _steps_per_year(time: xr.DataArray) -> float:
+def _spacing_days(time: xr.DataArray) -> float:
+    """The usual time step in days: the median spacing (a year when there is one step)."""
     if time.size < 2:
-        return 1.0
-    return 365.25 / max(np.median(np.diff(days_since_start(time))), 1e-9)
+        return 365.25
+    return float(max(np.median(np.diff(days_since_start(time))), 1e-9))
 
 
 def days_since_start(time: xr.DataArray) -> np.ndarray:
@@ -92,10 +93,66 @@ def days_since_start(time: xr.DataArray) -> np.ndarray:
     return np.array([(v - values[0]).total_seconds() / 86400.0 for v in values])
 
 
-def _calendar_keys(time: xr.DataArray, per_year: float) -> tuple[np.ndarray, str]:
-    if per_year < 20:
-        return time.dt.month.values, "month"
-    return time.dt.dayofyear.values, "day of year"
+LEAP_DAY_ONLY = ("standard", "gregorian", "proleptic_gregorian", "julian")
+"""Calendars on which 29 February exists in leap years only."""
+
+
+def key_rule(time: xr.DataArray) -> str:
+    """How a field's steps are keyed for their climatology, from their usual spacing.
+
+    ``"yearly"``: one step a year or fewer, one key.  ``"month"``: monthly
+    steps, keyed by calendar month.  ``"month_day"``: daily steps (or finer),
+    keyed by calendar month and day (see :func:`calendar_keys` for 29
+    February).  ``"bins<N>"``: steps between a day and a month apart (pentads,
+    weeks), keyed by which of ``N`` equal bins of the year they fall in, ``N``
+    being the steps a year rounded (73 for pentads, 52 for weeks): about one
+    step per bin and year, as a monthly climatology has, where a day-of-year
+    key would leave a handful of samples in each.
+
+    >>> import pandas as pd
+    >>> key_rule(xr.DataArray(pd.date_range("2000-01-01", periods=40, freq="5D"), dims="time"))
+    'bins73'
+    """
+    spacing = _spacing_days(time)
+    if spacing > 365.25 / 1.5:
+        return "yearly"
+    if spacing > 365.25 / 20:
+        return "month"
+    if spacing <= 1.5:
+        return "month_day"
+    return f"bins{round(float(time.dt.days_in_year.mean()) / spacing)}"
+
+
+def calendar_keys(time: xr.DataArray, rule: str) -> np.ndarray:
+    """Each time step's calendar key under ``rule`` (see :func:`key_rule`), as integers.
+
+    ``"month"``: the month, 1-12.  ``"month_day"``: ``100 * month + day``; on
+    calendars where 29 February is a leap day only (:data:`LEAP_DAY_ONLY`) it
+    takes 28 February's key, so every other day of a leap year keeps its own
+    calendar day and a baseline without a leap year has a key for every day;
+    on ``360_day`` and ``all_leap`` calendars 29 and 30 February are days like
+    any other.  ``"bins<N>"``: ``floor(N * f)`` with ``f`` the fraction of its
+    own year elapsed at the step's stamp (day of year - 1 plus the time of day,
+    over the days in that year).  Any other rule: one key, 0.
+
+    >>> import pandas as pd
+    >>> t = xr.DataArray(pd.to_datetime(["2004-02-28", "2004-02-29", "2004-03-01"]), dims="time")
+    >>> calendar_keys(t, "month_day").tolist()
+    [228, 228, 301]
+    """
+    if rule == "month":
+        return time.dt.month.values.astype(int)
+    if rule == "month_day":
+        month, day = time.dt.month.values.astype(int), time.dt.day.values.astype(int)
+        if time.dt.calendar in LEAP_DAY_ONLY:
+            day = np.where((month == 2) & (day == 29), 28, day)
+        return 100 * month + day
+    if rule.startswith("bins"):
+        bins = int(rule[4:])
+        clock = (time.dt.hour.values * 3600 + time.dt.minute.values * 60 + time.dt.second.values) / 86400
+        elapsed = (time.dt.dayofyear.values - 1 + clock) / time.dt.days_in_year.values
+        return np.minimum(np.floor(elapsed * bins + 1e-9), bins - 1).astype(int)  # 1e-9: bin edges on a stamp
+    return np.zeros(time.size, dtype=int)
 
 
 @dataclass(frozen=True)
@@ -152,7 +209,7 @@ def _minus_group_means(values: np.ndarray, keys: np.ndarray, in_base: np.ndarray
     """``values`` minus, at each step, the mean over the baseline steps with the same key (NaN skipped).
 
     Blocks are C-ordered ``(time, ...)``, so each group's rows are whole
-    contiguous rows: a loop over groups (12 months, or 366 days of year) costs
+    contiguous rows: a loop over groups (12 months, or 366 calendar days) costs
     one pass over the block.
     """
     mean = np.mean if not np.isnan(values).any() else _quiet_nanmean
@@ -166,9 +223,10 @@ def _minus_group_means(values: np.ndarray, keys: np.ndarray, in_base: np.ndarray
 def climatology_step(da: xr.DataArray, how: str, baseline: list[str] | None) -> TimeSteps:
     """The step that subtracts the baseline climatology (``"climatology"``) or mean (``"mean"``) of ``da``.
 
-    The climatology is per calendar month for monthly data, per day of year
-    for daily data, and the plain mean for one step a year.  Missing values
-    are skipped in the means.
+    The climatology is per calendar key (see :func:`key_rule`): calendar
+    month for monthly data, calendar month and day for daily data, bins of the
+    year for steps between, and the plain mean for one step a year.  Missing
+    values are skipped in the means.
     """
     if how == "none":
         return TimeSteps()
@@ -179,15 +237,21 @@ def climatology_step(da: xr.DataArray, how: str, baseline: list[str] | None) -> 
     if not in_base.any():
         raise UserError(f"prepare.baseline: {baseline} holds no time step of the selected data; "
                         "choose a baseline inside select.period")
-    per_year = _steps_per_year(da["time"])
-    if how == "mean" or per_year < 1.5:
-        keys = np.zeros(da.sizes["time"], dtype=int)
-    else:
-        keys, which = _calendar_keys(da["time"], per_year)
-        if missing := sorted(set(keys) - set(keys[in_base])):
-            raise UserError(f"prepare.baseline: {baseline} has no data for {which} {missing[0]}, "
-                            "so its climatology is undefined; lengthen the baseline")
+    rule = "mean" if how == "mean" else key_rule(da["time"])
+    keys = calendar_keys(da["time"], rule)
+    if missing := sorted(set(keys) - set(keys[in_base])):
+        raise UserError(f"prepare.baseline: {baseline} has no data for {_key_text(missing[0], rule)}, "
+                        "so its climatology is undefined; lengthen the baseline")
     return TimeSteps().then(_minus_group_means, keys=keys, in_base=in_base)
+
+
+def _key_text(key: int, rule: str) -> str:
+    """A calendar key as a person reads it: "month 2", "day 02-28", "bin 12 of 73"."""
+    if rule == "month_day":
+        return f"day {key // 100:02d}-{key % 100:02d}"
+    if rule.startswith("bins"):
+        return f"bin {key} of {rule[4:]} (of the year)"
+    return f"month {key}"
 
 
 def anomalies(da: xr.DataArray, how: str, baseline: list[str] | None) -> xr.DataArray:
