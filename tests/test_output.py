@@ -94,3 +94,32 @@ def test_missing_data_rule_is_counted_in_the_log_and_the_file(tmp_path, cli):
     assert "note: dropped 1 points missing at more than 10% of the steps" in log
     assert "note: set 2 missing values at 1 points to zero anomaly" in log
     assert "note: dropped 1 points" in err  # also told on the terminal
+
+
+@pytest.mark.parametrize("how", ["monthly, winter means", "daily noleap, annual means"])
+def test_means_carry_cf_time_bounds(tmp_path, cli, how):
+    """CF-1.10 section 7.1 (cell boundaries) and 7.3 (cell_methods), checked by the compliance-checker: each
+    mean's bounds run from its first month's (or day's) start to its last one's end."""
+    from conftest import cf_strict
+
+    lat, lon = np.linspace(-40, 40, 5), np.arange(0.0, 60, 10)
+    if how.startswith("monthly"):
+        time = xr.date_range("1990-01-01", periods=72, freq="MS")
+        section = {"select": {"months": [12, 1, 2]}, "prepare": {"aggregate": "seasonal"}}
+        expected = [["1990-12-01", "1991-03-01"], ["1991-12-01", "1992-03-01"]]
+    else:
+        time = xr.date_range("2001-01-01 12:00", periods=6 * 365, freq="D", calendar="noleap", use_cftime=True)
+        section = {"prepare": {"aggregate": "annual"}}
+        expected = [["2001-01-01", "2002-01-01"], ["2002-01-01", "2003-01-01"]]
+    path = tmp_path / "field.nc"
+    field_dataset(red_field((time.size, 5, 6), 1), lat, lon, time=time).to_netcdf(
+        path, encoding={"time": {"units": "days since 1950-01-01"}})
+    code, _, err = cli("run", write_config(tmp_path, [path], modes={"count": 2}, **section))
+    assert code == 0, err
+    ds = xr.open_dataset(tmp_path / "out" / "modes.nc")
+    assert ds["time"].attrs["bounds"] == "time_bnds" and ds["pc"].attrs["cell_methods"] == "time: mean"
+    bounds = ds["time_bnds"].values[:2]
+    assert [[str(t)[:10] for t in pair] for pair in bounds] == expected
+    assert np.all((bounds[:, 0] <= ds["time"].values[:2]) & (ds["time"].values[:2] < bounds[:, 1]))
+    done = cf_strict(tmp_path / "out" / "modes.nc")
+    assert done.returncode == 0, done.stdout[-3000:]

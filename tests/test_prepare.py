@@ -126,6 +126,52 @@ def test_prepare_applies_the_steps_in_order():
 # --- seasonal means at points with missing months, calendar keys of daily and sub-monthly data
 
 
+def test_a_season_missing_a_month_at_a_point_is_missing_there():
+    """Hand-computed: a winter mean needs all three months at a point; the other points keep theirs."""
+    field = _monthly(np.arange(36.0)).copy()
+    field[12, 0, 0] = np.nan  # January 1991 missing at one point
+    winters = aggregate(field.isel(time=np.isin(field["time.month"], [12, 1, 2])), "seasonal", [12, 1, 2], [])
+    assert isinstance(winters.data, da_.Array)  # still lazy
+    values = winters.values
+    assert np.isnan(values[0, 0, 0]) and values[1, 0, 0] == 24.0
+    np.testing.assert_allclose(values[:, 1, 2], [12.0, 24.0])
+
+
+def test_a_daily_season_is_missing_only_where_a_whole_month_is():
+    """Daily steps: a winter mean is of the days present, and missing where a month has no day at all."""
+    time = pd.date_range("1990-12-01", "1991-02-28", freq="D")
+    values = np.arange(time.size, dtype=float)[:, None, None] * np.ones((1, 1, 3))
+    values[:10, 0, 1] = np.nan  # ten December days missing: the other 80 days make the mean
+    values[31:62, 0, 2] = np.nan  # all of January missing: no winter mean
+    field = xr.DataArray(values, dims=("time", "lat", "lon"), coords={"time": time, "lat": [0.0], "lon": [0.0, 1, 2]})
+    winter = aggregate(field, "seasonal", [12, 1, 2], []).values[0, 0]
+    np.testing.assert_allclose(winter[:2], [values[:, 0, 0].mean(), values[10:, 0, 1].mean()])
+    assert np.isnan(winter[2])
+
+
+def test_a_point_missing_half_its_months_drops_out_instead_of_aliasing_the_seasonal_cycle():
+    """Before, an annual mean of the months that remained carried the seasonal cycle (mode 1, 95 %); now the
+    point's incomplete years are missing, so the max_missing rule drops it and counts it."""
+    from climodes.solvers import solve
+    from climodes.weights import area_weights
+
+    rng = np.random.default_rng(4)
+    time = pd.date_range("1981-01-15", periods=360, freq="MS")
+    season = 15 * np.cos(2 * np.pi * (time.month.values - 1) / 12)[:, None, None]
+    values = season + rng.standard_normal((360, 4, 5))
+    gappy_years = rng.choice(30, 12, replace=False)  # 40 % of the years lose half their months at one point
+    values[(np.isin(np.arange(360) // 12, gappy_years)) & (rng.random(360) < 0.5), 2, 3] = np.nan
+    field = xr.DataArray(values, dims=("time", "lat", "lon"),
+                         coords={"time": time, "lat": np.linspace(-30, 30, 4), "lon": np.arange(0, 50.0, 10)})
+    years = aggregate(field, "annual", None, [])
+    weights = area_weights(years["lat"], years["lon"], "coslat")
+    modes, _, counts = solve(years, weights, 2, 0.1)
+    assert counts.too_often_missing == 1 and counts.used == 19
+    without = solve(years.where((years["lat"] != years["lat"][2]) | (years["lon"] != years["lon"][3])), weights, 2, 0.1)
+    np.testing.assert_allclose(modes["eigenvalue"], without[0]["eigenvalue"], rtol=1e-12)
+    assert float(modes["variance_explained"][0]) < 0.3  # noise: no mode stands out
+
+
 def _daily(time, seed: int = 0) -> xr.DataArray:
     """A seasonal cycle by day of the year plus noise at 2 x 3 points."""
     rng = np.random.default_rng(seed)

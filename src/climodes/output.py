@@ -126,6 +126,10 @@ def results_dataset(modes: xr.Dataset, opened: OpenedField, spec: RunSpec, extra
     ds = ds.rename({k: v for k, v in opened.names.items() if k != v})
     if curvilinear:
         ds = ds.rename({GRID_LAT: opened.grid[0], GRID_LON: opened.grid[1]})
+    if "time_bnds" in ds:  # each step is a mean over the interval its bounds give
+        time_name = opened.names["time"]
+        ds[time_name].attrs["bounds"] = "time_bnds"
+        ds["pc"].attrs["cell_methods"] = f"{time_name}: mean"
     ds.attrs = provenance(spec, opened, extra)
     return ds
 

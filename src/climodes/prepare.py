@@ -15,6 +15,7 @@ block of the field in every pass.
 
 from __future__ import annotations
 
+import datetime as dt
 import warnings
 from dataclasses import dataclass
 from typing import Callable
@@ -44,11 +45,17 @@ def season_years(time: xr.DataArray, months: list[int]) -> np.ndarray:
 
 
 def aggregate(da: xr.DataArray, how: str, months: list[int] | None, notes: list[str]) -> xr.DataArray:
-    """Average each season (``how="seasonal"``) or calendar year (``"annual"``).
+    """Average each season (``how="seasonal"``) or calendar year (``"annual"``), lazily.
 
-    A season or year counts only if every one of its months has data; the ones
-    dropped are listed in ``notes``.  Each mean is stamped with the time of
-    its middle step (January for December-February).
+    A season or year counts only if every one of its months has a time step;
+    the ones dropped are listed in ``notes``.  At a point where one of its
+    months has no value, the mean is missing (see :func:`_period_means`): a
+    mean of the months that remain would alias the seasonal cycle into it.
+    Each mean is stamped with the time of its middle step (January for
+    December-February) and carries CF bounds ``time_bnds``: from the start of
+    its first step's interval to the end of its last one's (see
+    :func:`step_intervals`), held as the coordinates ``PERIOD`` until the
+    results join them (:func:`time_bounds`).
     """
     if how == "none":
         return da
@@ -69,13 +76,75 @@ def aggregate(da: xr.DataArray, how: str, months: list[int] | None, notes: list[
     if not kept:
         raise UserError(f"prepare.aggregate: {how} leaves no complete {'season' if how == 'seasonal' else 'year'} "
                         "in the selected period; widen select.period or check select.months")
+    steps = np.concatenate(kept)
     label = np.concatenate([np.full(len(s), i) for i, s in enumerate(kept)])
-    subset = da.isel(time=np.concatenate(kept)).assign_coords(group=("time", label))
-    means = subset.groupby("group").mean("time").rename(group="time")
-    means = means.assign_coords(time=da["time"].isel(time=stamps).values)
-    means["time"].attrs = da["time"].attrs
-    means.attrs = da.attrs
-    return means
+    subset = da.isel(time=steps)
+    kwargs = dict(period=label, month=month[steps], count=len(kept))
+    if subset.chunks:
+        data = subset.data
+        if len(data.chunks[0]) > 1:  # every step of a point in one block; blocks kept near dask's chunk size
+            data = data.rechunk({0: -1, 1: "auto"})
+        data = data.map_blocks(_period_means, **kwargs, chunks=((len(kept),),) + data.chunks[1:], dtype=da.dtype)
+    else:
+        data = _period_means(np.asarray(subset.values), **kwargs)
+    means = da.isel(time=np.array(stamps)).copy(data=data)
+    start, end = step_intervals(da["time"])
+    first, last = [s[0] for s in kept], [s[-1] for s in kept]
+    return means.assign_coords({PERIOD[0]: ("time", start[first]), PERIOD[1]: ("time", end[last])})
+
+
+PERIOD = ("period_start", "period_end")
+"""The coordinates of an averaged field that hold where each mean's interval starts and ends."""
+
+
+def time_bounds(field: xr.DataArray) -> dict[str, xr.Variable]:
+    """The CF bounds ``time_bnds(time, nv)`` of an averaged field's steps; none for a field of single steps."""
+    if PERIOD[0] not in field.coords:
+        return {}
+    return {"time_bnds": xr.Variable(("time", "nv"), np.stack([field[PERIOD[0]].values, field[PERIOD[1]].values],
+                                                              axis=1))}
+
+
+def _period_means(values: np.ndarray, period: np.ndarray, month: np.ndarray, count: int) -> np.ndarray:
+    """The mean of each period's steps at each point, missing where one of the period's months has no value.
+
+    ``values`` is a ``(time, ...)`` block, ``period`` says which of ``count``
+    periods each step belongs to and ``month`` its calendar month.  The mean
+    is taken in float64 and returned in the block's dtype.
+    """
+    out = np.empty((count,) + values.shape[1:], dtype=values.dtype)
+    for p in range(count):
+        rows = np.flatnonzero(period == p)
+        mean = _quiet_nanmean(values[rows], axis=0, keepdims=False, dtype=np.float64)
+        for m in np.unique(month[rows]):
+            mean[np.isnan(values[rows[month[rows] == m]]).all(axis=0)] = np.nan
+        out[p] = mean
+    return out
+
+
+def step_intervals(time: xr.DataArray) -> tuple[np.ndarray, np.ndarray]:
+    """The start and end of the interval each time step stands for.
+
+    Monthly steps stand for their calendar month and daily steps for their
+    calendar day (whatever hour they are stamped at); steps of other spacings
+    for half a step either side of their stamp.  Works on every CF calendar.
+    """
+    values = time.values
+    spacing = _spacing_days(time)
+    if spacing > 365.25 / 20 or abs(spacing - 1) < 0.01:
+        unit = "M" if spacing > 1 else "D"
+        if np.issubdtype(values.dtype, np.datetime64):
+            floor = values.astype(f"datetime64[{unit}]")
+            return floor.astype(values.dtype), (floor + 1).astype(values.dtype)
+        if unit == "D":
+            start = np.array([t.replace(hour=0, minute=0, second=0, microsecond=0) for t in values])
+            return start, start + dt.timedelta(days=1)
+        start = np.array([t.replace(day=1, hour=0, minute=0, second=0, microsecond=0) for t in values])
+        end = np.array([t.replace(year=t.year + t.month // 12, month=t.month % 12 + 1) for t in start])
+        return start, end
+    half = np.timedelta64(int(spacing * 43200e9), "ns") if np.issubdtype(values.dtype, np.datetime64) \
+        else dt.timedelta(days=spacing / 2)
+    return values - half, values + half
 
 
 def _spacing_days(time: xr.DataArray) -> float:
@@ -199,10 +268,10 @@ class TimeSteps:
         return da.copy(data=data)
 
 
-def _quiet_nanmean(values: np.ndarray, axis: int = 0, keepdims: bool = True) -> np.ndarray:
+def _quiet_nanmean(values: np.ndarray, axis: int = 0, keepdims: bool = True, dtype=None) -> np.ndarray:
     with warnings.catch_warnings():  # points missing at every step have no mean: NaN, as they should
         warnings.simplefilter("ignore", RuntimeWarning)
-        return np.nanmean(values, axis=axis, keepdims=keepdims)
+        return np.nanmean(values, axis=axis, keepdims=keepdims, dtype=dtype)
 
 
 def _minus_group_means(values: np.ndarray, keys: np.ndarray, in_base: np.ndarray) -> np.ndarray:

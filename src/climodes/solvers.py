@@ -61,7 +61,7 @@ from climodes.blocks import (
     tree_sum,
 )
 from climodes.errors import UserError
-from climodes.prepare import TimeSteps
+from climodes.prepare import PERIOD, TimeSteps, time_bounds
 from climodes.grid import grid_coordinates
 from climodes.weights import usable_points
 
@@ -459,7 +459,7 @@ def solve(field: xr.DataArray, weights: xr.DataArray, count: int, max_missing: f
             "eigenvalue": ("mode", result.eigenvalues),
             "variance_explained": ("mode", result.eigenvalues / result.total_variance),
         },
-        coords={"mode": np.arange(1, count + 1),
-                **{name: coord.variable for name, coord in field.coords.items() if name != "cell_area"}},
+        coords={"mode": np.arange(1, count + 1), **time_bounds(field),
+                **{name: coord.variable for name, coord in field.coords.items() if name not in ("cell_area", *PERIOD)}},
     )
     return modes, result, counts
