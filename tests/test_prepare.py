@@ -17,6 +17,7 @@ from climodes.prepare import (
     prepare,
     season_years,
     standardize,
+    time_steps,
 )
 
 
@@ -253,3 +254,70 @@ def test_a_baseline_missing_a_calendar_day_names_it():
     field = _daily(pd.date_range("2001-01-01", "2002-12-31", freq="D")).isel(time=slice(0, 700))
     with pytest.raises(UserError, match=r"prepare.baseline: \['2001', '2001-11'\] has no data for day 12-01"):
         anomalies(field, "climatology", ["2001", "2001-11"])
+
+
+# --- the preparation as fit and apply
+
+
+def _gappy_monthly(years: int = 12, seed: int = 3) -> xr.DataArray:
+    """A seasonal cycle, a trend and noise at 3 x 4 points, with a few missing values at one point."""
+    rng = np.random.default_rng(seed)
+    time = pd.date_range("1990-01-01", periods=12 * years, freq="MS") + pd.Timedelta(days=14)
+    season = 8 * np.cos(2 * np.pi * (time.month.values - 1) / 12)
+    trend = 0.003 * np.arange(time.size)
+    values = 280 + (season + trend)[:, None, None] * rng.uniform(0.5, 1.5, (1, 3, 4)) + rng.standard_normal(
+        (time.size, 3, 4))
+    values[[5, 40, 77], 1, 2] = np.nan
+    return xr.DataArray(values, dims=("time", "lat", "lon"), attrs={"units": "K"},
+                        coords={"time": time, "lat": [-10.0, 0, 10], "lon": [0.0, 10, 20, 30]})
+
+
+@pytest.mark.parametrize("spec", [PrepareSection(), PrepareSection(baseline=["1991", "1995"], detrend="linear"),
+                                  PrepareSection(anomalies="mean", standardize=True),
+                                  PrepareSection(anomalies="none", detrend="linear")],
+                         ids=["climatology", "baseline and trend", "mean and scale", "trend alone"])
+def test_unapply_undoes_apply(spec):
+    """unapply(apply(x)) == x wherever x has a value; a missing value comes back as its step's climatology
+    and trend (by hand: the zero anomaly it was set to, undone)."""
+    from climodes.prepare import apply, fit, keys_of, unapply
+
+    raw = _gappy_monthly()
+    field, steps = time_steps(raw, spec, None, [])
+    values = field.values.reshape(field.sizes["time"], -1)
+    fitted = fit(values, steps)
+    keys = keys_of(field["time"], fitted)
+    back = unapply(apply(values, fitted, keys), fitted, keys)
+    valid = ~np.isnan(values)
+    np.testing.assert_allclose(back[valid], values[valid], rtol=1e-14)
+    q = fitted.quantities
+    expected = (q["climatology"][keys.index] if "climatology" in q else 0) + (
+        q["intercept"] + q["slope"] * keys.days[:, None] if "slope" in q else 0)
+    np.testing.assert_allclose(back[~valid], (expected * np.ones_like(values))[~valid], rtol=1e-14)
+
+
+def test_a_field_keyed_otherwise_is_refused():
+    from climodes.prepare import fit, keys_of
+
+    field, steps = time_steps(_gappy_monthly().isel(time=np.flatnonzero(_gappy_monthly()["time.month"] < 7)),
+                              PrepareSection(detrend="linear"), None, [])
+    fitted = fit(field.values, steps)
+    daily = xr.DataArray(pd.date_range("2010-01-01", periods=60, freq="D"), dims="time")
+    with pytest.raises(UserError, match="keyed by calendar month and day, but the climatology was fitted by "
+                                        "calendar month"):
+        keys_of(daily, fitted)
+    noleap = xr.DataArray(xr.date_range("2010-01-15", periods=6, freq="MS", calendar="noleap", use_cftime=True),
+                          dims="time")
+    with pytest.raises(UserError, match="the field's calendar is noleap, but the preparation was fitted on the "
+                                        "proleptic_gregorian calendar"):
+        keys_of(noleap, fitted)
+    summer = xr.DataArray(pd.date_range("2010-05-01", periods=4, freq="MS"), dims="time")
+    with pytest.raises(UserError, match="2010-07-01T00:00:00 falls on month 7, which the fitted climatology does not"):
+        keys_of(summer, fitted)
+
+
+def test_the_examples_in_the_module_hold():
+    import doctest
+
+    import climodes.prepare
+
+    assert doctest.testmod(climodes.prepare).failed == 0

@@ -161,20 +161,27 @@ def test_streaming_solvers_apply_the_preparation_like_exact(raw_field, how):
     assert exact[2].too_often_missing == 1 and exact[2].always_missing == 15
 
 
-def test_the_steps_run_on_each_block_in_the_first_pass_only(field):
+def test_the_steps_run_on_each_block_in_the_first_pass_only(field, monkeypatch):
     """The point of the cheap path: after the first pass, complete points are multiplied as read and
     the steps act only on small matrices (an identity-width chunk of 150 columns at most here)."""
-    from climodes.prepare import TimeSteps
+    import dataclasses
+
+    import pandas as pd
+
+    from climodes.prepare import STEPS, climatology_step
 
     widths = []
+    step = STEPS["climatology"]
 
-    def minus_mean(values):  # anomalies against the mean: linear
+    def fit_and_count(values, keys):
         widths.append(values.shape[1])
-        return values - values.mean(axis=0)
+        return step.fit(values, keys)
 
+    monkeypatch.setitem(STEPS, "climatology", dataclasses.replace(step, fit=fit_and_count))
+    dated = field.assign_coords(time=pd.date_range("1900-01-01", periods=field.sizes["time"], freq="MS"))
     weights = area_weights(field["lat"], field["lon"], "coslat")
-    _, result, _ = solve(field.chunk({"lat": 11, "time": -1}), weights, K, 0.2, SolverPlan("randomized", "t", 11),
-                         steps=TimeSteps().then(minus_mean))
+    _, result, _ = solve(dated.chunk({"lat": 11, "time": -1}), weights, K, 0.2, SolverPlan("randomized", "t", 11),
+                         steps=climatology_step(dated, "mean", None))  # anomalies against the mean: linear
     passes = int(re.search(r"converged in (\d) passes", result.method).group(1))
     assert passes >= 3
     assert sum(w > field.sizes["time"] for w in widths) == 3  # the 3 blocks of 11 rows (528 points), once
@@ -299,3 +306,4 @@ def test_every_method_gives_the_same_run(tmp_path, cli, raw_field, scheduler):
     assert results["exact"].sizes["time"] == 15  # winters 1982..1996; 1981 lacks its December
     _close(results["gram"], results["exact"], 1e-8)
     _close(results["randomized"], results["exact"], 1e-4)
+

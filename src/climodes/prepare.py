@@ -1,23 +1,30 @@
-"""Turn a selected field into the anomalies that are decomposed.
+"""Turn a selected field into the anomalies that are decomposed, and keep what that took.
 
-In order: seasonal or annual means, anomalies against a baseline climatology
-or mean, a linear trend removed at each point, and standardisation.  The
-functions take lazy ``(time, lat, lon)`` DataArrays and return them (or the
-steps still to apply); only the time coordinate is looked at in memory.
+In order: seasonal or annual means (:func:`aggregate`), then along each
+point's time series anomalies against a baseline climatology or mean, a linear
+trend removed, standardisation, and last centring.  The functions take lazy
+``(time, lat, lon)`` DataArrays and return them (or the steps still to apply);
+only the time coordinate is looked at in memory.
 
-The steps after the means act on each point's time series alone.
-:func:`time_steps` hands them over as :class:`TimeSteps`, plain numpy kernels,
-so a solver can apply them where it is cheapest: the anomaly, trend and
-centring of a complete series are linear in it, so the streaming solvers
-apply them to their small ``(time x modes)`` products instead of to every
-block of the field in every pass.
+Each step along time is fitted on a point's own series and then applied to it
+(:data:`STEPS`): the climatology per calendar key (:func:`calendar_keys`), the
+trend's slope and intercept, the scale, and the offset of the centring
+(:func:`centre`).  :func:`time_steps` hands them to a solver as
+:class:`TimeSteps`, plain numpy functions, so it can apply them where it is
+cheapest: the fits and their application are linear in a complete series, so
+the streaming solvers apply them to their small ``(time x modes)`` products
+instead of to every block of the field in every pass.  :func:`fit` gives the
+quantities of a block; :func:`apply` them to another field on the same grid
+(with :func:`keys_of` of its times) or :func:`unapply` them to anomalies: the
+same functions as the run.
 """
 
 from __future__ import annotations
 
 import datetime as dt
+import re
 import warnings
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Callable
 
 import numpy as np
@@ -224,31 +231,244 @@ def calendar_keys(time: xr.DataArray, rule: str) -> np.ndarray:
     return np.zeros(time.size, dtype=int)
 
 
-@dataclass(frozen=True)
-class TimeSteps:
-    """Preparation steps that each act on every point's time series: ``(kernel, keyword arguments)`` pairs.
+# --- time as the trend reads it
 
-    A kernel takes a ``(time, ...)`` numpy array and returns one of the same
-    shape and dtype, each column computed from that column alone.  ``linear``
-    says that every kernel is linear in a series without missing values, so
-    for such a series ``steps(a x + b y) == a steps(x) + b steps(y)``.
+
+def time_origin(time: xr.DataArray) -> str:
+    """The first step, to the second, as ``YYYY-MM-DDTHH:MM:SS`` in the field's own calendar: a trend's origin."""
+    first = time.values[0]
+    if isinstance(first, np.datetime64):
+        return str(np.datetime_as_string(first.astype("datetime64[s]")))
+    return f"{first.year:04d}-{first.month:02d}-{first.day:02d}T{first.hour:02d}:{first.minute:02d}:{first.second:02d}"
+
+
+def days_since(time: xr.DataArray, origin: str) -> np.ndarray:
+    """Each step's time in float days since ``origin`` (see :func:`time_origin`), in the steps' calendar."""
+    values = time.values
+    if np.issubdtype(values.dtype, np.datetime64):
+        return (values - np.datetime64(origin)) / np.timedelta64(1, "D")
+    import cftime
+
+    start = cftime.datetime(*map(int, re.split(r"(?<=\d)[-T:]", origin)), calendar=values[0].calendar)
+    return np.array([(v - start).total_seconds() / 86400.0 for v in values])
+
+
+# --- the steps along time, each a fit and its application
+
+
+@dataclass(frozen=True, eq=False)
+class TimeKeys:
+    """What the preparation reads from a field's time steps.
+
+    ``index`` is each step's row in the climatology (its calendar key's place
+    among the ``count`` keys fitted), ``days`` its time in days since the
+    trend's origin, and ``in_base`` whether it is a baseline step (what the
+    climatology is fitted on).
+    """
+
+    index: np.ndarray
+    days: np.ndarray
+    in_base: np.ndarray
+    count: int
+
+
+def _quiet_nanmean(values: np.ndarray, axis: int = 0, keepdims: bool = True, dtype=None) -> np.ndarray:
+    with warnings.catch_warnings():  # points missing at every step have no mean: NaN, as they should
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return np.nanmean(values, axis=axis, keepdims=keepdims, dtype=dtype)
+
+
+def _fit_climatology(values: np.ndarray, keys: TimeKeys) -> dict[str, np.ndarray]:
+    """The mean over the baseline steps of each calendar key at each point, NaN skipped, in float64."""
+    mean = np.mean if not np.isnan(values).any() else _quiet_nanmean
+    climatology = np.empty((keys.count,) + values.shape[1:])
+    for row in range(keys.count):
+        climatology[row] = mean(values[np.flatnonzero((keys.index == row) & keys.in_base)], axis=0,
+                                keepdims=False, dtype=np.float64)
+    return {"climatology": climatology}
+
+
+def _by_key(values: np.ndarray, climatology: np.ndarray, keys: TimeKeys, sign: int) -> np.ndarray:
+    """``values`` plus ``sign`` times the climatology of each step's key.
+
+    Blocks are C-ordered ``(time, ...)``, so each key's rows are whole
+    contiguous rows: a loop over keys (12 months, or 366 calendar days) costs
+    one pass over the block.
+    """
+    climatology = climatology.astype(values.dtype, copy=False)
+    out = np.empty_like(values)
+    for row in np.unique(keys.index):
+        steps = np.flatnonzero(keys.index == row)
+        out[steps] = values[steps] + sign * climatology[row]
+    return out
+
+
+def _minus_climatology(values: np.ndarray, fitted: dict, keys: TimeKeys) -> np.ndarray:
+    return _by_key(values, fitted["climatology"], keys, -1)
+
+
+def _plus_climatology(values: np.ndarray, fitted: dict, keys: TimeKeys) -> np.ndarray:
+    return _by_key(values, fitted["climatology"], keys, +1)
+
+
+def _fit_line(values: np.ndarray, keys: TimeKeys) -> dict[str, np.ndarray]:
+    """The least-squares line against ``keys.days`` at each point, missing steps skipped: its slope
+    (per day) and its intercept at the time origin, in float64."""
+    days = keys.days.reshape((-1,) + (1,) * (values.ndim - 1))
+    t = np.where(np.isnan(values), np.nan, days)
+    t_mean = _quiet_nanmean(t)
+    x_mean = _quiet_nanmean(values, dtype=np.float64)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        slope = np.nansum((t - t_mean) * (values - x_mean), axis=0, keepdims=True) / np.nansum(
+            (t - t_mean) ** 2, axis=0, keepdims=True)
+    return {"slope": slope[0], "intercept": (x_mean - slope * t_mean)[0]}
+
+
+def _line(fitted: dict, keys: TimeKeys, ndim: int) -> np.ndarray:
+    """The fitted line at each step: ``intercept + slope * days since the origin`` (float64)."""
+    return fitted["intercept"] + fitted["slope"] * keys.days.reshape((-1,) + (1,) * (ndim - 1))
+
+
+def _minus_line(values: np.ndarray, fitted: dict, keys: TimeKeys) -> np.ndarray:
+    return (values - _line(fitted, keys, values.ndim)).astype(values.dtype)
+
+
+def _plus_line(values: np.ndarray, fitted: dict, keys: TimeKeys) -> np.ndarray:
+    return (values + _line(fitted, keys, values.ndim)).astype(values.dtype)
+
+
+def _fit_scale(values: np.ndarray, keys: TimeKeys) -> dict[str, np.ndarray]:
+    """Each point's standard deviation in time (ddof = 1, missing steps skipped); NaN where it is 0."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        std = np.nanstd(values, axis=0, ddof=1, dtype=np.float64)
+    return {"scale": np.where(std > 0, std, np.nan)}
+
+
+def _scaled(values: np.ndarray, fitted: dict, keys: TimeKeys) -> np.ndarray:
+    return values / fitted["scale"].astype(values.dtype)
+
+
+def _unscaled(values: np.ndarray, fitted: dict, keys: TimeKeys) -> np.ndarray:
+    return values * fitted["scale"].astype(values.dtype)
+
+
+@dataclass(frozen=True)
+class Step:
+    """One preparation step: ``fit(values, keys)`` gives its quantities at each point (a dict of arrays,
+    points last, ``per_key`` ones with a row per calendar key first), ``apply(values, fitted, keys)``
+    removes them and ``unapply`` puts them back.  ``linear``: the fit and the application are linear in a
+    complete series, so the fit-then-apply of a sum is the sum of theirs."""
+
+    fit: Callable
+    apply: Callable
+    unapply: Callable
+    quantities: tuple[str, ...]
+    per_key: bool = False
+    linear: bool = True
+
+
+STEPS = {
+    "climatology": Step(_fit_climatology, _minus_climatology, _plus_climatology, ("climatology",), per_key=True),
+    "trend": Step(_fit_line, _minus_line, _plus_line, ("slope", "intercept")),
+    "scale": Step(_fit_scale, _scaled, _unscaled, ("scale",), linear=False),
+}
+"""The steps, by name, in the order they run: anomalies, trend, standardising."""
+
+
+def _filled(prepared: np.ndarray) -> np.ndarray:
+    """A copy with missing values set to zero anomaly (the missing-data rule, ``prepare.max_missing``)."""
+    return np.where(np.isnan(prepared), prepared.dtype.type(0), prepared)
+
+
+def _less(filled: np.ndarray, offset: np.ndarray) -> np.ndarray:
+    filled -= offset.astype(filled.dtype)
+    return filled
+
+
+def centre(prepared: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The last step: missing values set to zero anomaly, then each point's time mean removed.
+
+    Returns the centred series (a new array in ``prepared``'s dtype) and the
+    offset removed (in that dtype, taken in float64): the time mean of the
+    prepared series, a missing value counted as zero.
+    """
+    filled = _filled(prepared)
+    offset = filled.mean(axis=0, dtype=np.float64).astype(filled.dtype)
+    return _less(filled, offset), offset
+
+
+@dataclass(frozen=True, eq=False)
+class Preparation:
+    """What a preparation does, without its fitted values: the steps that run (names in :data:`STEPS`,
+    in order), how time steps are keyed (:func:`calendar_keys`; ``key_values`` are the keys fitted, in
+    the order of the climatology's rows), the trend's time origin (:func:`time_origin`) and the calendar."""
+
+    steps: tuple[str, ...] = ()
+    key_rule: str = "none"
+    key_values: tuple[int, ...] = (0,)
+    origin: str = ""
+    calendar: str = ""
+
+
+@dataclass(frozen=True, eq=False)
+class TimeSteps:
+    """The preparation steps along time of one field, still to fit and apply, with the field's own
+    :class:`TimeKeys`: what a solver gets.
+
+    Each step is fitted on a ``(time, ...)`` block and applied to it, every
+    point from its own series (:meth:`fit_apply`).  ``linear`` says that every
+    step is linear in a series without missing values, so for such a series
+    ``steps(a x + b y) == a steps(x) + b steps(y)``.
 
     >>> steps = TimeSteps()  # no steps: the series as they are
     >>> steps(np.ones((3, 2))).shape
     (3, 2)
     """
 
-    kernels: tuple[tuple[Callable, dict], ...] = ()
-    linear: bool = True
+    preparation: Preparation = Preparation()
+    keys: TimeKeys | None = None
+
+    @property
+    def linear(self) -> bool:
+        return all(STEPS[name].linear for name in self.preparation.steps)
+
+    @property
+    def values_per_point(self) -> int:
+        """How many fitted values each grid point keeps (its offset included)."""
+        return 1 + sum(len(STEPS[name].quantities) * (len(self.preparation.key_values) if STEPS[name].per_key else 1)
+                       for name in self.preparation.steps)
+
+    def then(self, name: str) -> "TimeSteps":
+        """These steps followed by the step ``name`` of :data:`STEPS`."""
+        return replace(self, preparation=replace(self.preparation, steps=self.preparation.steps + (name,)))
+
+    def fit_apply(self, values: np.ndarray) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+        """Each step fitted on ``values`` and applied to them in turn: the prepared series and the
+        fitted quantities (without the final centring, see :func:`centre`).
+
+        The fits are taken in float64 and kept in ``values``' dtype, the
+        precision the steps work in: what is returned is exactly what was applied.
+        """
+        fitted = {}
+        for name in self.preparation.steps:
+            step = STEPS[name]
+            fitted.update({q: v.astype(values.dtype, copy=False) for q, v in step.fit(values, self.keys).items()})
+            values = step.apply(values, fitted, self.keys)
+        return values, fitted
 
     def __call__(self, values: np.ndarray) -> np.ndarray:
-        for kernel, kwargs in self.kernels:
-            values = kernel(values, **kwargs)
-        return values
+        return self.fit_apply(values)[0]
 
-    def then(self, kernel: Callable, linear: bool = True, **kwargs) -> "TimeSteps":
-        """These steps followed by ``kernel(values, **kwargs)``."""
-        return TimeSteps(self.kernels + ((kernel, kwargs),), self.linear and linear)
+    def blank(self, points: int, dtype=np.float64) -> dict[str, np.ndarray]:
+        """The fitted quantities of ``points`` points without data: NaN, the offset included."""
+        rows = len(self.preparation.key_values)
+        out = {}
+        for name in self.preparation.steps:
+            step = STEPS[name]
+            out.update({quantity: np.full(((rows,) if step.per_key else ()) + (points,), np.nan, dtype=dtype)
+                        for quantity in step.quantities})
+        return {**out, "offset": np.full(points, np.nan, dtype=dtype)}
 
     def applied(self, da: xr.DataArray) -> xr.DataArray:
         """The steps applied to a ``(time, lat, lon)`` field, lazily.
@@ -257,7 +477,7 @@ class TimeSteps:
         joined into one chunk), so the steps run block by block in plain numpy,
         in the field's own dtype, on C-ordered ``(time, lat, lon)`` blocks.
         """
-        if not self.kernels:
+        if not self.preparation.steps:
             return da
         if da.dims[0] != "time":
             raise ValueError("fields are (time, lat, lon) from climodes.fields on")
@@ -268,25 +488,113 @@ class TimeSteps:
         return da.copy(data=data)
 
 
-def _quiet_nanmean(values: np.ndarray, axis: int = 0, keepdims: bool = True, dtype=None) -> np.ndarray:
-    with warnings.catch_warnings():  # points missing at every step have no mean: NaN, as they should
-        warnings.simplefilter("ignore", RuntimeWarning)
-        return np.nanmean(values, axis=axis, keepdims=keepdims, dtype=dtype)
+@dataclass(frozen=True, eq=False)
+class Fitted:
+    """A preparation fitted on training data: what it does, and its quantities at each point (points
+    last): ``climatology`` (a row per calendar key), ``slope`` (per day) and ``intercept`` (at the time
+    origin) of the trend, ``scale``, and the ``offset`` removed last (see :func:`centre`)."""
+
+    preparation: Preparation
+    quantities: dict[str, np.ndarray]
 
 
-def _minus_group_means(values: np.ndarray, keys: np.ndarray, in_base: np.ndarray) -> np.ndarray:
-    """``values`` minus, at each step, the mean over the baseline steps with the same key (NaN skipped).
+def fit(values: np.ndarray, steps: TimeSteps) -> Fitted:
+    """The preparation ``steps`` fitted on a ``(time, ...)`` block of the field they were made for.
 
-    Blocks are C-ordered ``(time, ...)``, so each group's rows are whole
-    contiguous rows: a loop over groups (12 months, or 366 calendar days) costs
-    one pass over the block.
+    >>> import pandas as pd
+    >>> field = xr.DataArray(np.arange(24.0)[:, None], dims=("time", "x"),
+    ...                      coords={"time": pd.date_range("2000-01-01", periods=24, freq="MS")})
+    >>> fitted = fit(field.values, climatology_step(field, "climatology", None))
+    >>> fitted.quantities["climatology"][:3, 0].tolist(), fitted.quantities["offset"].tolist()
+    ([6.0, 7.0, 8.0], [0.0])
     """
-    mean = np.mean if not np.isnan(values).any() else _quiet_nanmean
-    out = np.empty_like(values)
-    for key in np.unique(keys):
-        steps = np.flatnonzero(keys == key)
-        out[steps] = values[steps] - mean(values[steps[in_base[steps]]], axis=0, keepdims=True)
-    return out
+    prepared, quantities = steps.fit_apply(values)
+    quantities["offset"] = centre(prepared)[1]
+    return Fitted(steps.preparation, quantities)
+
+
+def apply(values: np.ndarray, fitted: Fitted, keys: TimeKeys) -> np.ndarray:
+    """The anomalies of ``values`` under a fitted preparation: each step applied with the fitted
+    quantities, missing values set to zero anomaly, the offset removed.
+
+    ``values`` is ``(time, ...)`` on the grid of the fit (points, or latitude
+    and longitude, in the same order); ``keys`` comes from :func:`keys_of` of
+    its times.  Applied to the field the preparation was fitted on, this gives
+    the anomalies the modes were computed from.  Points the run did not use
+    have NaN quantities, so NaN anomalies.
+
+    >>> import pandas as pd
+    >>> field = xr.DataArray(np.arange(24.0)[:, None], dims=("time", "x"),
+    ...                      coords={"time": pd.date_range("2000-01-01", periods=24, freq="MS")})
+    >>> fitted = fit(field.values, climatology_step(field, "climatology", None))
+    >>> later = xr.DataArray(pd.date_range("2003-01-01", periods=3, freq="MS"), dims="time")  # Jan-Mar 2003
+    >>> apply(np.array([[20.0], [21.0], [np.nan]]), fitted, keys_of(later, fitted))[:, 0].tolist()
+    [14.0, 14.0, 0.0]
+    """
+    for name in fitted.preparation.steps:
+        values = STEPS[name].apply(values, fitted.quantities, keys)
+    return _less(_filled(values), fitted.quantities["offset"])
+
+
+def unapply(anomalies: np.ndarray, fitted: Fitted, keys: TimeKeys) -> np.ndarray:
+    """The inverse of :func:`apply`: the offset added back, the scale undone, the trend and the
+    climatology added back, so ``unapply(apply(x)) == x`` wherever ``x`` has a value (a missing value
+    comes back as the climatology and trend of its step)."""
+    values = anomalies + fitted.quantities["offset"].astype(anomalies.dtype)
+    for name in reversed(fitted.preparation.steps):
+        values = STEPS[name].unapply(values, fitted.quantities, keys)
+    return values
+
+
+_SAME_CALENDAR = {"gregorian": "standard", "proleptic_gregorian": "standard", "365_day": "noleap",
+                  "366_day": "all_leap"}
+
+
+def _key_name(rule: str) -> str:
+    if rule.startswith("bins"):
+        return f"{rule[4:]} bins of the year"
+    return {"month": "calendar month", "month_day": "calendar month and day", "yearly": "one key (yearly steps)",
+            "mean": "one key (the mean)", "none": "no key"}[rule]
+
+
+def keys_of(time: xr.DataArray, fitted: Fitted) -> TimeKeys:
+    """What a fitted preparation reads from the time steps of a field: each step's row in the fitted
+    climatology and its days since the trend's origin.  Use it with :func:`apply` and :func:`unapply`.
+
+    Raises
+    ------
+    UserError
+        If the steps are on another calendar, are spaced so that they would be keyed otherwise
+        (daily steps against a monthly climatology), or fall on a calendar key the fit does not hold.
+    """
+    time = time if isinstance(time, xr.DataArray) else xr.DataArray(time, dims="time")
+    prep = fitted.preparation
+    calendar = time.dt.calendar
+    if prep.calendar and _SAME_CALENDAR.get(calendar, calendar) != _SAME_CALENDAR.get(prep.calendar, prep.calendar):
+        raise UserError(f"input.paths: the field's calendar is {calendar}, but the preparation was fitted on the "
+                        f"{prep.calendar} calendar; give the field on the {prep.calendar} calendar")
+    if prep.key_rule not in ("mean", "none") and time.size > 1 and (rule := key_rule(time)) != prep.key_rule:
+        raise UserError(f"input.paths: the field's time steps are keyed by {_key_name(rule)}, but the "
+                        f"climatology was fitted by {_key_name(prep.key_rule)}; give a field with the "
+                        "training field's time spacing")
+    keys = calendar_keys(time, prep.key_rule)
+    fitted_keys = np.array(prep.key_values)
+    rows = np.minimum(np.searchsorted(fitted_keys, keys), fitted_keys.size - 1)
+    if (absent := fitted_keys[rows] != keys).any():
+        first = int(np.argmax(absent))
+        raise UserError(f"input.paths: the step {str(time.values[first])[:19]} falls on "
+                        f"{_key_text(int(keys[first]), prep.key_rule)}, which the fitted climatology does not hold "
+                        f"(the training field had {len(fitted_keys)} keys); select the months the training used")
+    days = days_since(time, prep.origin) if "trend" in prep.steps else np.zeros(time.size)
+    return TimeKeys(rows, days, np.ones(time.size, dtype=bool), fitted_keys.size)
+
+
+def _field_steps(da: xr.DataArray, rule: str, keys: np.ndarray, in_base: np.ndarray) -> TimeSteps:
+    """No steps yet, with ``da``'s calendar keys under ``rule`` and its days since its first step."""
+    values, index = np.unique(keys, return_inverse=True)
+    origin = time_origin(da["time"])
+    preparation = Preparation((), rule, tuple(int(v) for v in values), origin, da["time"].dt.calendar)
+    return TimeSteps(preparation, TimeKeys(index.reshape(-1), days_since(da["time"], origin), in_base, values.size))
 
 
 def climatology_step(da: xr.DataArray, how: str, baseline: list[str] | None) -> TimeSteps:
@@ -295,10 +603,11 @@ def climatology_step(da: xr.DataArray, how: str, baseline: list[str] | None) -> 
     The climatology is per calendar key (see :func:`key_rule`): calendar
     month for monthly data, calendar month and day for daily data, bins of the
     year for steps between, and the plain mean for one step a year.  Missing
-    values are skipped in the means.
+    values are skipped in the means.  The steps come with ``da``'s time keys,
+    so a trend or scale may follow (:meth:`TimeSteps.then`).
     """
     if how == "none":
-        return TimeSteps()
+        return _field_steps(da, "none", np.zeros(da.sizes["time"], dtype=int), np.ones(da.sizes["time"], dtype=bool))
     in_base = np.ones(da.sizes["time"], dtype=bool)
     if baseline is not None:
         in_base[:] = False
@@ -311,7 +620,7 @@ def climatology_step(da: xr.DataArray, how: str, baseline: list[str] | None) -> 
     if missing := sorted(set(keys) - set(keys[in_base])):
         raise UserError(f"prepare.baseline: {baseline} has no data for {_key_text(missing[0], rule)}, "
                         "so its climatology is undefined; lengthen the baseline")
-    return TimeSteps().then(_minus_group_means, keys=keys, in_base=in_base)
+    return _field_steps(da, rule, keys, in_base).then("climatology")
 
 
 def _key_text(key: int, rule: str) -> str:
@@ -328,33 +637,14 @@ def anomalies(da: xr.DataArray, how: str, baseline: list[str] | None) -> xr.Data
     return climatology_step(da, how, baseline).applied(da)
 
 
-def _minus_line(values: np.ndarray, days: np.ndarray) -> np.ndarray:
-    days = days.reshape((-1,) + (1,) * (values.ndim - 1))
-    valid = ~np.isnan(values)
-    t = np.where(valid, days, np.nan)
-    t_mean = _quiet_nanmean(t)
-    x_mean = _quiet_nanmean(values)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        slope = np.nansum((t - t_mean) * (values - x_mean), axis=0, keepdims=True) / np.nansum(
-            (t - t_mean) ** 2, axis=0, keepdims=True)
-    return (values - x_mean - slope * (days - t_mean)).astype(values.dtype)
-
-
 def detrend_linear(da: xr.DataArray) -> xr.DataArray:
     """Remove the least-squares straight line in time (in days) at each point, skipping missing steps."""
-    return TimeSteps().then(_minus_line, days=days_since_start(da["time"])).applied(da)
-
-
-def _scaled(values: np.ndarray) -> np.ndarray:
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)
-        std = np.nanstd(values, axis=0, ddof=1, keepdims=True)
-    return values / np.where(std > 0, std, np.nan)
+    return climatology_step(da, "none", None).then("trend").applied(da)
 
 
 def standardize(da: xr.DataArray) -> xr.DataArray:
     """Divide each point by its standard deviation in time; constant points become missing."""
-    return TimeSteps().then(_scaled, linear=False).applied(da).assign_attrs({**da.attrs, "units": "1"})
+    return climatology_step(da, "none", None).then("scale").applied(da).assign_attrs({**da.attrs, "units": "1"})
 
 
 def time_steps(da: xr.DataArray, spec: PrepareSection, months: list[int] | None,
@@ -363,9 +653,9 @@ def time_steps(da: xr.DataArray, spec: PrepareSection, months: list[int] | None,
     da = aggregate(da, spec.aggregate, months, notes)
     steps = climatology_step(da, spec.anomalies, spec.baseline)
     if spec.detrend == "linear":
-        steps = steps.then(_minus_line, days=days_since_start(da["time"]))
+        steps = steps.then("trend")
     if spec.standardize:
-        steps = steps.then(_scaled, linear=False)
+        steps = steps.then("scale")
     return da, steps
 
 
@@ -374,3 +664,4 @@ def prepare(da: xr.DataArray, spec: PrepareSection, months: list[int] | None, no
     da, steps = time_steps(da, spec, months, notes)
     out = steps.applied(da)
     return out.assign_attrs({**da.attrs, "units": "1"}) if spec.standardize else out
+

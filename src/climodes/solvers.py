@@ -50,6 +50,7 @@ from climodes.blocks import (
     flat,
     full_path,
     gram_part,
+    joined,
     path_points,
     power_part,
     quietly,
@@ -197,15 +198,15 @@ def _exact(field, weights, count, max_missing, progress, steps):
     with progress("reading the field (1 pass)"):
         values = quietly(lambda: field.values)()
     _refuse_infinities(bool(np.isinf(values).any()))
-    block, fraction = quietly(full_path)(flat(values), np.ones(weights.size, dtype=bool), steps, max_missing,
-                                         np.float64)
+    block, fraction, fitted = quietly(full_path)(flat(values), np.ones(weights.size, dtype=bool), steps,
+                                                 max_missing, np.float64)
     _check_points(fraction, max_missing, count)
     keep = usable_points(fraction, max_missing)
     result = exact_modes(block[:, keep], weights[keep], count)
     patterns = np.full((keep.size, result.patterns.shape[1]), np.nan)
     patterns[keep] = result.patterns
     result.patterns = patterns
-    return result, fraction
+    return result, fraction, fitted
 
 
 def _leading_eigenpairs(matrix: np.ndarray, wanted: int) -> tuple[np.ndarray, np.ndarray]:
@@ -231,8 +232,8 @@ def _gram(field, weights, count, max_missing, progress, steps):
     blocks, rows = field_blocks(field), row_slices(field)
     parts = [dask.delayed(quietly(gram_part))(b, weights[r], max_missing, steps) for b, r in zip(blocks, rows)]
     with progress("pass 1 of 2: time x time cross-products"):
-        read_gram, full_gram, fractions = dask.compute(tree_sum(parts))[0]
-    fraction = np.concatenate(fractions)
+        read_gram, full_gram, pieces = dask.compute(tree_sum(parts))[0]
+    fraction, fitted = joined(pieces)
     _refuse_infinities(not (np.isfinite(read_gram).all() and np.isfinite(full_gram).all()))
     _check_points(fraction, max_missing, count)
     cheap, gappy = path_points(fraction, max_missing, steps)
@@ -254,7 +255,7 @@ def _gram(field, weights, count, max_missing, progress, steps):
         next_eigenvalue=float(values[count] / n) if values.size > count else 0.0,
         method="gram: eigendecomposition of the float64 time x time cross-product, streamed over grid blocks",
     )
-    return result, fraction
+    return result, fraction, fitted
 
 
 def _randomized(field, weights, count, max_missing, progress, seed, steps):
@@ -276,8 +277,8 @@ def _randomized(field, weights, count, max_missing, progress, seed, steps):
     parts = [dask.delayed(quietly(range_part))(b, weights[r], max_missing, omega[r], steps)
              for b, r in zip(blocks, rows)]
     with progress(f"pass 1 of at most {most}: random projection"):
-        sample, total, fractions = dask.compute(tree_sum(parts))[0]
-    fraction = np.concatenate(fractions)
+        sample, total, pieces = dask.compute(tree_sum(parts))[0]
+    fraction, fitted = joined(pieces)
     _refuse_infinities(not (np.isfinite(sample).all() and np.isfinite(total)))
     _check_points(fraction, max_missing, count)
     cheap, gappy = path_points(fraction, max_missing, steps)
@@ -312,7 +313,7 @@ def _randomized(field, weights, count, max_missing, progress, seed, steps):
         result.notes.append(f"the randomized solver stopped after {done} passes with a Ritz residual up to "
                             f"{residual.max() / ritz[0]:.1e} of the first eigenvalue, above its tolerance; "
                             "the weaker modes may be off by more than 1e-4: use modes.method gram or exact")
-    return result, fraction
+    return result, fraction, fitted
 
 
 def _converged(ritz: np.ndarray, residual: np.ndarray, steps: int) -> bool:
@@ -430,18 +431,19 @@ def solve(field: xr.DataArray, weights: xr.DataArray, count: int, max_missing: f
     -------
     modes, decomposition, counts
         ``modes`` holds ``eof(mode, lat, lon)`` (NaN at unused points),
-        ``pc(mode, time)``, ``eigenvalue(mode)`` and ``variance_explained(mode)``.
+        ``pc(mode, time)``, ``eigenvalue(mode)`` and ``variance_explained(mode)``, and, for
+        seasonal or annual means, ``time_bnds``.
     """
     progress = progress or (lambda label: contextlib.nullcontext())
     w = np.asarray(weights.values, dtype=np.float64).reshape(-1)
     if plan.method != "exact" and field.chunks is None:
         field = field.chunk({"lat": plan.lat_rows or -1})
     if plan.method == "exact":
-        result, fraction = _exact(field, w, count, max_missing, progress, steps)
+        result, fraction, _ = _exact(field, w, count, max_missing, progress, steps)
     elif plan.method == "gram":
-        result, fraction = _gram(field, w, count, max_missing, progress, steps)
+        result, fraction, _ = _gram(field, w, count, max_missing, progress, steps)
     else:
-        result, fraction = _randomized(field, w, count, max_missing, progress, seed, steps)
+        result, fraction, _ = _randomized(field, w, count, max_missing, progress, seed, steps)
     counts = _counts(fraction, max_missing, field.sizes["time"])
     if result.total_variance == 0 or result.eigenvalues[0] <= 1e-12 * max(result.total_variance, 1e-300):
         raise UserError("input.variable: the prepared field is constant in time at every point, "
