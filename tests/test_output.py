@@ -123,3 +123,61 @@ def test_means_carry_cf_time_bounds(tmp_path, cli, how):
     assert np.all((bounds[:, 0] <= ds["time"].values[:2]) & (ds["time"].values[:2] < bounds[:, 1]))
     done = cf_strict(tmp_path / "out" / "modes.nc")
     assert done.returncode == 0, done.stdout[-3000:]
+
+
+def test_the_fitted_preparation_is_stored_and_read_back(tmp_path, cli):
+    """The fit travels through modes.nc (CF-1.10 strict, units per variable), is read back by
+    fitted_preparation and, applied to the input file, gives the anomalies the modes came from: with every
+    mode kept, sum_k pc_k eof_k (our results contract)."""
+    from conftest import cf_strict
+
+    from climodes.prepare import apply, fitted_preparation, keys_of
+    from climodes.results import open_results
+
+    lat, lon = np.linspace(-35, 35, 8), np.arange(0.0, 100, 10)
+    time = xr.date_range("1990-01-01", periods=48, freq="MS") + np.timedelta64(14, "D")
+    month = xr.DataArray(time, dims="time").dt.month.values
+    values = 285 + 6 * np.cos(2 * np.pi * month / 12)[:, None, None] + red_field((48, 8, 10), 5)
+    values[[4, 30], 2, 3] = np.nan  # filled
+    values[:, 0, 0] = np.nan  # land
+    path = tmp_path / "tas.nc"
+    field_dataset(values, lat, lon, time=time).to_netcdf(path)
+    code, _, err = cli("run", write_config(tmp_path, [path], modes={"count": 47},
+                                           prepare={"baseline": ["1990", "1992"], "detrend": "linear"}))
+    assert code == 0, err
+    with netCDF4.Dataset(tmp_path / "out" / "modes.nc") as nc:
+        units = {name: nc[name].units for name in ("fitted_climatology", "fitted_trend_slope",
+                                                    "fitted_trend_intercept", "fitted_offset", "area_weight")}
+        assert units == {"fitted_climatology": "K", "fitted_trend_slope": "K day-1", "fitted_trend_intercept": "K",
+                         "fitted_offset": "K", "area_weight": "1"}
+        assert nc["fitted_climatology"].dimensions == ("calendar_key", "lat", "lon")
+        assert nc["fitted_climatology"].key_rule == "month" and nc["calendar_key"][:].tolist() == list(range(1, 13))
+        assert all(nc[name].datatype == np.float64 for name in units)
+        assert nc["fitted_trend_slope"].time_origin == "1990-01-15T00:00:00"
+        assert nc["fitted_offset"].preparation_steps == "climatology trend offset"
+        assert "not run: scale (prepare.standardize: false)" in nc["fitted_offset"].comment
+        assert "fitted_scale" not in nc.variables
+        assert nc["point_used"][:].sum() == 79 and nc["point_used"][0, 0] == 0
+    results = open_results(tmp_path / "out")
+    fitted = fitted_preparation(results)
+    field = xr.open_dataset(path)["tas"]
+    anomalies = apply(field.values, fitted, keys_of(field["time"], fitted))
+    decomposed = np.einsum("kt,kyx->tyx", results["pc"].values, results["eof"].values)
+    used = results["point_used"].values == 1
+    np.testing.assert_allclose(anomalies[:, used], decomposed[:, used], rtol=0, atol=1e-10 * np.nanmax(decomposed))
+    done = cf_strict(tmp_path / "out" / "modes.nc")
+    assert done.returncode == 0, done.stdout[-3000:]
+
+
+def test_only_the_steps_that_ran_are_stored(tmp_path, small_field, cli):
+    code, _, err = cli("run", write_config(tmp_path, [small_field], modes={"count": 2},
+                                           prepare={"anomalies": "none", "standardize": True}))
+    assert code == 0, err
+    ds = xr.open_dataset(tmp_path / "out" / "modes.nc")
+    assert [name for name in ds.data_vars if name.startswith("fitted_")] == ["fitted_scale", "fitted_offset"]
+    assert ds["fitted_scale"].attrs["units"] == "K" and ds["fitted_offset"].attrs["units"] == "1"
+    assert ds["fitted_offset"].attrs["preparation_steps"] == "scale offset"
+    assert "not run: climatology (prepare.anomalies: none), trend (prepare.detrend: none)" in ds["fitted_offset"].attrs[
+        "comment"]
+    np.testing.assert_allclose(ds["area_weight"].values ** 2, np.cos(np.deg2rad(ds["lat"].values))[:, None]
+                               * np.ones(ds.sizes["lon"]), rtol=1e-12)  # sqrt(cos(lat)) (coslat weighting)

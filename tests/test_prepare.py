@@ -256,7 +256,7 @@ def test_a_baseline_missing_a_calendar_day_names_it():
         anomalies(field, "climatology", ["2001", "2001-11"])
 
 
-# --- the preparation as fit and apply
+# --- the preparation as fit and apply: what a run stores, checked against plain pandas and numpy
 
 
 def _gappy_monthly(years: int = 12, seed: int = 3) -> xr.DataArray:
@@ -270,6 +270,80 @@ def _gappy_monthly(years: int = 12, seed: int = 3) -> xr.DataArray:
     values[[5, 40, 77], 1, 2] = np.nan
     return xr.DataArray(values, dims=("time", "lat", "lon"), attrs={"units": "K"},
                         coords={"time": time, "lat": [-10.0, 0, 10], "lon": [0.0, 10, 20, 30]})
+
+
+def _solved(field: xr.DataArray, spec: PrepareSection) -> tuple[xr.DataArray, xr.Dataset]:
+    from climodes.solvers import solve
+    from climodes.weights import area_weights
+
+    field, steps = time_steps(field, spec, None, [])
+    return field, solve(field, area_weights(field["lat"], field["lon"], "coslat"), 2, spec.max_missing, steps=steps)[0]
+
+
+def _pandas_climatology(field: xr.DataArray, key: np.ndarray, in_base: np.ndarray) -> pd.DataFrame:
+    """Reference (pandas groupby): the mean over the baseline steps of each key, NaN skipped."""
+    table = pd.DataFrame(field.values.reshape(field.sizes["time"], -1))
+    return table[in_base].groupby(key[in_base]).mean()
+
+
+def test_the_stored_monthly_climatology_is_a_pandas_groupby_of_the_baseline():
+    field, modes = _solved(_gappy_monthly(), PrepareSection(baseline=["1992", "1997"]))
+    index = field.indexes["time"]
+    reference = _pandas_climatology(field, index.month.to_numpy(), (index.year >= 1992) & (index.year <= 1997))
+    stored = modes["fitted_climatology"]
+    assert stored.dims == ("calendar_key", "lat", "lon") and stored.attrs["key_rule"] == "month"
+    assert stored["calendar_key"].values.tolist() == reference.index.tolist() == list(range(1, 13))
+    np.testing.assert_allclose(stored.values.reshape(12, -1), reference.to_numpy(), rtol=1e-14)
+
+
+def test_the_stored_daily_climatology_is_a_pandas_groupby_by_month_and_day():
+    field = _daily(pd.date_range("2000-01-01", "2003-12-31", freq="D"))
+    field, modes = _solved(field, PrepareSection())
+    index = field.indexes["time"]
+    key = pd.Series(100 * index.month + index.day).replace(229, 228).to_numpy()  # the stated rule for 29 Feb
+    reference = _pandas_climatology(field, key, np.ones(index.size, dtype=bool))
+    stored = modes["fitted_climatology"]
+    assert stored.attrs["key_rule"] == "month_day" and stored.sizes["calendar_key"] == 365
+    assert stored["calendar_key"].values.tolist() == reference.index.tolist()
+    np.testing.assert_allclose(stored.values.reshape(365, -1), reference.to_numpy(), rtol=1e-13)
+
+
+def test_the_stored_trend_is_numpy_polyfit_of_the_anomalies():
+    """Reference: numpy.polyfit of degree 1 of the pandas anomalies against days since the first step,
+    the gappy point on its valid steps only; then the scale is numpy's std (ddof=1) of what remains."""
+    field, modes = _solved(_gappy_monthly(), PrepareSection(detrend="linear", standardize=True))
+    index = field.indexes["time"]
+    climatology = _pandas_climatology(field, index.month.to_numpy(), np.ones(index.size, dtype=bool))
+    anomalies = field.values.reshape(index.size, -1) - climatology.loc[index.month].to_numpy()
+    days = (index - index[0]) / pd.Timedelta(days=1)
+    slope, intercept, scale = (modes[name].values.reshape(-1) for name in
+                               ("fitted_trend_slope", "fitted_trend_intercept", "fitted_scale"))
+    for point in range(12):
+        ok = ~np.isnan(anomalies[:, point])
+        fit = np.polyfit(days[ok], anomalies[ok, point], 1)
+        np.testing.assert_allclose([slope[point], intercept[point]], fit, rtol=1e-9, atol=1e-12)
+        rest = anomalies[ok, point] - np.polyval(fit, days[ok])
+        np.testing.assert_allclose(scale[point], np.std(rest, ddof=1), rtol=1e-12)
+    assert modes["fitted_trend_slope"].attrs["time_origin"] == str(index[0].isoformat())
+    assert modes["fitted_trend_slope"].attrs["units"] == "K day-1"
+
+
+def test_the_stored_offset_centres_every_series_with_its_gaps_as_zero_anomalies():
+    """The missing-data rule (README, prepare.max_missing): a missing anomaly is set to zero, then each
+    point's time mean is removed, so every column decomposed has zero mean (common practice for EOFs).
+    Reference: pandas anomalies against a baseline climatology, NaN filled with 0, their mean."""
+    from climodes.prepare import apply, fitted_preparation, keys_of
+
+    field, modes = _solved(_gappy_monthly(), PrepareSection(baseline=["1990", "1993"]))
+    index = field.indexes["time"]
+    in_base = index.year <= 1993
+    climatology = _pandas_climatology(field, index.month.to_numpy(), in_base)
+    anomalies = pd.DataFrame(field.values.reshape(index.size, -1) - climatology.loc[index.month].to_numpy())
+    np.testing.assert_allclose(modes["fitted_offset"].values.reshape(-1), anomalies.fillna(0).mean(), rtol=1e-12)
+    fitted = fitted_preparation(modes)
+    centred = apply(field.values, fitted, keys_of(field["time"], fitted))
+    np.testing.assert_allclose(centred.mean(axis=0), 0, atol=1e-12)
+    assert abs(modes["fitted_offset"].values[1, 2]) > 0.1  # a later period is warmer than the baseline
 
 
 @pytest.mark.parametrize("spec", [PrepareSection(), PrepareSection(baseline=["1991", "1995"], detrend="linear"),
@@ -313,6 +387,17 @@ def test_a_field_keyed_otherwise_is_refused():
     summer = xr.DataArray(pd.date_range("2010-05-01", periods=4, freq="MS"), dims="time")
     with pytest.raises(UserError, match="2010-07-01T00:00:00 falls on month 7, which the fitted climatology does not"):
         keys_of(summer, fitted)
+
+
+def test_a_results_file_without_a_fit_is_refused():
+    from climodes.prepare import fitted_preparation
+
+    bare = xr.Dataset({"eof": (("mode", "lat", "lon"), np.ones((1, 2, 2)))})
+    with pytest.raises(UserError, match="holds no fitted preparation"):
+        fitted_preparation(bare)
+    with pytest.raises(UserError, match="fitted_offset says the steps climatology ran, but fitted_climatology"):
+        fitted_preparation(bare.assign(fitted_offset=(("lat", "lon"), np.zeros((2, 2)),
+                                                      {"preparation_steps": "climatology offset"})))
 
 
 def test_the_examples_in_the_module_hold():

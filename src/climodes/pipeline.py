@@ -70,7 +70,7 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
     field, along_time, notes = _prepared(spec, opened)
     workers = worker_count(spec.compute)
     plan = plan_solver(field.shape, spec.modes.count, spec.modes.method, memory_bytes(spec.compute.memory), workers,
-                       in_use=resident_bytes())
+                       in_use=resident_bytes(), fitted_per_point=along_time.values_per_point)
     if plan.lat_rows:
         opened = rechunked(opened, {"time": -1, "lat": plan.lat_rows, "lon": -1})
         field, along_time, notes = _prepared(spec, opened)

@@ -13,10 +13,11 @@ trend's slope and intercept, the scale, and the offset of the centring
 :class:`TimeSteps`, plain numpy functions, so it can apply them where it is
 cheapest: the fits and their application are linear in a complete series, so
 the streaming solvers apply them to their small ``(time x modes)`` products
-instead of to every block of the field in every pass.  :func:`fit` gives the
-quantities of a block; :func:`apply` them to another field on the same grid
-(with :func:`keys_of` of its times) or :func:`unapply` them to anomalies: the
-same functions as the run.
+instead of to every block of the field in every pass.  The solver returns the
+quantities fitted at every point from its first pass; they go to ``modes.nc``
+(:func:`fitted_variables`), come back with :func:`fitted_preparation`, and
+:func:`apply` them to another field on the same grid (with :func:`keys_of` of
+its times) or :func:`unapply` them to anomalies: the same functions as the run.
 """
 
 from __future__ import annotations
@@ -665,3 +666,128 @@ def prepare(da: xr.DataArray, spec: PrepareSection, months: list[int] | None, no
     out = steps.applied(da)
     return out.assign_attrs({**da.attrs, "units": "1"}) if spec.standardize else out
 
+
+# --- the fitted preparation in modes.nc
+
+_KEY_COORDINATE = {
+    "month": "calendar month (1-12)",
+    "month_day": "calendar month and day: 100 * month + day",
+    "yearly": "one key for every step (yearly steps)",
+    "mean": "one key for every step (anomalies against the baseline mean)",
+}
+_KEY_RULE_TEXT = {
+    "month": "keyed by calendar month",
+    "month_day": ("keyed by calendar month and day; 29 February shares 28 February's key on the standard, "
+                  "gregorian, proleptic_gregorian and julian calendars, and is a day of its own on all_leap and "
+                  "360_day (as is 30 February)"),
+    "yearly": "one key: the steps are a year apart",
+    "mean": "one key: anomalies against the baseline mean",
+}
+_NOT_RUN = {"climatology": "climatology (prepare.anomalies: none)", "trend": "trend (prepare.detrend: none)",
+            "scale": "scale (prepare.standardize: false)"}
+
+
+def _key_rule_text(rule: str) -> str:
+    if rule.startswith("bins"):
+        return (f"keyed by {rule[4:]} equal bins of the year: bin floor({rule[4:]} * f), f the fraction of its own "
+                "year elapsed at the step")
+    return _KEY_RULE_TEXT[rule]
+
+
+def fitted_variables(fitted: Fitted, units: str | None) -> dict[str, xr.DataArray]:
+    """The fitted preparation as CF variables for ``modes.nc``, from quantities shaped ``(..., lat, lon)``.
+
+    ``fitted_climatology(calendar_key, lat, lon)`` with its ``calendar_key``
+    coordinate and the key rule, ``fitted_trend_slope`` (``units`` per day)
+    and ``fitted_trend_intercept`` with the time origin, ``fitted_scale`` and
+    ``fitted_offset``, each in the precision the anomalies were formed in
+    (float64, or a float32 field's own precision in the randomized solver:
+    the values it applied); the variables of a step that did not run
+    are left out, and ``fitted_offset`` (always there) says which steps ran and
+    which did not.  :func:`fitted_preparation` reads them back.
+    """
+    prep, values = fitted.preparation, fitted.quantities
+    space = ("lat", "lon")
+    field_units = {"units": units} if units else {}
+    out = {}
+    if "climatology" in prep.steps:
+        key = xr.DataArray(np.array(prep.key_values, dtype=np.int32), dims="calendar_key",
+                           attrs={"long_name": _KEY_COORDINATE.get(prep.key_rule, "bin of the year (0 first)"),
+                                  "units": "1"})
+        out["fitted_climatology"] = xr.DataArray(
+            values["climatology"], dims=("calendar_key", *space), coords={"calendar_key": key},
+            attrs={"long_name": "baseline climatology removed at each point, per calendar key", **field_units,
+                   "key_rule": prep.key_rule, "calendar": prep.calendar,
+                   "comment": _key_rule_text(prep.key_rule) + "; the baseline is prepare.baseline of climodes_config"})
+    if "trend" in prep.steps:
+        line = {"time_origin": prep.origin, "calendar": prep.calendar,
+                "comment": "line = fitted_trend_intercept + fitted_trend_slope * (days since time_origin), "
+                           "the least-squares line of the anomalies, removed after the climatology"}
+        out["fitted_trend_slope"] = xr.DataArray(
+            values["slope"], dims=space,
+            attrs={"long_name": "slope of the linear trend removed at each point",
+                   **({"units": f"{units} day-1"} if units else {}), **line})
+        out["fitted_trend_intercept"] = xr.DataArray(
+            values["intercept"], dims=space,
+            attrs={"long_name": "value of the linear trend at time_origin", **field_units, **line})
+    if "scale" in prep.steps:
+        out["fitted_scale"] = xr.DataArray(
+            values["scale"], dims=space,
+            attrs={"long_name": "standard deviation (ddof=1) each point was divided by", **field_units})
+    not_run = [text for name, text in _NOT_RUN.items() if name not in prep.steps]
+    out["fitted_offset"] = xr.DataArray(
+        values["offset"], dims=space,
+        attrs={"long_name": "time mean removed last (centring)",
+               **({"units": "1"} if "scale" in prep.steps else field_units),
+               "preparation_steps": " ".join(prep.steps + ("offset",)), "calendar": prep.calendar,
+               "comment": ("anomaly = (value after the steps in preparation_steps, a missing one set to 0) - "
+                           "fitted_offset; NaN where the point was not used (point_used); "
+                           f"not run: {', '.join(not_run) if not_run else 'none'}")})
+    return out
+
+
+def fitted_preparation(results: xr.Dataset) -> Fitted:
+    """The preparation a run fitted, read back from its results (:func:`climodes.results.open_results`).
+
+    Its quantities are shaped ``(..., lat, lon)`` like the results' ``eof``
+    maps, so it applies to a ``(time, lat, lon)`` field on the same grid::
+
+        results = open_results("results/run")
+        fitted = fitted_preparation(results)
+        keys = keys_of(new_field["time"], fitted)
+        anomalies = apply(new_field.values, fitted, keys)      # as the run prepared its own field
+        values = unapply(anomalies, fitted, keys)              # and back
+
+    Raises
+    ------
+    UserError
+        If the file holds no fitted preparation, or lacks a variable its steps need.
+    """
+    source = results.encoding.get("source", "the results file")
+    if "fitted_offset" not in results:
+        raise UserError(f"{source}: holds no fitted preparation (fitted_offset); it was written by an earlier "
+                        "climodes: run it again")
+    space = results["eof"].dims[1:]
+    offset = results["fitted_offset"]
+    steps = tuple(name for name in offset.attrs.get("preparation_steps", "").split() if name != "offset")
+    needed = {"climatology": ["fitted_climatology"], "trend": ["fitted_trend_slope", "fitted_trend_intercept"],
+              "scale": ["fitted_scale"]}
+    if absent := [name for step in steps for name in needed.get(step, [f"a step called {step}"]) if name not in results]:
+        raise UserError(f"{source}: fitted_offset says the steps {' '.join(steps)} ran, but {absent[0]} is not "
+                        "there; the file was changed after climodes wrote it: run climodes again")
+
+    def read(name: str, *first: str) -> np.ndarray:
+        return np.asarray(results[name].transpose(*first, *space).values, dtype=np.float64)
+
+    quantities = {"offset": read("fitted_offset")}
+    rule, keys, origin = "none", (0,), ""
+    if "climatology" in steps:
+        quantities["climatology"] = read("fitted_climatology", "calendar_key")
+        rule = results["fitted_climatology"].attrs["key_rule"]
+        keys = tuple(int(k) for k in results["calendar_key"].values)
+    if "trend" in steps:
+        quantities["slope"], quantities["intercept"] = read("fitted_trend_slope"), read("fitted_trend_intercept")
+        origin = results["fitted_trend_slope"].attrs["time_origin"]
+    if "scale" in steps:
+        quantities["scale"] = read("fitted_scale")
+    return Fitted(Preparation(steps, rule, keys, origin, offset.attrs.get("calendar", "")), quantities)

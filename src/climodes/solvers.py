@@ -62,7 +62,7 @@ from climodes.blocks import (
     tree_sum,
 )
 from climodes.errors import UserError
-from climodes.prepare import PERIOD, TimeSteps, time_bounds
+from climodes.prepare import PERIOD, Fitted, TimeSteps, fitted_variables, time_bounds
 from climodes.grid import grid_coordinates
 from climodes.weights import usable_points
 
@@ -117,18 +117,23 @@ def _size(nbytes: float) -> str:
 
 
 def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: int, workers: int,
-                in_use: int = 0) -> SolverPlan:
+                in_use: int = 0, fitted_per_point: int = 1) -> SolverPlan:
     """Choose the solver for a ``(time, lat, lon)`` field and a memory budget in bytes.
 
     ``auto`` takes ``exact`` for small matrices that fit, ``gram`` while the
     time x time matrix is small, and ``randomized`` beyond.  ``in_use`` is what
     the process holds already (the interpreter and its libraries, about 0.15 GB):
     the budget is for the whole process, so that much is not there to plan with.
+    ``fitted_per_point`` is how many values the preparation fits at each point
+    (:attr:`climodes.prepare.TimeSteps.values_per_point`: 367 for a daily
+    climatology), kept with the results.
     """
     steps, nlat, nlon = shape
     points = nlat * nlon
     budget_given, budget = budget, budget - in_use
-    results_bytes = 3 * points * count * 8  # the maps, as solved, signed and written
+    # the maps, as solved, signed and written; the fitted preparation, held from the first pass on (in the
+    # working precision: float32 for the randomized solver, as a field's blocks are planned in float32)
+    results_bytes = 3 * points * count * 8 + points * fitted_per_point * (4 if method == "randomized" else 8)
     exact_bytes = 3 * steps * points * 8 + steps * min(steps, points) * 8
     held = workers + 3 + int(np.ceil(np.log2(max(nlat, 2))))  # partial sums alive in the pairwise tree, at most
     gram_bytes = held * steps * steps * 8 + results_bytes
@@ -431,7 +436,9 @@ def solve(field: xr.DataArray, weights: xr.DataArray, count: int, max_missing: f
     -------
     modes, decomposition, counts
         ``modes`` holds ``eof(mode, lat, lon)`` (NaN at unused points),
-        ``pc(mode, time)``, ``eigenvalue(mode)`` and ``variance_explained(mode)``, and, for
+        ``pc(mode, time)``, ``eigenvalue(mode)`` and ``variance_explained(mode)``; the preparation
+        fitted at each point in the first pass (:func:`climodes.prepare.fitted_variables`, NaN at
+        unused points), ``area_weight(lat, lon)`` (``weights``), ``point_used(lat, lon)`` and, for
         seasonal or annual means, ``time_bnds``.
     """
     progress = progress or (lambda label: contextlib.nullcontext())
@@ -439,11 +446,11 @@ def solve(field: xr.DataArray, weights: xr.DataArray, count: int, max_missing: f
     if plan.method != "exact" and field.chunks is None:
         field = field.chunk({"lat": plan.lat_rows or -1})
     if plan.method == "exact":
-        result, fraction, _ = _exact(field, w, count, max_missing, progress, steps)
+        result, fraction, fitted = _exact(field, w, count, max_missing, progress, steps)
     elif plan.method == "gram":
-        result, fraction, _ = _gram(field, w, count, max_missing, progress, steps)
+        result, fraction, fitted = _gram(field, w, count, max_missing, progress, steps)
     else:
-        result, fraction, _ = _randomized(field, w, count, max_missing, progress, seed, steps)
+        result, fraction, fitted = _randomized(field, w, count, max_missing, progress, seed, steps)
     counts = _counts(fraction, max_missing, field.sizes["time"])
     if result.total_variance == 0 or result.eigenvalues[0] <= 1e-12 * max(result.total_variance, 1e-300):
         raise UserError("input.variable: the prepared field is constant in time at every point, "
@@ -453,13 +460,24 @@ def solve(field: xr.DataArray, weights: xr.DataArray, count: int, max_missing: f
     result.pcs *= signs
     result.patterns *= signs
 
-    maps = result.patterns.T.reshape(count, field.sizes["lat"], field.sizes["lon"])
+    grid = (field.sizes["lat"], field.sizes["lon"])
+    used = usable_points(fraction, max_missing)
+    for values in fitted.values():  # the preparation of the points the modes were computed from
+        values[..., ~used] = np.nan
+    fitted = Fitted(steps.preparation, {name: values.reshape(values.shape[:-1] + grid) for name, values in fitted.items()})
     modes = xr.Dataset(
         {
-            "eof": (("mode", "lat", "lon"), maps),
+            "eof": (("mode", "lat", "lon"), result.patterns.T.reshape((count, *grid))),
             "pc": (("mode", "time"), result.pcs.T),
             "eigenvalue": ("mode", result.eigenvalues),
             "variance_explained": ("mode", result.eigenvalues / result.total_variance),
+            **fitted_variables(fitted, field.attrs.get("units")),
+            "area_weight": (("lat", "lon"), w.reshape(grid),
+                            {"long_name": "square root of the area weight each anomaly was multiplied by",
+                             "units": "1"}),
+            "point_used": (("lat", "lon"), used.reshape(grid).astype(np.int8),
+                           {"long_name": "grid point used in the decomposition (the missing-data rule)",
+                            "flag_values": np.array([0, 1], dtype=np.int8), "flag_meanings": "not_used used"}),
         },
         coords={"mode": np.arange(1, count + 1), **time_bounds(field),
                 **{name: coord.variable for name, coord in field.coords.items() if name not in ("cell_area", *PERIOD)}},
