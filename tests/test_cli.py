@@ -139,6 +139,14 @@ def _disk_full(tmp_path, monkeypatch):
     return [_ok(tmp_path)], {}
 
 
+def _daily_baseline_short(tmp_path, *_):
+    """Daily steps keyed by calendar day: a baseline that ends in November has no 1 December."""
+    path = tmp_path / "daily.nc"
+    time = xr.date_range("2001-01-01", periods=730, freq="D")
+    field_dataset(red_field((730, 4, 5)), np.linspace(-30, 30, 4), np.arange(0, 50.0, 10), time=time).to_netcdf(path)
+    return [path], {"modes": {"count": 2}, "prepare": {"baseline": ["2001-01-01", "2001-11-30"]}}
+
+
 CATALOGUE = {
     "missing file": (lambda t, m: ([t / "absent.nc"], {}), "absent.nc: no such file"),
     "empty glob": (lambda t, m: ([t / "nothing_*.nc"], {}), "matches no file"),
@@ -164,6 +172,9 @@ CATALOGUE = {
     "output inside a file": (_inside_a_file, "which is a file; choose another folder"),
     "bad yaml syntax": (_bad_yaml, "run.yaml:3: not valid YAML"),
     "disk full": (_disk_full, "output.dir: cannot write the results to"),
+    # preparation
+    "baseline without a calendar day": (_daily_baseline_short, "prepare.baseline: ['2001-01-01', '2001-11-30'] has no "
+                                                               "data for day 12-01"),
 }
 
 
