@@ -138,6 +138,15 @@ def test_a_season_missing_a_month_at_a_point_is_missing_there():
     np.testing.assert_allclose(values[:, 1, 2], [12.0, 24.0])
 
 
+def test_means_of_a_field_in_many_chunks_stay_in_blocks_no_bigger():
+    """The means need every step of a point in one block; joining the time chunks must not make the
+    blocks bigger than the chunks planned (the streaming solvers size their blocks by compute.memory)."""
+    field = _monthly(np.arange(120.0)).chunk({"time": 40, "lat": 1})  # e.g. three files of 40 steps
+    years = aggregate(field, "annual", None, [])
+    assert years.data.chunks[0] == (10,) and max(years.data.chunks[1]) == 1
+    np.testing.assert_allclose(years.values[:, 1, 2], np.arange(10) * 12 + 5.5)
+
+
 def test_a_daily_season_is_missing_only_where_a_whole_month_is():
     """Daily steps: a winter mean is of the days present, and missing where a month has no day at all."""
     time = pd.date_range("1990-12-01", "1991-02-28", freq="D")

@@ -90,8 +90,9 @@ def aggregate(da: xr.DataArray, how: str, months: list[int] | None, notes: list[
     kwargs = dict(period=label, month=month[steps], count=len(kept))
     if subset.chunks:
         data = subset.data
-        if len(data.chunks[0]) > 1:  # every step of a point in one block; blocks kept near dask's chunk size
-            data = data.rechunk({0: -1, 1: "auto"})
+        if len(data.chunks[0]) > 1:  # every step of a point in one block, no bigger than the chunks it joins
+            rows = max(1, max(data.chunks[1]) * max(data.chunks[0]) // data.shape[0])
+            data = data.rechunk({0: -1, 1: rows})
         data = data.map_blocks(_period_means, **kwargs, chunks=((len(kept),),) + data.chunks[1:], dtype=da.dtype)
     else:
         data = _period_means(np.asarray(subset.values), **kwargs)
