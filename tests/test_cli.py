@@ -239,6 +239,12 @@ def _home(tmp_path, monkeypatch):
     (tmp_path / "home").mkdir()
     monkeypatch.setenv("HOME", str(tmp_path / "home"))
     return [_ok(tmp_path)], {"output": {"dir": "~", "overwrite": True}}
+def _daily_baseline_short(tmp_path, *_):
+    """Daily steps keyed by calendar day: a baseline that ends in November has no 1 December."""
+    path = tmp_path / "daily.nc"
+    time = xr.date_range("2001-01-01", periods=730, freq="D")
+    field_dataset(red_field((730, 4, 5)), np.linspace(-30, 30, 4), np.arange(0, 50.0, 10), time=time).to_netcdf(path)
+    return [path], {"modes": {"count": 2}, "prepare": {"baseline": ["2001-01-01", "2001-11-30"]}}
 
 
 CATALOGUE = {
@@ -361,6 +367,9 @@ CATALOGUE = {
     "output.dir is the home folder": (_home, "is your home folder, which climodes never replaces"),
     "output.dir is the root": (lambda t, m: ([_ok(t)], {"output": {"dir": "/", "overwrite": True}}),
                                "is the root of the file system"),
+    # preparation
+    "baseline without a calendar day": (_daily_baseline_short, "prepare.baseline: ['2001-01-01', '2001-11-30'] has no "
+                                                               "data for day 12-01"),
 }
 
 # found only once the field's values are read or the results written: `climodes check` cannot see them

@@ -144,3 +144,91 @@ def test_the_level_analysed_is_a_scalar_coordinate(tmp_path, cli):
         assert "coordinates" not in nc["crs"].ncattrs()
     done = cf_strict(tmp_path / "out" / "modes.nc")
     assert done.returncode == 0, done.stdout[-3000:]
+
+
+@pytest.mark.parametrize("how", ["monthly, winter means", "daily noleap, annual means"])
+def test_means_carry_cf_time_bounds(tmp_path, cli, how):
+    """CF-1.10 section 7.1 (cell boundaries) and 7.3 (cell_methods), checked by the compliance-checker: each
+    mean's bounds run from its first month's (or day's) start to its last one's end."""
+    from conftest import cf_strict
+
+    lat, lon = np.linspace(-40, 40, 5), np.arange(0.0, 60, 10)
+    if how.startswith("monthly"):
+        time = xr.date_range("1990-01-01", periods=72, freq="MS")
+        section = {"select": {"months": [12, 1, 2]}, "prepare": {"aggregate": "seasonal"}}
+        expected = [["1990-12-01", "1991-03-01"], ["1991-12-01", "1992-03-01"]]
+    else:
+        time = xr.date_range("2001-01-01 12:00", periods=6 * 365, freq="D", calendar="noleap", use_cftime=True)
+        section = {"prepare": {"aggregate": "annual"}}
+        expected = [["2001-01-01", "2002-01-01"], ["2002-01-01", "2003-01-01"]]
+    path = tmp_path / "field.nc"
+    field_dataset(red_field((time.size, 5, 6), 1), lat, lon, time=time).to_netcdf(
+        path, encoding={"time": {"units": "days since 1950-01-01"}})
+    code, _, err = cli("run", write_config(tmp_path, [path], modes={"count": 2}, **section))
+    assert code == 0, err
+    ds = xr.open_dataset(tmp_path / "out" / "modes.nc")
+    assert ds["time"].attrs["bounds"] == "time_bnds" and ds["pc"].attrs["cell_methods"] == "time: mean"
+    bounds = ds["time_bnds"].values[:2]
+    assert [[str(t)[:10] for t in pair] for pair in bounds] == expected
+    assert np.all((bounds[:, 0] <= ds["time"].values[:2]) & (ds["time"].values[:2] < bounds[:, 1]))
+    done = cf_strict(tmp_path / "out" / "modes.nc")
+    assert done.returncode == 0, done.stdout[-3000:]
+
+
+def test_the_fitted_preparation_is_stored_and_read_back(tmp_path, cli):
+    """The fit travels through modes.nc (CF-1.10 strict, units per variable), is read back by
+    fitted_preparation and, applied to the input file, gives the anomalies the modes came from: with every
+    mode kept, sum_k pc_k eof_k (our results contract)."""
+    from conftest import cf_strict
+
+    from climodes.prepare import apply, fitted_preparation, keys_of
+    from climodes.results import open_results
+
+    lat, lon = np.linspace(-35, 35, 8), np.arange(0.0, 100, 10)
+    time = xr.date_range("1990-01-01", periods=48, freq="MS") + np.timedelta64(14, "D")
+    month = xr.DataArray(time, dims="time").dt.month.values
+    values = 285 + 6 * np.cos(2 * np.pi * month / 12)[:, None, None] + red_field((48, 8, 10), 5)
+    values[[4, 30], 2, 3] = np.nan  # filled
+    values[:, 0, 0] = np.nan  # land
+    path = tmp_path / "tas.nc"
+    field_dataset(values, lat, lon, time=time).to_netcdf(path)
+    code, _, err = cli("run", write_config(tmp_path, [path], modes={"count": 47},
+                                           prepare={"baseline": ["1990", "1992"], "detrend": "linear"}))
+    assert code == 0, err
+    with netCDF4.Dataset(tmp_path / "out" / "modes.nc") as nc:
+        units = {name: nc[name].units for name in ("fitted_climatology", "fitted_trend_slope",
+                                                    "fitted_trend_intercept", "fitted_offset", "area_weight")}
+        assert units == {"fitted_climatology": "K", "fitted_trend_slope": "K day-1", "fitted_trend_intercept": "K",
+                         "fitted_offset": "K", "area_weight": "1"}
+        assert nc["fitted_climatology"].dimensions == ("calendar_key", "lat", "lon")
+        assert nc["fitted_climatology"].key_rule == "month" and nc["calendar_key"][:].tolist() == list(range(1, 13))
+        assert all(nc[name].datatype == np.float64 for name in units)
+        assert nc["fitted_trend_slope"].time_origin == "1990-01-15T00:00:00"
+        assert nc["fitted_offset"].preparation_steps == "climatology trend offset"
+        assert "not run: scale (prepare.standardize: false)" in nc["fitted_offset"].comment
+        assert "fitted_scale" not in nc.variables
+        status = nc["point_status"][:]
+        assert (status == 2).sum() == 79 and status[0, 0] != 2
+    results = open_results(tmp_path / "out")
+    fitted = fitted_preparation(results)
+    field = xr.open_dataset(path)["tas"]
+    anomalies = apply(field.values, fitted, keys_of(field["time"], fitted))
+    decomposed = np.einsum("kt,kyx->tyx", results["pc"].values, results["eof"].values)
+    used = results["point_status"].values == 2
+    np.testing.assert_allclose(anomalies[:, used], decomposed[:, used], rtol=0, atol=1e-10 * np.nanmax(decomposed))
+    done = cf_strict(tmp_path / "out" / "modes.nc")
+    assert done.returncode == 0, done.stdout[-3000:]
+
+
+def test_only_the_steps_that_ran_are_stored(tmp_path, small_field, cli):
+    code, _, err = cli("run", write_config(tmp_path, [small_field], modes={"count": 2},
+                                           prepare={"anomalies": "none", "standardize": True}))
+    assert code == 0, err
+    ds = xr.open_dataset(tmp_path / "out" / "modes.nc")
+    assert [name for name in ds.data_vars if name.startswith("fitted_")] == ["fitted_scale", "fitted_offset"]
+    assert ds["fitted_scale"].attrs["units"] == "K" and ds["fitted_offset"].attrs["units"] == "1"
+    assert ds["fitted_offset"].attrs["preparation_steps"] == "scale offset"
+    assert "not run: climatology (prepare.anomalies: none), trend (prepare.detrend: none)" in ds["fitted_offset"].attrs[
+        "comment"]
+    np.testing.assert_allclose(ds["area_weight"].values ** 2, np.cos(np.deg2rad(ds["lat"].values))[:, None]
+                               * np.ones(ds.sizes["lon"]), rtol=1e-12)  # sqrt(cos(lat)) (coslat weighting)

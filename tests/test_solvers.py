@@ -158,7 +158,7 @@ def test_count_above_the_rank_keeps_only_the_non_null_modes(method, dtype):
     np.testing.assert_allclose(modes["variance_explained"].values.sum(), 1.0, rtol=1e-5)
     assert result.next_eigenvalue == 0.0
     assert result.notes[-1] == ("modes.count asks for 6 modes, but the prepared field has only 3 that are not null "
-                                "(eigenvalue 4 is below 1e-08 of the first): 3 modes kept")
+                                "(eigenvalue 4 is below 1e-13 of the first): 3 modes kept")
 
 
 @pytest.mark.parametrize("method", ["exact", "gram"])

@@ -161,20 +161,27 @@ def test_streaming_solvers_apply_the_preparation_like_exact(raw_field, how):
     assert exact[2].too_often_missing == 1 and exact[2].always_missing == 15
 
 
-def test_the_steps_run_on_each_block_in_the_first_pass_only(field):
+def test_the_steps_run_on_each_block_in_the_first_pass_only(field, monkeypatch):
     """The point of the cheap path: after the first pass, complete points are multiplied as read and
     the steps act only on small matrices (an identity-width chunk of 150 columns at most here)."""
-    from climodes.prepare import TimeSteps
+    import dataclasses
+
+    import pandas as pd
+
+    from climodes.prepare import STEPS, climatology_step
 
     widths = []
+    step = STEPS["climatology"]
 
-    def minus_mean(values):  # anomalies against the mean: linear
+    def fit_and_count(values, keys):
         widths.append(values.shape[1])
-        return values - values.mean(axis=0)
+        return step.fit(values, keys)
 
+    monkeypatch.setitem(STEPS, "climatology", dataclasses.replace(step, fit=fit_and_count))
+    dated = field.assign_coords(time=pd.date_range("1900-01-01", periods=field.sizes["time"], freq="MS"))
     weights = area_weights(field["lat"], field["lon"], "coslat")
-    _, result, _ = solve(field.chunk({"lat": 11, "time": -1}), weights, K, 0.2, SolverPlan("randomized", "t", 11),
-                         steps=TimeSteps().then(minus_mean))
+    _, result, _ = solve(dated.chunk({"lat": 11, "time": -1}), weights, K, 0.2, SolverPlan("randomized", "t", 11),
+                         steps=climatology_step(dated, "mean", None))  # anomalies against the mean: linear
     passes = int(re.search(r"converged in (\d) passes", result.method).group(1))
     assert passes >= 3
     assert sum(w > field.sizes["time"] for w in widths) == 3  # the 3 blocks of 11 rows (528 points), once
@@ -299,3 +306,83 @@ def test_every_method_gives_the_same_run(tmp_path, cli, raw_field, scheduler):
     assert results["exact"].sizes["time"] == 15  # winters 1982..1996; 1981 lacks its December
     _close(results["gram"], results["exact"], 1e-8)
     _close(results["randomized"], results["exact"], 1e-4)
+
+
+def _archive_field(freq: str, periods: int, ny: int, nx: int, dtype=np.float64) -> xr.DataArray:
+    """A field as archives hold it (280 K, a seasonal cycle, a trend, red noise) with land, a gappy point
+    that is filled and a gappier one that is dropped."""
+    lat, lon = np.linspace(-60, 60, ny), np.arange(nx) * (360 / nx)
+    time = xr.date_range("1981-01-01", periods=periods, freq=freq)
+    day = xr.DataArray(time, dims="time").dt.dayofyear.values
+    season = 12 * np.cos(2 * np.pi * (day - 1) / 365.25)[:, None, None] * np.sin(np.deg2rad(lat))[:, None]
+    trend = 0.0005 * np.arange(periods)[:, None, None] * np.cos(np.deg2rad(lon))
+    values = (280 + season + trend + red_field((periods, ny, nx), 4)).astype(dtype)
+    values[:, 3:5, 4:6] = np.nan
+    values[::11, 6, 7] = np.nan
+    values[::2, 7, 8] = np.nan
+    return xr.DataArray(values, dims=("time", "lat", "lon"), coords={"time": time, "lat": lat, "lon": lon})
+
+
+def _winters(field: xr.DataArray) -> xr.DataArray:
+    return field.isel(time=np.flatnonzero(np.isin(field["time"].dt.month, [12, 1, 2])))
+
+
+FITTED = {  # field, preparation, months
+    "monthly climatology": (lambda: _archive_field("MS", 180, 12, 18), PrepareSection(max_missing=0.2), None),
+    "daily climatology": (lambda: _archive_field("D", 731, 28, 28), PrepareSection(max_missing=0.2), None),
+    "baseline and trend": (lambda: _archive_field("MS", 180, 12, 18),
+                           PrepareSection(baseline=["1983-01-01", "1986-12-31"], detrend="linear", max_missing=0.2),
+                           None),
+    "standardized": (lambda: _archive_field("MS", 180, 12, 18),
+                     PrepareSection(detrend="linear", standardize=True, max_missing=0.2), None),
+    "winter means": (lambda: _winters(_archive_field("MS", 360, 12, 18)),
+                     PrepareSection(aggregate="seasonal", baseline=["1982", "1990"], detrend="linear",
+                                    max_missing=0.3), [12, 1, 2]),
+}
+
+
+@pytest.mark.parametrize("how, method", [
+    pytest.param(how, method, marks=[pytest.mark.slow] if (how, method) == ("daily climatology", "randomized") else [])
+    for how in FITTED for method in ("exact", "gram", "randomized")])
+def test_the_stored_fit_gives_back_the_anomalies_each_solver_decomposed(how, method):
+    """With every mode kept, sum_k pc_k eof_k is the anomaly matrix the solver decomposed (our results
+    contract: eof is the regression of the anomaly on the standardised PC, and the PCs span its time
+    space).  The fit the first pass returned, applied to the training field, gives that matrix to 1e-10,
+    at the filled steps of a gappy point too; unapply gives the field back."""
+    from climodes.prepare import apply, fitted_preparation, keys_of, unapply
+
+    make, spec, months = FITTED[how]
+    field, steps = time_steps(make(), spec, months, [])
+    weights = area_weights(field["lat"], field["lon"], "coslat")
+    n = field.sizes["time"]
+    data = field if method == "exact" else field.chunk({"lat": 4, "time": -1})
+    modes, _, counts = solve(data, weights, n - 1, spec.max_missing, SolverPlan(method, "test", 4), steps=steps)
+    assert counts.used < counts.grid and counts.filled_values > 0
+    fitted = fitted_preparation(modes)
+    keys = keys_of(field["time"], fitted)
+    anomalies = apply(field.values, fitted, keys)
+    used = modes["point_status"].values == 2
+    decomposed = np.einsum("kt,kyx->tyx", modes["pc"].values, modes["eof"].values)
+    np.testing.assert_allclose(anomalies[:, used], decomposed[:, used], rtol=0, atol=1e-10 * np.nanmax(np.abs(decomposed)))
+    assert np.isnan(anomalies[:, ~used]).all()
+    valid = ~np.isnan(field.values) & used
+    np.testing.assert_allclose(unapply(anomalies, fitted, keys)[valid], field.values[valid], rtol=1e-13)
+
+
+def test_a_float32_field_keeps_the_fit_the_randomized_solver_applied():
+    """The randomized solver forms a float32 field's anomalies in float32; the fit it keeps is in that
+    precision, so it is exactly what was applied: the round trip holds to float32 precision."""
+    from climodes.prepare import apply, fitted_preparation, keys_of
+
+    field, steps = time_steps(_archive_field("MS", 120, 12, 18, np.float32), PrepareSection(detrend="linear",
+                                                                                             max_missing=0.2), None, [])
+    weights = area_weights(field["lat"], field["lon"], "coslat")
+    modes, _, _ = solve(field.chunk({"lat": 4, "time": -1}), weights, 119, 0.2, SolverPlan("randomized", "test", 4),
+                        steps=steps)
+    assert modes["fitted_climatology"].dtype == np.float32 and modes["fitted_offset"].dtype == np.float32
+    fitted = fitted_preparation(modes)
+    anomalies = apply(field.values, fitted, keys_of(field["time"], fitted))
+    assert anomalies.dtype == np.float32
+    used = modes["point_status"].values == 2
+    decomposed = np.einsum("kt,kyx->tyx", modes["pc"].values, modes["eof"].values)
+    np.testing.assert_allclose(anomalies[:, used], decomposed[:, used], rtol=0, atol=1e-5 * np.nanmax(np.abs(decomposed)))

@@ -8,6 +8,11 @@ transpose, to their small (time x modes) products, once per pass instead of once
 with missing values, and every point when a step is not linear (standardising), take the full path:
 steps, missing-data rule and centring on the block itself.
 
+Every step is fitted and applied by the same functions (:class:`~climodes.prepare.TimeSteps`) on a
+block's columns and in L.  The first pass also returns, per block, each point's missing fraction and
+the preparation fitted on its series (the climatology, trend and offset of a cheap point are fitted
+on the block as read, a few columns at a time): the fit stored with the results, with no extra read.
+
 The randomized solver works in the field's precision (float32 stays float32 in
 flight); each block's small product is returned in float64, so the sums over
 blocks accumulate in float64.
@@ -22,24 +27,23 @@ import dask
 import numpy as np
 import xarray as xr
 
-from climodes.prepare import TimeSteps
+from climodes.prepare import TimeSteps, centre, fit
 from climodes.weights import usable_points
 
 
-def prepare_block(values: np.ndarray, max_missing: float, dtype=np.float64) -> tuple[np.ndarray, np.ndarray]:
-    """Apply the missing-data rule to a ``(time, point)`` block and centre it.
+def prepare_block(prepared: np.ndarray, max_missing: float, dtype=np.float64):
+    """Apply the missing-data rule to a prepared ``(time, point)`` block and centre it.
 
     Returns the anomaly block in ``dtype`` (missing values set to zero, then
-    centred; unusable points all zero) and each point's missing fraction.
+    centred by :func:`climodes.prepare.centre`; unusable points all zero),
+    each point's missing fraction and the offset the centring removed.
     """
-    block = np.array(values, dtype=dtype).reshape(values.shape[0], -1)  # a copy: never change the input
-    missing = np.isnan(block)
-    fraction = missing.mean(axis=0)
+    block = np.asarray(prepared, dtype=dtype).reshape(prepared.shape[0], -1)
+    fraction = np.isnan(block).mean(axis=0)
     keep = usable_points(fraction, max_missing)
-    block[missing] = 0.0
-    block -= block.mean(axis=0, dtype=np.float64).astype(dtype)
+    block, offset = centre(block)  # a new array: never change the input
     block[:, ~keep] = 0.0
-    return block, fraction
+    return block, fraction, offset
 
 
 def _columns(block: np.ndarray, which: np.ndarray) -> np.ndarray:
@@ -47,23 +51,38 @@ def _columns(block: np.ndarray, which: np.ndarray) -> np.ndarray:
     return block if which.all() else np.compress(which, block, axis=1)
 
 
-def full_path(block: np.ndarray, which: np.ndarray, steps: TimeSteps, max_missing: float, dtype):
-    """Anomalies of the ``which`` points of a ``(time, point)`` block: steps, missing-data rule, centring.
+def _place(fitted: dict, which: np.ndarray, part: dict) -> None:
+    """Put the fitted quantities of the ``which`` points of a block (``part``) into the block's ``fitted``."""
+    for name, values in part.items():
+        fitted[name][..., which] = values
 
-    Points missing at every step (land in a sea field) are zero at once: the steps would only spend
-    NaN-skipping means on them.
+
+def _prepared(points: np.ndarray, steps: TimeSteps, max_missing: float, dtype):
+    prepared, fitted = steps.fit_apply(points)
+    anomaly, fraction, fitted["offset"] = prepare_block(prepared, max_missing, dtype)
+    return anomaly, fraction, fitted
+
+
+def full_path(block: np.ndarray, which: np.ndarray, steps: TimeSteps, max_missing: float, dtype):
+    """Anomalies of the ``which`` points of a ``(time, point)`` block: the steps fitted and applied, the
+    missing-data rule, centring.  Returns them, the points' missing fractions and their fitted quantities.
+
+    Points missing at every step (land in a sea field) are zero at once, with NaN quantities: the steps
+    would only spend NaN-skipping means on them.
     """
     points = _columns(block, which)
+    fitted = steps.blank(points.shape[1], dtype)
     if points.shape[1] == 0:
-        return np.zeros((block.shape[0], 0), dtype=dtype), np.zeros(0)
+        return np.zeros((block.shape[0], 0), dtype=dtype), np.zeros(0), fitted
     has_data = ~np.isnan(points).all(axis=0)
     if has_data.all():
-        return prepare_block(steps(points.astype(dtype, copy=False)), max_missing, dtype)
+        return _prepared(points.astype(dtype, copy=False), steps, max_missing, dtype)
     anomaly, fraction = np.zeros(points.shape, dtype=dtype), np.ones(points.shape[1])
     if has_data.any():
-        anomaly[:, has_data], fraction[has_data] = prepare_block(steps(_columns(points, has_data).astype(dtype)),
-                                                                 max_missing, dtype)
-    return anomaly, fraction
+        anomaly[:, has_data], fraction[has_data], part = _prepared(_columns(points, has_data).astype(dtype), steps,
+                                                                   max_missing, dtype)
+        _place(fitted, has_data, part)
+    return anomaly, fraction, fitted
 
 
 def _centred(points: np.ndarray, dtype) -> np.ndarray:
@@ -76,15 +95,31 @@ def _cheap_path(block: np.ndarray, which: np.ndarray, dtype) -> np.ndarray:
     return _centred(_columns(block, which), dtype)
 
 
+FIT_VALUES = 2**21  # values of a block fitted at a time on the cheap path: the steps' working copies stay small
+
+
+def _fitted(block: np.ndarray, which: np.ndarray, steps: TimeSteps) -> dict:
+    """The preparation fitted on the ``which`` points of a block as read (in float64), a few columns at a
+    time; their anomalies are not kept (the cheap path makes them from the small products)."""
+    points = _columns(block, which)
+    fitted = steps.blank(points.shape[1])
+    width = max(1, FIT_VALUES // block.shape[0])
+    for start in range(0, points.shape[1], width):
+        for name, values in fit(points[:, start:start + width].astype(np.float64), steps).quantities.items():
+            fitted[name][..., start:start + width] = values
+    return fitted
+
+
 def _squares(block: np.ndarray) -> np.ndarray:
     """Each column's sum of squares, accumulated in float64."""
     return np.einsum("ij,ij->j", block, block, dtype=np.float64)
 
 
 def time_operator(steps: TimeSteps, series: np.ndarray) -> np.ndarray:
-    """``L @ series``: the prepare steps then centring, applied to the columns of a ``(time, k)`` matrix."""
-    out = steps(series)
-    return out - out.mean(axis=0)
+    """``L @ series``: the prepare steps fitted and applied, then centring, on the columns of a ``(time, k)``
+    matrix.  Each fit is linear in a complete series (a mean per calendar key, a least-squares line, a time
+    mean), so this is a linear map, and the same functions as on the field's own columns."""
+    return centre(steps(series))[0]
 
 
 def time_operator_transposed(steps: TimeSteps, series: np.ndarray, width: int = 512) -> np.ndarray:
@@ -126,34 +161,43 @@ def _product(points: np.ndarray, other: np.ndarray):
 
 
 def gram_part(values, weights, max_missing, steps):
-    """The block's ``X X^T``: from the cheap points (L still to apply) and the full-path ones, float64."""
+    """The block's ``X X^T``: from the cheap points (L still to apply) and the full-path ones, float64; and
+    the block's missing fractions and fitted quantities."""
     block = flat(values)
     cheap = _complete(block, steps)
     fraction = np.zeros(block.shape[1])
+    fitted = steps.blank(block.shape[1])
+    _place(fitted, cheap, _fitted(block, cheap, steps))
     read = _cheap_path(block, cheap, np.float64)
     read *= weights[cheap]
-    full, fraction[~cheap] = full_path(block, ~cheap, steps, max_missing, np.float64)
+    full, fraction[~cheap], part = full_path(block, ~cheap, steps, max_missing, np.float64)
+    _place(fitted, ~cheap, part)
     full *= weights[~cheap]
-    return _product(read, read.T), _product(full, full.T), [fraction]
+    return _product(read, read.T), _product(full, full.T), [(fraction, fitted)]
 
 
 def range_part(values, weights, max_missing, omega, steps):
-    """The block's ``A w Omega`` and its share of the total variance ``sum(A w)^2``.
+    """The block's ``A w Omega`` and its share of the total variance ``sum(A w)^2``; and the block's missing
+    fractions and fitted quantities.
 
-    The total variance needs every anomaly, so this pass applies the steps to the block itself; the
-    complete points (see :func:`_complete`) skip the missing-data rule, and their weights go into
+    The total variance needs every anomaly, so this pass fits and applies the steps on the block itself;
+    the complete points (see :func:`_complete`) skip the missing-data rule, and their weights go into
     ``Omega`` rather than into the block.
     """
     block = flat(values)
     work = omega.dtype
     complete = _complete(block, steps)
     fraction = np.zeros(block.shape[1])
-    anomaly = _centred(steps(_columns(block, complete).astype(work, copy=False)), work)
-    full, fraction[~complete] = full_path(block, ~complete, steps, max_missing, work)
+    fitted = steps.blank(block.shape[1], work)
+    prepared, part = steps.fit_apply(_columns(block, complete).astype(work, copy=False))
+    anomaly, part["offset"] = centre(prepared)
+    _place(fitted, complete, part)
+    full, fraction[~complete], part = full_path(block, ~complete, steps, max_missing, work)
+    _place(fitted, ~complete, part)
     total = _squares(anomaly) @ weights[complete] ** 2 + _squares(full) @ weights[~complete] ** 2
     sample = (anomaly @ (omega[complete] * weights[complete, None]).astype(work)).astype(np.float64)
     sample += full @ (omega[~complete] * weights[~complete, None]).astype(work)
-    return sample, float(total), [fraction]
+    return sample, float(total), [(fraction, fitted)]
 
 
 def power_part(values, weights, max_missing, cheap, gappy, basis, basis_t, steps):
@@ -166,7 +210,7 @@ def power_part(values, weights, max_missing, cheap, gappy, basis, basis_t, steps
     read = _cheap_path(block, cheap, work)
     projected[cheap] = read.T @ basis_t
     read_product = _product(read, (projected[cheap] * weights[cheap, None] ** 2).astype(work))
-    full, _ = full_path(block, gappy, steps, max_missing, work)
+    full = full_path(block, gappy, steps, max_missing, work)[0]
     projected[gappy] = full.T @ basis
     full_product = _product(full, (projected[gappy] * weights[gappy, None] ** 2).astype(work))
     return read_product, full_product, [projected]
@@ -185,6 +229,24 @@ def _add(a, b):
     if isinstance(a, tuple):
         return tuple(x + y for x, y in zip(a, b))
     return a + b
+
+
+def joined(pieces: list[tuple[np.ndarray, dict]]) -> tuple[np.ndarray, dict]:
+    """The blocks' ``(missing fraction, fitted quantities)`` pieces, in block order, as whole-grid arrays.
+
+    The pieces are taken off the list as they are copied, so the memory held is that of the whole
+    grid's quantities and one block's, not twice the grid's.
+    """
+    fraction = np.concatenate([f for f, _ in pieces])
+    fitted = {name: np.empty(q.shape[:-1] + (fraction.size,), dtype=q.dtype) for name, q in pieces[0][1].items()}
+    start = 0
+    while pieces:
+        _, part = pieces.pop(0)
+        width = next(iter(part.values())).shape[-1]
+        for name, values in part.items():
+            fitted[name][..., start:start + width] = values
+        start += width
+    return fraction, fitted
 
 
 def tree_sum(parts: list):

@@ -137,6 +137,10 @@ def results_dataset(modes: xr.Dataset, opened: OpenedField, spec: RunSpec, extra
         rows = {opened.names["lat"]: GRID_Y, opened.names["lon"]: GRID_X}
         ds = ds.drop_vars([GRID_Y, GRID_X], errors="ignore").assign_coords(
             {dim: (dim, ds[inner].values, ds[inner].attrs) for dim, inner in rows.items() if inner in ds.coords})
+    if "time_bnds" in ds:  # each step is a mean over the interval its bounds give
+        time_name = opened.names["time"]
+        ds[time_name].attrs["bounds"] = "time_bnds"
+        ds["pc"].attrs["cell_methods"] = f"{time_name}: mean"
     ds.attrs = provenance(spec, opened, extra)
     return ds
 

@@ -106,7 +106,7 @@ def _plan(spec: RunSpec) -> Planned:
     field, along_time, notes = _prepared(spec, opened)
     workers = worker_count(spec.compute)
     plan = plan_solver(field.shape, spec.modes.count, spec.modes.method, memory_bytes(spec.compute.memory), workers,
-                       in_use=resident_bytes())
+                       in_use=resident_bytes(), fitted_per_point=along_time.values_per_point)
     steps = field.sizes["time"]
     if steps < spec.modes.count + 1:
         raise UserError(f"modes.count: {spec.modes.count} modes need at least {spec.modes.count + 1} time steps, "

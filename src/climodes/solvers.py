@@ -50,6 +50,7 @@ from climodes.blocks import (
     flat,
     full_path,
     gram_part,
+    joined,
     path_points,
     power_part,
     quietly,
@@ -61,14 +62,14 @@ from climodes.blocks import (
     tree_sum,
 )
 from climodes.errors import UserError
-from climodes.prepare import TimeSteps
 from climodes.grid import grid_coordinates
-from climodes.weights import usable_points
+from climodes.prepare import PERIOD, Fitted, TimeSteps, fitted_variables, time_bounds
+from climodes.weights import point_status, usable_points
 
 OVERSAMPLING = 10
 POWER_ITERATIONS = 3  # at most; the randomized solver stops earlier once converged
 RITZ_TOLERANCE = 1e-4  # residual of a kept mode, relative to its eigenvalue (see _converged)
-NULL_TOLERANCE = 1e-8  # an eigenvalue below this fraction of the leading one is null (see _drop_null_modes)
+NULL_TOLERANCE = 1e-13  # an eigenvalue below this fraction of the leading one is null (see _drop_null_modes)
 EXACT_MAX_VALUES = 5_000_000  # time steps x points up to which the exact solver is chosen
 GRAM_MAX_STEPS = 2_000  # the Gram product costs steps^2 x points: beyond this, randomized passes are cheaper
 BLOCK_MAX_BYTES = 128e6  # float32 bytes of one block as read
@@ -117,18 +118,23 @@ def _size(nbytes: float) -> str:
 
 
 def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: int, workers: int,
-                in_use: int = 0) -> SolverPlan:
+                in_use: int = 0, fitted_per_point: int = 1) -> SolverPlan:
     """Choose the solver for a ``(time, lat, lon)`` field and a memory budget in bytes.
 
     ``auto`` takes ``exact`` for small matrices that fit, ``gram`` while the
     time x time matrix is small, and ``randomized`` beyond.  ``in_use`` is what
     the process holds already (the interpreter and its libraries, about 0.15 GB):
     the budget is for the whole process, so that much is not there to plan with.
+    ``fitted_per_point`` is how many values the preparation fits at each point
+    (:attr:`climodes.prepare.TimeSteps.values_per_point`: 367 for a daily
+    climatology), kept with the results.
     """
     steps, nlat, nlon = shape
     points = nlat * nlon
     budget_given, budget = budget, budget - in_use
-    results_bytes = 3 * points * count * 8  # the maps, as solved, signed and written
+    # the maps, as solved, signed and written; the fitted preparation, held from the first pass on (in the
+    # working precision: float32 for the randomized solver, as a field's blocks are planned in float32)
+    results_bytes = 3 * points * count * 8 + points * fitted_per_point * (4 if method == "randomized" else 8)
     exact_bytes = 3 * steps * points * 8 + steps * min(steps, points) * 8
     held = workers + 3 + int(np.ceil(np.log2(max(nlat, 2))))  # partial sums alive in the pairwise tree, at most
     gram_bytes = held * steps * steps * 8 + results_bytes
@@ -198,15 +204,15 @@ def _exact(field, weights, count, max_missing, progress, steps):
     with progress("reading the field (1 pass)"):
         values = quietly(lambda: field.values)()
     _refuse_infinities(bool(np.isinf(values).any()))
-    block, fraction = quietly(full_path)(flat(values), np.ones(weights.size, dtype=bool), steps, max_missing,
-                                         np.float64)
+    block, fraction, fitted = quietly(full_path)(flat(values), np.ones(weights.size, dtype=bool), steps,
+                                                 max_missing, np.float64)
     _check_points(fraction, max_missing, count)
     keep = usable_points(fraction, max_missing)
     result = exact_modes(block[:, keep], weights[keep], count)
     patterns = np.full((keep.size, result.patterns.shape[1]), np.nan)
     patterns[keep] = result.patterns
     result.patterns = patterns
-    return result, fraction
+    return result, fraction, fitted
 
 
 def _leading_eigenpairs(matrix: np.ndarray, wanted: int) -> tuple[np.ndarray, np.ndarray]:
@@ -232,8 +238,8 @@ def _gram(field, weights, count, max_missing, progress, steps):
     blocks, rows = field_blocks(field), row_slices(field)
     parts = [dask.delayed(quietly(gram_part))(b, weights[r], max_missing, steps) for b, r in zip(blocks, rows)]
     with progress("pass 1 of 2: time x time cross-products"):
-        read_gram, full_gram, fractions = dask.compute(tree_sum(parts))[0]
-    fraction = np.concatenate(fractions)
+        read_gram, full_gram, pieces = dask.compute(tree_sum(parts))[0]
+    fraction, fitted = joined(pieces)
     _refuse_infinities(not (np.isfinite(read_gram).all() and np.isfinite(full_gram).all()))
     _check_points(fraction, max_missing, count)
     cheap, gappy = path_points(fraction, max_missing, steps)
@@ -255,7 +261,7 @@ def _gram(field, weights, count, max_missing, progress, steps):
         next_eigenvalue=float(values[count] / n) if values.size > count else 0.0,
         method="gram: eigendecomposition of the float64 time x time cross-product, streamed over grid blocks",
     )
-    return result, fraction
+    return result, fraction, fitted
 
 
 def _randomized(field, weights, count, max_missing, progress, seed, steps):
@@ -277,8 +283,8 @@ def _randomized(field, weights, count, max_missing, progress, seed, steps):
     parts = [dask.delayed(quietly(range_part))(b, weights[r], max_missing, omega[r], steps)
              for b, r in zip(blocks, rows)]
     with progress(f"pass 1 of at most {most}: random projection"):
-        sample, total, fractions = dask.compute(tree_sum(parts))[0]
-    fraction = np.concatenate(fractions)
+        sample, total, pieces = dask.compute(tree_sum(parts))[0]
+    fraction, fitted = joined(pieces)
     _refuse_infinities(not (np.isfinite(sample).all() and np.isfinite(total)))
     _check_points(fraction, max_missing, count)
     cheap, gappy = path_points(fraction, max_missing, steps)
@@ -313,7 +319,7 @@ def _randomized(field, weights, count, max_missing, progress, seed, steps):
         result.notes.append(f"the randomized solver stopped after {done} passes with a Ritz residual up to "
                             f"{residual.max() / ritz[0]:.1e} of the first eigenvalue, above its tolerance; "
                             "the weaker modes may be off by more than 1e-4: use modes.method gram or exact")
-    return result, fraction
+    return result, fraction, fitted
 
 
 def _converged(ritz: np.ndarray, residual: np.ndarray, steps: int) -> bool:
@@ -367,10 +373,12 @@ def _drop_null_modes(result: Decomposition, count: int) -> None:
 
     A field of rank ``r`` (fewer independent maps or time steps than modes asked for, or the steps
     the anomalies and trend take away) has ``r`` non-zero eigenvalues; beyond them every solver
-    returns rounding noise, whose "PCs" are neither unit variance nor meaningful.  The tolerance is
-    far above that noise in any of the three solvers (float64 products: about 1e-16 of the leading
-    eigenvalue; the float32 storage of a field with its mean: up to about 1e-10) and far below any
-    mode a measured field resolves (1e-8 of the variance is 1e-4 of the leading mode's amplitude).
+    returns rounding noise of its own arithmetic, whose "PCs" are neither unit variance nor meaningful.
+    That noise is far below the tolerance: near 1e-30 of the leading eigenvalue with float64 products,
+    and about (float32 epsilon)^2 = 4e-15 with the randomized solver's float32 ones.  Real modes can be
+    weak (a field of baseline anomalies and a trend holds one at 6e-9 of the leading eigenvalue) and
+    are kept; the rounding of values stored in float32 is data, and its weak modes are kept too (North's
+    rule marks them as not separated).
     """
     kept = int(np.sum(result.eigenvalues > NULL_TOLERANCE * result.eigenvalues[0]))
     if kept == result.eigenvalues.size:
@@ -452,19 +460,22 @@ def solve(field: xr.DataArray, weights: xr.DataArray, count: int, max_missing: f
     -------
     modes, decomposition, counts
         ``modes`` holds ``eof(mode, lat, lon)`` (NaN at unused points),
-        ``pc(mode, time)``, ``eigenvalue(mode)`` and ``variance_explained(mode)``; fewer than ``count``
-        modes when the field has fewer that are not null (see :func:`_drop_null_modes`, and the note).
+        ``pc(mode, time)``, ``eigenvalue(mode)`` and ``variance_explained(mode)`` (fewer than ``count``
+        modes when the field has fewer that are not null: see :func:`_drop_null_modes`, and the note); the
+        preparation fitted at each point in the first pass (:func:`climodes.prepare.fitted_variables`, NaN
+        at unused points), ``area_weight(lat, lon)`` (``weights``), ``point_status(lat, lon)`` and, for
+        seasonal or annual means, ``time_bnds``.
     """
     progress = progress or (lambda label: contextlib.nullcontext())
     w = np.asarray(weights.values, dtype=np.float64).reshape(-1)
     if plan.method != "exact" and field.chunks is None:
         field = field.chunk({"lat": plan.lat_rows or -1})
     if plan.method == "exact":
-        result, fraction = _exact(field, w, count, max_missing, progress, steps)
+        result, fraction, fitted = _exact(field, w, count, max_missing, progress, steps)
     elif plan.method == "gram":
-        result, fraction = _gram(field, w, count, max_missing, progress, steps)
+        result, fraction, fitted = _gram(field, w, count, max_missing, progress, steps)
     else:
-        result, fraction = _randomized(field, w, count, max_missing, progress, seed, steps)
+        result, fraction, fitted = _randomized(field, w, count, max_missing, progress, seed, steps)
     counts = _counts(fraction, max_missing, field.sizes["time"])
     if result.total_variance == 0 or result.eigenvalues[0] <= 1e-12 * max(result.total_variance, 1e-300):
         raise UserError("input.variable: the prepared field is constant in time at every point, "
@@ -476,15 +487,27 @@ def solve(field: xr.DataArray, weights: xr.DataArray, count: int, max_missing: f
     result.pcs *= signs
     result.patterns *= signs
 
-    maps = result.patterns.T.reshape(kept, field.sizes["lat"], field.sizes["lon"])
+    grid = (field.sizes["lat"], field.sizes["lon"])
+    used = usable_points(fraction, max_missing)
+    for values in fitted.values():  # the preparation of the points the modes were computed from
+        values[..., ~used] = np.nan
+    fitted = Fitted(steps.preparation, {name: values.reshape(values.shape[:-1] + grid) for name, values in fitted.items()})
     modes = xr.Dataset(
         {
-            "eof": (("mode", "lat", "lon"), maps),
+            "eof": (("mode", "lat", "lon"), result.patterns.T.reshape((kept, *grid))),
             "pc": (("mode", "time"), result.pcs.T),
             "eigenvalue": ("mode", result.eigenvalues),
             "variance_explained": ("mode", result.eigenvalues / result.total_variance),
+            **fitted_variables(fitted, field.attrs.get("units")),
+            "area_weight": (("lat", "lon"), w.reshape(grid),
+                            {"long_name": "square root of the area weight each anomaly was multiplied by",
+                             "units": "1"}),
+            "point_status": (("lat", "lon"), point_status(fraction, max_missing).reshape(grid),
+                             {"long_name": "how the missing-data rule treated the grid point",
+                              "flag_values": np.array([0, 1, 2], dtype=np.int8),
+                              "flag_meanings": "no_data dropped_for_missing_data used"}),
         },
-        coords={"mode": np.arange(1, kept + 1),
-                **{name: coord.variable for name, coord in field.coords.items() if name != "cell_area"}},
+        coords={"mode": np.arange(1, kept + 1), **time_bounds(field),
+                **{name: coord.variable for name, coord in field.coords.items() if name not in ("cell_area", *PERIOD)}},
     )
     return modes, result, counts

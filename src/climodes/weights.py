@@ -101,3 +101,17 @@ def usable_points(missing_fraction: np.ndarray, max_missing: float) -> np.ndarra
     the climatology.
     """
     return (missing_fraction < 1) & (missing_fraction <= max_missing)
+
+
+def point_status(missing_fraction: np.ndarray, max_missing: float) -> np.ndarray:
+    """How the missing-data rule treated each point, as stored in ``modes.nc``'s ``point_status``.
+
+    0: no data at any step (never used: land in a sea field, outside a box); 1: dropped for missing
+    data (missing at more than ``max_missing`` of the steps); 2: used.
+
+    >>> point_status(np.array([1.0, 0.5, 0.05]), 0.1).tolist()
+    [0, 1, 2]
+    """
+    status = np.where(usable_points(missing_fraction, max_missing), 2, 1).astype(np.int8)
+    status[missing_fraction >= 1] = 0
+    return status
