@@ -18,7 +18,10 @@ def test_check_prints_the_resolved_config(tmp_path, small_field, cli):
     assert code == 0 and err == ""
     resolved = yaml.safe_load(out)
     assert resolved["modes"] == {"count": 3, "effective_sample_size": "auto", "method": "auto", "seed": 0}
-    assert resolved["compute"] == {"memory": "4GB", "workers": "auto", "scheduler": "threads"}
+    assert resolved["compute"] == {"memory": "4GB", "workers": "auto", "scheduler": "threads", "jobs": 2,
+                                   "job_cores": 4, "job_memory": "8GB", "walltime": "auto", "queue": None,
+                                   "account": None, "directives": [], "interface": None, "address": None,
+                                   "worker_wait": 300}
     assert resolved["prepare"]["weighting"] == "coslat"
 
 

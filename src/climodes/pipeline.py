@@ -12,8 +12,19 @@ from typing import Callable
 
 import xarray as xr
 
-from climodes.cluster import dask_settings, pass_context, resident_bytes, worker_count
-from climodes.config import RunSpec, memory_bytes
+from climodes.cluster import (
+    batch_job,
+    batch_script,
+    batch_system,
+    capacity,
+    running,
+    script_path,
+    submit_cores,
+    submit_script,
+    walltime,
+    write_script,
+)
+from climodes.config import RunSpec
 from climodes.diagnostics import effective_sample_size, north_errors, separated
 from climodes.errors import UserError
 from climodes.fields import OpenedField, open_field, rechunked, select
@@ -68,9 +79,9 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
     check_output_dir(spec.output)
     opened = open_field(spec.input, spec.select)
     field, along_time, notes = _prepared(spec, opened)
-    workers = worker_count(spec.compute)
-    plan = plan_solver(field.shape, spec.modes.count, spec.modes.method, memory_bytes(spec.compute.memory), workers,
-                       in_use=resident_bytes())
+    room = capacity(spec.compute)
+    plan = plan_solver(field.shape, spec.modes.count, spec.modes.method, room.memory, room.workers,
+                       in_use=room.in_use)
     if plan.lat_rows:
         opened = rechunked(opened, {"time": -1, "lat": plan.lat_rows, "lon": -1})
         field, along_time, notes = _prepared(spec, opened)
@@ -81,9 +92,10 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
     if "geotiff" in spec.output.formats:
         check_geotiff_grid(field)
     weights = field_weights(field, spec.prepare.weighting)
-    with dask_settings(spec.compute):
+    limit = walltime(spec.compute, plan.method, field.shape, spec.modes.count, field.dtype.itemsize, room.workers)
+    with running(spec.compute, progress, limit, spec.source.parent) as session:
         modes, result, counts = solve(field, weights, spec.modes.count, spec.prepare.max_missing, plan,
-                                      spec.modes.seed, pass_context(progress, workers), along_time)
+                                      spec.modes.seed, session.during, along_time)
     notes += counts.notes + result.notes
     n_eff, n_eff_how = effective_sample_size(result.pcs, spec.modes.effective_sample_size)
     errors = north_errors(result.eigenvalues, n_eff)
@@ -94,7 +106,7 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
     units = "1" if spec.prepare.standardize else opened.data.attrs.get("units")
     extra = dict(errors=errors, separated=apart, n_eff=n_eff, n_eff_how=n_eff_how,
                  method=f"{result.method} (chosen because: {plan.reason})",
-                 notes=notes, units=units, total_variance=result.total_variance,
+                 notes=notes, units=units, total_variance=result.total_variance, compute=session.description,
                  points=(f"{counts.used} of {counts.grid} grid points used; {counts.always_missing} missing at every "
                          f"step; {counts.too_often_missing} missing too often; {counts.filled_values} missing "
                          "values set to zero anomaly"))
@@ -108,7 +120,8 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
         err = 100 * float(results["variance_explained_error"][k])
         table.append(f"{k + 1:>4}  {frac:8.1f}% +/- {err:4.1f}%   {'yes' if apart[k] else 'no, mixed'}")
     table.append(f"effective sample size {n_eff:.0f} of {steps} steps")
-    log = [headline, *table, f"solver: {plan.method} ({plan.reason})", *(f"note: {n}" for n in notes), "",
+    log = [headline, *table, f"solver: {plan.method} ({plan.reason})", f"compute: {session.description}",
+           *(f"moved: {line}" for line in session.moved), *(f"note: {n}" for n in notes), "",
            "resolved config:", spec.to_yaml()]
     try:
         with staged_dir(out) as stage:
@@ -125,3 +138,31 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
         raise UserError(f"output.dir: cannot write the results to {out} ({reason}); nothing was written; "
                         "free some space or choose another output.dir") from None
     return RunSummary(out, headline, table, notes)
+
+
+def submit(spec: RunSpec, system: str | None, dry_run: bool, wait: bool, show: Callable[[str], None],
+           say: Callable[[str], None] = lambda line: None) -> int:
+    """Write the batch script that runs ``spec``, ``show`` it, and submit it (unless ``dry_run``).
+
+    The job asks for the resources the run needs, from the field's size and the solver the plan chooses
+    (see :func:`climodes.cluster.batch_job`); only the field's coordinates are read.  Returns 0, or with
+    ``wait`` the job's exit status.
+    """
+    check_output_dir(spec.output)
+    field, _, _ = _prepared(spec, open_field(spec.input, spec.select))
+    room = capacity(spec.compute)
+    plan = plan_solver(field.shape, spec.modes.count, spec.modes.method, room.memory, room.workers,
+                       in_use=room.in_use)
+    room = capacity(spec.compute, workers=submit_cores(spec.compute, plan.method, field.sizes["lat"]))
+    plan = plan_solver(field.shape, spec.modes.count, spec.modes.method, room.memory, room.workers,
+                       in_use=room.in_use)
+    chosen = batch_system(spec.compute, system)
+    job = batch_job(spec.source, spec.compute, chosen, plan.method, field.shape, spec.modes.count,
+                    field.dtype.itemsize, plan.memory)
+    text, path = batch_script(job, spec.compute), script_path(spec.source, chosen)
+    write_script(path, text)
+    show(text)
+    if dry_run:
+        say(f"climodes: wrote {path}; not submitted (--dry-run)")
+        return 0
+    return submit_script(path, chosen, wait, say)
