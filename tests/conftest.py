@@ -99,3 +99,25 @@ def cf_strict(path: Path) -> subprocess.CompletedProcess:
     tool = shutil.which("compliance-checker") or str(Path(sys.executable).parent / "compliance-checker")
     return subprocess.run([tool, "-t", "cf:1.10", "-c", "strict", str(path)], capture_output=True, text=True,
                           timeout=300)
+
+
+@pytest.fixture(scope="session")
+def slurm():
+    """A single-node SLURM on this machine, started once for the whole test session (tests/slurm_node.py);
+    its client commands find it through SLURM_CONF.  Skipped, with the reason, where it cannot start."""
+    import os
+
+    import slurm_node
+
+    reason = slurm_node.why_not()
+    if reason:
+        pytest.skip(f"no SLURM node for the batch-scheduler tests: {reason}")
+    node = slurm_node.start()
+    before = os.environ.get("SLURM_CONF")
+    os.environ["SLURM_CONF"] = str(node.conf)
+    yield node
+    if before is None:
+        os.environ.pop("SLURM_CONF", None)
+    else:
+        os.environ["SLURM_CONF"] = before
+    node.stop()

@@ -251,6 +251,7 @@ def running(spec: ComputeSection, progress: bool, walltime: str, folder: Path) -
             where = (f"{spec.scheduler}: joined the dask scheduler at {spec.address}: {len(client.nthreads())} "
                      f"workers, {threads} threads")
         else:
+            _check_command(spec.scheduler)
             logs = Path(tempfile.mkdtemp(prefix=".climodes-workers-", dir=_writable(folder)))
             stack.callback(shutil.rmtree, logs, ignore_errors=True)
             cluster = stack.enter_context(_batch_cluster(spec, walltime, logs))
@@ -265,9 +266,11 @@ def running(spec: ComputeSection, progress: bool, walltime: str, folder: Path) -
 def _quiet_distributed() -> Iterator[None]:
     """Keep distributed's own log lines and warnings off the user's terminal: what goes wrong is said
     once, as a climodes error."""
-    levels = {name: logging.getLogger(name).level for name in QUIET_LOGGERS}
+    names = set(QUIET_LOGGERS) | {name for name in logging.root.manager.loggerDict
+                                  if name.startswith(tuple(f"{n}." for n in QUIET_LOGGERS))}
+    levels = {name: logging.getLogger(name).level for name in names}
     try:
-        for name in QUIET_LOGGERS:
+        for name in names:
             logging.getLogger(name).setLevel(logging.CRITICAL + 1)
         with warnings.catch_warnings():
             warnings.filterwarnings("ignore", module="distributed")
@@ -301,13 +304,16 @@ def _joined(spec: ComputeSection):
     return client
 
 
-def _batch_cluster(spec: ComputeSection, walltime: str, logs: Path):
-    """The dask-jobqueue cluster of ``spec``, its jobs submitted; a refused submission is a clear error."""
-    system, command = SYSTEMS[spec.scheduler]
+def _check_command(scheduler: str) -> None:
+    system, command = SYSTEMS[scheduler]
     if not shutil.which(command):
-        raise UserError(f"compute.scheduler: {spec.scheduler} starts its workers with {command}, which is not "
+        raise UserError(f"compute.scheduler: {scheduler} starts its workers with {command}, which is not "
                         f"installed here; run climodes where {system} jobs are submitted (a login node or a "
                         "batch job), or choose compute.scheduler threads or processes")
+
+
+def _batch_cluster(spec: ComputeSection, walltime: str, logs: Path):
+    """The dask-jobqueue cluster of ``spec``, its jobs submitted; a refused submission is a clear error."""
     from dask_jobqueue import PBSCluster, SLURMCluster
 
     kind = SLURMCluster if spec.scheduler == "slurm" else PBSCluster
@@ -318,24 +324,42 @@ def _batch_cluster(spec: ComputeSection, walltime: str, logs: Path):
                    scheduler_options={"dashboard": False, "dashboard_address": ":0"},
                    job_script_prologue=[f"export {k}={v}" for k, v in WORKER_ENVIRONMENT.items()])
     try:
+        _refused(cluster.job_script(), spec.scheduler)
         cluster.scale(jobs=spec.jobs)
-        cluster.sync(cluster._correct_state)  # the submissions, awaited: a refusal raises here
-    except RuntimeError as err:
-        cluster.close()
-        reason = _refusal(str(err))
-        raise UserError(f"compute: {system} refused the worker jobs ({reason}); ask for less with "
-                        "compute.job_memory, compute.job_cores or compute.walltime, or choose compute.queue") from None
     except BaseException:
         cluster.close()
         raise
     return cluster
 
 
+def _refused(script: str, scheduler: str) -> None:
+    """Check that the batch system accepts a worker job before submitting any: ``sbatch --test-only``, or
+    for PBS a job submitted on hold and deleted.  dask-jobqueue would otherwise log a refusal in the
+    background and leave the run waiting for workers that never come."""
+    system, command = SYSTEMS[scheduler]
+    with tempfile.NamedTemporaryFile("w", suffix=".sh") as f:
+        f.write(script)
+        f.flush()
+        check = [command, "--test-only", f.name] if scheduler == "slurm" else [command, "-h", f.name]
+        try:
+            done = subprocess.run(check, capture_output=True, text=True, timeout=120)
+        except (OSError, subprocess.TimeoutExpired) as err:
+            raise UserError(f"compute.scheduler: {command} did not answer ({err}); check that {system} works "
+                            "here (try it by hand)") from None
+    if done.returncode != 0:
+        raise UserError(f"compute: {system} refused the worker jobs ({_refusal(done.stderr or done.stdout)}); "
+                        "ask for less with compute.job_memory, compute.job_cores or compute.walltime, or "
+                        "choose compute.queue")
+    if scheduler == "pbs" and done.stdout.strip():
+        subprocess.run(["qdel", done.stdout.strip()], capture_output=True, timeout=120)
+
+
 def _refusal(text: str) -> str:
     """The batch system's own reason, from a failed submission's output."""
     lines = [line.strip() for line in text.splitlines() if "error" in line.lower() and line.strip()]
     reason = (lines[-1] if lines else text.strip().splitlines()[-1] if text.strip() else "no reason given")
-    return re.sub(r"^(\w+: )?error: (Batch job submission failed: )?", "", reason, flags=re.IGNORECASE)
+    return re.sub(r"^(\w+: )?(error: )?(Batch job submission failed: |allocation failure: )?", "", reason,
+                  flags=re.IGNORECASE)
 
 
 def _wait_for_jobs(spec: ComputeSection, client, cluster, host: str) -> str:
@@ -590,16 +614,22 @@ def write_script(path: Path, text: str) -> None:
                         ) from None
 
 
+def submit_command(system: str) -> tuple[str, str]:
+    """The batch system's name and submit command; a clear error when the command is not installed."""
+    name, command = SYSTEMS[system]
+    if not shutil.which(command):
+        raise UserError(f"{command} ({name}) is not installed here; run climodes submit where {name} jobs are "
+                        "submitted (a login node), or use --dry-run to only write the script")
+    return name, command
+
+
 def submit_script(path: Path, system: str, wait: bool, say: Callable[[str], None]) -> int:
     """Submit the script with ``sbatch`` or ``qsub``; with ``wait``, return the job's exit status (else 0).
 
     A refused submission is a :class:`UserError` with the batch system's reason.  ``sbatch --wait`` and
     PBS Pro's ``qsub -W block=true`` wait for the job and exit with its status.
     """
-    name, command = SYSTEMS[system]
-    if not shutil.which(command):
-        raise UserError(f"{command} ({name}) is not installed here; run climodes submit where {name} jobs are "
-                        "submitted (a login node), or use --dry-run to only write the script")
+    name, command = submit_command(system)
     if system == "slurm":
         args = [command, "--parsable"] + (["--wait"] if wait else []) + [str(path)]
     else:

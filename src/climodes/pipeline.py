@@ -19,6 +19,7 @@ from climodes.cluster import (
     capacity,
     running,
     script_path,
+    submit_command,
     submit_cores,
     submit_script,
     walltime,
@@ -149,6 +150,9 @@ def submit(spec: RunSpec, system: str | None, dry_run: bool, wait: bool, show: C
     ``wait`` the job's exit status.
     """
     check_output_dir(spec.output)
+    chosen = batch_system(spec.compute, system)
+    if not dry_run:
+        submit_command(chosen)
     field, _, _ = _prepared(spec, open_field(spec.input, spec.select))
     room = capacity(spec.compute)
     plan = plan_solver(field.shape, spec.modes.count, spec.modes.method, room.memory, room.workers,
@@ -156,7 +160,6 @@ def submit(spec: RunSpec, system: str | None, dry_run: bool, wait: bool, show: C
     room = capacity(spec.compute, workers=submit_cores(spec.compute, plan.method, field.sizes["lat"]))
     plan = plan_solver(field.shape, spec.modes.count, spec.modes.method, room.memory, room.workers,
                        in_use=room.in_use)
-    chosen = batch_system(spec.compute, system)
     job = batch_job(spec.source, spec.compute, chosen, plan.method, field.shape, spec.modes.count,
                     field.dtype.itemsize, plan.memory)
     text, path = batch_script(job, spec.compute), script_path(spec.source, chosen)
