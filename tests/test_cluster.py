@@ -194,12 +194,14 @@ def test_submit_without_the_batch_commands(tmp_path, cli, monkeypatch, system, c
 @pytest.mark.slow
 @pytest.mark.parametrize("method", ["gram", "randomized"])
 def test_a_local_cluster_gives_the_same_modes_as_threads(tmp_path, cli, method):
-    """Same blocks, same pairwise sums: 1e-8 for gram and for randomized with the same seed."""
+    """Same blocks, same pairwise sums: 1e-8 for gram (float64 products); randomized with the same seed
+    within the 1e-6 stated for its float32 products, whose last bits may differ from one process to another
+    (test_streaming.py: any two blockings or thread counts)."""
     paths = many_files(tmp_path)
     common = dict(modes={"count": 3, "method": method, "seed": 4}, prepare={"detrend": "linear", "max_missing": 0.3})
     threads = run_config(cli, tmp_path / "threads", paths, compute={"scheduler": "threads", "workers": 2}, **common)
     local = run_config(cli, tmp_path / "processes", paths, compute={"scheduler": "processes", "workers": 2}, **common)
-    same_modes(local, threads, 1e-8)
+    same_modes(local, threads, 1e-8 if method == "gram" else 1e-6)
     assert local.attrs["climodes_compute"].startswith("processes: a local dask cluster of 2 worker processes on ")
     assert threads.attrs["climodes_compute"].startswith("threads: 2 worker thread(s) on ")
 
