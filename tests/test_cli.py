@@ -167,7 +167,25 @@ CATALOGUE = {
     "output inside a file": (_inside_a_file, "which is a file; choose another folder"),
     "bad yaml syntax": (_bad_yaml, "run.yaml:3: not valid YAML"),
     "disk full": (_disk_full, "output.dir: cannot write the results to"),
+    # running on a cluster
+    "slurm without sbatch": (lambda t, m: _no_batch_commands(t, m, "slurm"),
+                             "compute.scheduler: slurm starts its workers with sbatch, which is not installed here"),
+    "pbs without qsub": (lambda t, m: _no_batch_commands(t, m, "pbs"),
+                         "compute.scheduler: pbs starts its workers with qsub, which is not installed here"),
+    "scheduler address without batch workers": (
+        lambda t, m: ([_ok(t)], {"compute": {"address": "tcp://127.0.0.1:8786"}}),
+        "compute.address: joins a running dask scheduler with compute.scheduler slurm or pbs"),
+    "no dask scheduler at the address": (
+        lambda t, m: ([_ok(t)], {"compute": {"scheduler": "slurm", "address": "tcp://127.0.0.1:9", "worker_wait": 2}}),
+        "compute.address: cannot reach a dask scheduler at tcp://127.0.0.1:9"),
+    "walltime not HH:MM:SS": (lambda t, m: ([_ok(t)], {"compute": {"walltime": "2h"}}),
+                              "compute.walltime: expected a time limit as HH:MM:SS"),
 }
+
+
+def _no_batch_commands(tmp_path, monkeypatch, scheduler):
+    monkeypatch.setenv("PATH", str(tmp_path / "no-commands-here"))
+    return [_ok(tmp_path)], {"compute": {"scheduler": scheduler}}
 
 
 @pytest.mark.parametrize("case", list(CATALOGUE))

@@ -20,7 +20,15 @@ import pytest
 import xarray as xr
 
 import climodes.cluster
-from climodes.cluster import Allocation, batch_allocation, capacity, estimated_walltime, run_memory, worker_count
+from climodes.cluster import (
+    Allocation,
+    batch_allocation,
+    capacity,
+    estimated_seconds,
+    estimated_walltime,
+    run_memory,
+    worker_count,
+)
 from climodes.config import ComputeSection
 from conftest import field_dataset, red_field, write_config
 
@@ -105,14 +113,20 @@ def test_a_run_inside_an_allocation_says_so(tmp_path, cli, monkeypatch):
 
 def test_walltime_estimate():
     """Hand-computed from the stated rule: 2 x (passes x bytes / 50 MB/s + operations / (1e9/s x cores)) + 600 s,
-    rounded up to 10 minutes.  Gram, 720 x 65160 float32, 10 modes, 4 cores: reads 7.51 s, operations
-    2 * 720^2 * 65160 + 2 * 720 * 65160 * 10 = 6.85e10 -> 17.1 s; 2 * 24.6 + 600 = 649 s -> 20 minutes."""
+    rounded up to 10 minutes."""
+    # gram, 720 x 65160 float32, 10 modes, 4 cores: reads 2 * 720 * 65160 * 4 / 5e7 = 7.506 s, operations
+    # 2 * 720^2 * 65160 + 2 * 720 * 65160 * 10 = 6.849e10 -> 17.12 s; 2 * 24.63 + 600 = 649.3 s -> 20 minutes
+    assert estimated_seconds("gram", (720, 181, 360), 10, 4, 4) == pytest.approx(649.25, rel=1e-4)
     assert estimated_walltime("gram", (720, 181, 360), 10, 4, 4) == "00:20:00"
-    # randomized, 3650 x 259920, 5 passes: reads 5 * 3.795e9 / 5e7 = 379.5 s, operations 5 * 4 * 3650 * 259920 * 20
-    # = 3.79e11 -> 47.4 s on 8 cores; 2 * 426.9 + 600 = 1453.8 s -> 30 minutes
+    # randomized, 3650 x 259920, 5 passes: reads 5 * 3.7948e9 / 5e7 = 379.5 s, operations 5 * 4 * 3650 * 259920 * 20
+    # = 3.795e11 -> 47.43 s on 8 cores; 2 * 426.9 + 600 = 1453.8 s -> 30 minutes
+    assert estimated_seconds("randomized", (3650, 361, 720), 10, 4, 8) == pytest.approx(1453.8, rel=1e-4)
     assert estimated_walltime("randomized", (3650, 361, 720), 10, 4, 8) == "00:30:00"
-    # exact, 600 x 1421: one pass, 4 * 600 * 1421 * 600 = 2.05e9 operations; 600 s and a little -> 20 minutes
-    assert estimated_walltime("exact", (600, 29, 49), 5, 4, 4) == "00:20:00"
+    # exact, 600 x 1421 float64: reads 600 * 1421 * 8 / 5e7 = 0.1364 s, operations 4 * 600 * 1421 * 600 = 2.046e9
+    # -> 0.5116 s on 4 cores; 2 * 0.648 + 600 = 601.3 s -> 20 minutes
+    assert estimated_seconds("exact", (600, 29, 49), 5, 8, 4) == pytest.approx(601.296, rel=1e-4)
+    assert estimated_walltime("exact", (600, 29, 49), 5, 8, 4) == "00:20:00"
+    assert estimated_walltime("gram", (2000, 721, 1440), 10, 4, 1) == "05:00:00"  # 17958 s
 
 
 def _submit_config(tmp_path, **compute):

@@ -476,8 +476,13 @@ def walltime(spec: ComputeSection, method: str, shape: tuple[int, int, int], cou
 
 
 def estimated_walltime(method: str, shape: tuple[int, int, int], count: int, itemsize: int, cores: int) -> str:
-    """A cautious time limit for a run: twice its reads and arithmetic at slow rates, plus ten minutes,
-    rounded up to ten minutes.
+    """A cautious time limit for a run (:func:`estimated_seconds`), rounded up to ten minutes, as HH:MM:SS."""
+    minutes = 10 * math.ceil(estimated_seconds(method, shape, count, itemsize, cores) / 600)
+    return f"{minutes // 60:02d}:{minutes % 60:02d}:00"
+
+
+def estimated_seconds(method: str, shape: tuple[int, int, int], count: int, itemsize: int, cores: int) -> float:
+    """A cautious duration of a run: twice its reads and arithmetic at slow rates, plus ten minutes.
 
     Passes: 1 (exact), 2 (gram), at most ``2 + POWER_ITERATIONS`` (randomized).  Arithmetic: the SVD of an
     ``n x p`` matrix costs about ``4 n p min(n, p)`` operations, the Gram matrix ``2 n^2 p``, each
@@ -493,9 +498,7 @@ def estimated_walltime(method: str, shape: tuple[int, int, int], count: int, ite
         "exact": (1, 4 * steps * points * min(steps, points)),
         "gram": (2, 2 * steps**2 * points + 2 * steps * points * count),
     }.get(method, (2 + POWER_ITERATIONS, (2 + POWER_ITERATIONS) * 4 * steps * points * rank))
-    seconds = 2 * (passes * steps * points * itemsize / READ_RATE + flops / (FLOP_RATE * cores)) + 600
-    minutes = 10 * math.ceil(seconds / 600)
-    return f"{minutes // 60:02d}:{minutes % 60:02d}:00"
+    return 2 * (passes * steps * points * itemsize / READ_RATE + flops / (FLOP_RATE * cores)) + 600
 
 
 def submit_cores(spec: ComputeSection, method: str, nlat: int) -> int:
