@@ -541,7 +541,7 @@ def batch_job(spec_source: Path, compute: ComputeSection, system: str, method: s
     cores = submit_cores(compute, method, shape[1])
     steps, nlat, nlon = shape
     why = (f"{steps} steps x {nlat * nlon} points ({_size(steps * nlat * nlon * itemsize)}), {method} solver: "
-           f"{_size(needed)} of memory" + ("" if compute.walltime != "auto" else ", time limit estimated"))
+           f"needs {_size(needed)}" + ("" if compute.walltime != "auto" else "; time limit estimated"))
     return BatchJob(system, spec_source, cores, _request(needed), walltime(compute, method, shape, count, itemsize,
                                                                             cores), why)
 
@@ -581,7 +581,7 @@ def batch_script(job: BatchJob, compute: ComputeSection) -> str:
         "#!/bin/bash",
         *(f"{prefix} {line}" for line in lines),
         f"{MARK} for {job.config}",
-        f"# {job.why}; change them under compute: in the config",
+        f"# {job.why}; change these under compute: in the config",
         "set -eu",
         f"cd {_quoted(folder)}",
         f"exec {_quoted(Path(sys.executable))} -m climodes run --quiet {_quoted(job.config)}",
