@@ -214,11 +214,18 @@ def tree_sum(parts: list):
     return parts[0]
 
 
-def field_blocks(field: xr.DataArray) -> list[FieldBlock]:
-    """The field as ``(time, lat rows, lon)`` blocks, all time steps in each, each with its own part of
-    the graph only (so a task carries no more than its block's reads)."""
+def field_blocks(field: xr.DataArray) -> list:
+    """The field as ``(time, lat rows, lon)`` blocks, all time steps in each.
+
+    On a local scheduler they are the dask array's own chunks, read by tasks of their own, which the
+    scheduler orders to keep memory low.  Where ``climodes.read-blocks-in-task`` is set (the distributed
+    schedulers of :mod:`climodes.cluster`), each is a :class:`FieldBlock` carrying its own part of the
+    graph only, read by the task that reduces it: its pieces then never travel between workers.
+    """
     data = field.data.rechunk({0: -1, 2: -1})
-    return [FieldBlock(dask.optimize(data.blocks[:, i])[0]) for i in range(data.numblocks[1])]
+    if dask.config.get("climodes.read-blocks-in-task", False):
+        return [FieldBlock(dask.optimize(data.blocks[:, i])[0]) for i in range(data.numblocks[1])]
+    return list(data.to_delayed().ravel())
 
 
 def row_slices(field: xr.DataArray) -> list[slice]:

@@ -259,7 +259,8 @@ def running(spec: ComputeSection, progress: bool, walltime: str, folder: Path) -
             where = _wait_for_jobs(spec, client, cluster, host)
         session = Session(where, lambda label: contextlib.nullcontext())
         session.during = _distributed_passes(client, session, progress)
-        yield session
+        with dask.config.set({"climodes.read-blocks-in-task": True}):
+            yield session
 
 
 @contextlib.contextmanager
