@@ -129,6 +129,17 @@ def test_walltime_estimate():
     assert estimated_walltime("gram", (2000, 721, 1440), 10, 4, 1) == "05:00:00"  # 17958 s
 
 
+@pytest.mark.parametrize("shape", [(120, 20, 30), (720, 181, 360), (1500, 361, 720), (3650, 361, 720), (2000, 64, 128)])
+def test_the_memory_asked_for_keeps_the_plan(shape):
+    """A batch job gets the memory its plan needs and plans again with only that much: auto must take the
+    same solver, and the blocks must still fit (our own contract: compute.memory and climodes submit)."""
+    from climodes.solvers import plan_solver
+
+    first = plan_solver(shape, 10, "auto", int(4e9), 4, in_use=int(2e8))
+    again = plan_solver(shape, 10, "auto", first.memory, 4, in_use=int(2e8))
+    assert again.method == first.method and first.memory <= 4e9
+
+
 def _submit_config(tmp_path, **compute):
     folder = tmp_path / "job"
     folder.mkdir()
@@ -175,7 +186,8 @@ def test_the_job_asks_for_what_the_plan_needs(tmp_path, cli):
                        modes={"count": 3, "method": "gram"}, compute={"workers": 2, "memory": "1GB"})
     code, out, err = cli("submit", "--dry-run", "--system", "slurm", big)
     assert code == 0, err
-    mem = int(re.search(r"--mem=(\d+)M", out).group(1))
+    number, unit = re.search(r"--mem=(\d+)([MG])", out).groups()
+    mem = int(number) * (1024 if unit == "G" else 1)  # MiB
     assert 512 < mem <= 1e9 / 2**20 + 256 and "gram solver" in out
 
 

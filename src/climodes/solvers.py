@@ -162,7 +162,10 @@ def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: in
     rows = max(rows, 1)
     blocks = -(-nlat // rows)
     why += f"; {blocks} block(s) of {rows} latitude rows within compute.memory {_size(budget_given)}"
-    return SolverPlan(method, why, rows, int(in_use + (fixed + per_row * rows) / 0.7))
+    need = (fixed + per_row * rows) / 0.7
+    if method == "gram":  # and enough that auto, planning again with only this much, still takes gram
+        need = max(need, 2 * gram_bytes)
+    return SolverPlan(method, why, rows, int(np.ceil(in_use + need)))
 
 
 # --- the solvers
