@@ -6,6 +6,7 @@ threaded scheduler's results (see test_cluster.py), and SLURM's own record of ea
 """
 
 import os
+import re
 import time
 
 import pytest
@@ -52,8 +53,10 @@ def test_submit_wait_runs_a_config_and_returns_the_jobs_exit_status(tmp_path, cl
     job = err.split("submitted SLURM job ")[1].split()[0]
     assert out == config.with_name("run.sbatch").read_text()
     assert f"SLURM job {job} ended with exit status 0" in err
+    number, unit = re.search(r"#SBATCH --mem=(\d+)([MG])", out).groups()
+    asked = int(number) * 2 ** (30 if unit == "G" else 20)
     assert xr.open_dataset(tmp_path / "out" / "modes.nc").attrs["climodes_compute"].endswith(
-        f"in SLURM job {job} (1 cores, 0.54 GB)")  # the 512 MiB asked for
+        f"in SLURM job {job} (1 cores, {asked / 1e9:.2f} GB)")  # what the job asked for
     assert (tmp_path / f"run-{job}.log").read_text() == ""  # --quiet: nothing but errors
 
     # a run that fails once it reads the data (an infinite value): the job's status, and its one-line error
