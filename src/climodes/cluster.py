@@ -315,7 +315,12 @@ def _check_command(scheduler: str) -> None:
 
 def _batch_cluster(spec: ComputeSection, walltime: str, logs: Path):
     """The dask-jobqueue cluster of ``spec``, its jobs submitted; a refused submission is a clear error."""
+    import signal
+
+    interrupt = signal.getsignal(signal.SIGINT)
     from dask_jobqueue import PBSCluster, SLURMCluster
+
+    signal.signal(signal.SIGINT, interrupt)  # importing dask-jobqueue makes Ctrl-C exit quietly with status 0
 
     kind = SLURMCluster if spec.scheduler == "slurm" else PBSCluster
     cluster = kind(cores=spec.job_cores, processes=1, memory=str(memory_bytes(spec.job_memory)),
