@@ -139,3 +139,25 @@ def archive_file(path: Path, steps: int = 24, lat: np.ndarray | None = np.linspa
             field.units = units
         field[:] = red_field((steps, ny, nx), seed) + 280
     return path
+
+
+@pytest.fixture(scope="session")
+def slurm():
+    """A single-node SLURM on this machine, started once for the whole test session (tests/slurm_node.py);
+    its client commands find it through SLURM_CONF.  Skipped, with the reason, where it cannot start."""
+    import os
+
+    import slurm_node
+
+    reason = slurm_node.why_not()
+    if reason:
+        pytest.skip(f"no SLURM node for the batch-scheduler tests: {reason}")
+    node = slurm_node.start()
+    before = os.environ.get("SLURM_CONF")
+    os.environ["SLURM_CONF"] = str(node.conf)
+    yield node
+    if before is None:
+        os.environ.pop("SLURM_CONF", None)
+    else:
+        os.environ["SLURM_CONF"] = before
+    node.stop()

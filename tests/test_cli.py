@@ -25,7 +25,10 @@ def test_check_prints_the_resolved_config(tmp_path, small_field, cli):
     ]
     resolved = yaml.safe_load(out)
     assert resolved["modes"] == {"count": 3, "effective_sample_size": "auto", "method": "auto", "seed": 0}
-    assert resolved["compute"] == {"memory": "4GB", "workers": "auto", "scheduler": "threads"}
+    assert resolved["compute"] == {"memory": "4GB", "workers": "auto", "scheduler": "threads", "jobs": 2,
+                                   "job_cores": 4, "job_memory": "8GB", "walltime": "auto", "queue": None,
+                                   "account": None, "directives": [], "interface": None, "address": None,
+                                   "worker_wait": 300}
     assert resolved["prepare"]["weighting"] == "coslat"
 
 
@@ -370,11 +373,30 @@ CATALOGUE = {
     # preparation
     "baseline without a calendar day": (_daily_baseline_short, "prepare.baseline: ['2001-01-01', '2001-11-30'] has no "
                                                                "data for day 12-01"),
+    # running on a cluster
+    "slurm without sbatch": (lambda t, m: _no_batch_commands(t, m, "slurm"),
+                             "compute.scheduler: slurm starts its workers with sbatch, which is not installed here"),
+    "pbs without qsub": (lambda t, m: _no_batch_commands(t, m, "pbs"),
+                         "compute.scheduler: pbs starts its workers with qsub, which is not installed here"),
+    "scheduler address without batch workers": (
+        lambda t, m: ([_ok(t)], {"compute": {"address": "tcp://127.0.0.1:8786"}}),
+        "compute.address: joins a running dask scheduler with compute.scheduler slurm or pbs"),
+    "no dask scheduler at the address": (
+        lambda t, m: ([_ok(t)], {"compute": {"scheduler": "slurm", "address": "tcp://127.0.0.1:9", "worker_wait": 2}}),
+        "compute.address: cannot reach a dask scheduler at tcp://127.0.0.1:9"),
+    "walltime not HH:MM:SS": (lambda t, m: ([_ok(t)], {"compute": {"walltime": "2h"}}),
+                              "compute.walltime: expected a time limit as HH:MM:SS"),
 }
 
-# found only once the field's values are read or the results written: `climodes check` cannot see them
-FOUND_WHEN_READING = {"constant field", "nan everywhere", "an infinity (exact)", "an infinity (gram)",
-                      "an infinity (randomized)", "disk full"}
+# found only once the run works: the field's values read, a dask scheduler reached, the results written;
+# `climodes check` reads no values and starts no workers, so it cannot see them
+FOUND_WHEN_RUNNING = {"constant field", "nan everywhere", "an infinity (exact)", "an infinity (gram)",
+                      "an infinity (randomized)", "disk full", "no dask scheduler at the address"}
+
+
+def _no_batch_commands(tmp_path, monkeypatch, scheduler):
+    monkeypatch.setenv("PATH", str(tmp_path / "no-commands-here"))
+    return [_ok(tmp_path)], {"compute": {"scheduler": scheduler}}
 
 
 @pytest.mark.parametrize("case", list(CATALOGUE))
@@ -390,7 +412,7 @@ def test_bad_input_gives_one_line_and_exit_2(tmp_path, cli, monkeypatch, case):
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".out")]
 
 
-@pytest.mark.parametrize("case", [c for c in CATALOGUE if c not in FOUND_WHEN_READING])
+@pytest.mark.parametrize("case", [c for c in CATALOGUE if c not in FOUND_WHEN_RUNNING])
 def test_check_refuses_what_run_refuses(tmp_path, cli, monkeypatch, case):
     """`climodes check` opens the files (metadata only) and looks at the output folder as `run` does."""
     make, expected = CATALOGUE[case]

@@ -24,6 +24,7 @@ import warnings
 from typing import Callable
 
 import dask
+import dask.array
 import numpy as np
 import xarray as xr
 
@@ -150,7 +151,25 @@ def quietly(function: Callable) -> Callable:
     return wrapped
 
 
-def flat(values: np.ndarray) -> np.ndarray:
+class FieldBlock:
+    """Every time step of some latitude rows of the field, not read yet.
+
+    The task that works on a block reads it (every file's piece, joined) when it starts, so on a
+    distributed scheduler a block is read on the worker that reduces it and never travels.  (A plain
+    class: dask would look inside a dataclass and read the block as a task of its own.)
+    """
+
+    def __init__(self, data: dask.array.Array):
+        self.data = data
+
+    def read(self) -> np.ndarray:
+        return np.asarray(self.data.compute(scheduler="synchronous"))
+
+
+def flat(values: np.ndarray | FieldBlock) -> np.ndarray:
+    """A block as a ``(time, point)`` matrix, read first if it is a :class:`FieldBlock`."""
+    if isinstance(values, FieldBlock):
+        values = values.read()
     return values.reshape(values.shape[0], -1)
 
 
@@ -258,8 +277,16 @@ def tree_sum(parts: list):
 
 
 def field_blocks(field: xr.DataArray) -> list:
-    """The field as delayed ``(time, lat rows, lon)`` blocks, all time steps in each."""
+    """The field as ``(time, lat rows, lon)`` blocks, all time steps in each.
+
+    On a local scheduler they are the dask array's own chunks, read by tasks of their own, which the
+    scheduler orders to keep memory low.  Where ``climodes.read-blocks-in-task`` is set (the distributed
+    schedulers of :mod:`climodes.cluster`), each is a :class:`FieldBlock` carrying its own part of the
+    graph only, read by the task that reduces it: its pieces then never travel between workers.
+    """
     data = field.data.rechunk({0: -1, 2: -1})
+    if dask.config.get("climodes.read-blocks-in-task", False):
+        return [FieldBlock(dask.optimize(data.blocks[:, i])[0]) for i in range(data.numblocks[1])]
     return list(data.to_delayed().ravel())
 
 

@@ -34,6 +34,13 @@ def _parser() -> argparse.ArgumentParser:
     run.add_argument("--overwrite", action="store_true", help="replace an existing results folder")
     show = commands.add_parser("show", help="summarise a results folder or modes.nc on one screen")
     show.add_argument("results", help="results folder or its modes.nc")
+    submit = commands.add_parser("submit", help="write a batch script that runs a config, show it and submit it "
+                                                "(sbatch or qsub)")
+    submit.add_argument("config", help="YAML run configuration")
+    submit.add_argument("--dry-run", action="store_true", help="only write the script beside the config and print it")
+    submit.add_argument("--wait", action="store_true", help="wait for the job to end and exit with its exit status")
+    submit.add_argument("--system", choices=["slurm", "pbs"],
+                        help="batch system (default: compute.scheduler if slurm or pbs, else the one installed)")
     return parser
 
 
@@ -67,6 +74,11 @@ def _command(args: argparse.Namespace) -> int:
             print(spec.to_yaml(), end="")
             print("\n".join(described), file=sys.stderr)
             return 0
+        if args.command == "submit":
+            from climodes.pipeline import submit
+
+            return submit(spec, args.system, args.dry_run, args.wait, show=lambda text: print(text, end="", flush=True),
+                          say=lambda line: print(line, file=sys.stderr, flush=True))
         from climodes.cluster import show_progress
         from climodes.pipeline import run
 

@@ -246,6 +246,37 @@ def _workers(value: Any) -> int | str:
     return _whole(1, 4096)(value)
 
 
+_WALLTIME = re.compile(r"^\d{1,4}:[0-5]\d:[0-5]\d$")
+
+
+def _walltime(value: Any) -> str:
+    if value == "auto" or (isinstance(value, str) and _WALLTIME.match(value) and value != "0:00:00"):
+        return value
+    raise ValueError(f"expected a time limit as HH:MM:SS, e.g. \"02:30:00\", or auto; got {quoted(value)}")
+
+
+def _directives(value: Any) -> list[str]:
+    if not isinstance(value, list) or not all(isinstance(v, str) and v.strip() and "\n" not in v for v in value):
+        raise ValueError(f"expected a list of one-line batch options, e.g. [--qos=short]; got {quoted(value)}")
+    return [v.strip() for v in value]
+
+
+def _optional_text(value: Any) -> str | None:
+    if value is None:
+        return None
+    if "\0" in _text(value) or "\n" in value:
+        raise ValueError(f"expected one line of text without NUL characters; got {quoted(value)}")
+    return value
+
+
+def _address(value: Any) -> str | None:
+    if value is None:
+        return None
+    if not isinstance(value, str) or not re.match(r"^(tcp|tls|inproc|ucx)://\S+:\d+$", value):
+        raise ValueError(f"expected a dask scheduler address such as tcp://10.1.2.3:8786, or null; got {quoted(value)}")
+    return value
+
+
 def _key(check: Callable[[Any], Any], doc: str, default: Any = dataclasses.MISSING) -> Any:
     """Declare a config key: its check, a one-line description and its default."""
     if isinstance(default, (list, dict)):
@@ -309,8 +340,26 @@ class ModesSection:
 @dataclass(frozen=True)
 class ComputeSection:
     memory: str = _key(_memory, "memory the run may use, e.g. 4GB; streaming solvers size their blocks by it", "4GB")
-    workers: int | str = _key(_workers, "parallel dask workers: auto (one per core) or a number", "auto")
-    scheduler: str = _key(_choice("threads", "processes", "synchronous"), "where dask runs the work", "threads")
+    workers: int | str = _key(_workers, "dask workers on this machine: auto (one per core of the machine, or of "
+                              "the batch job it runs in) or a number", "auto")
+    scheduler: str = _key(_choice("threads", "processes", "slurm", "pbs", "synchronous"),
+                          "where dask runs: threads, processes (a local cluster), slurm or pbs (worker batch jobs), "
+                          "synchronous (debugging)", "threads")
+    jobs: int = _key(_whole(1, 4096), "slurm/pbs: number of worker batch jobs", 2)
+    job_cores: int = _key(_whole(1, 4096), "slurm/pbs: cores of each worker job (its dask threads)", 4)
+    job_memory: str = _key(_memory, "slurm/pbs: memory of each worker job", "8GB")
+    walltime: str = _key(_walltime, "time limit of batch jobs, HH:MM:SS; auto: estimated from the field and solver",
+                         "auto")
+    queue: str | None = _key(_optional_text, "batch queue (SLURM partition) of batch jobs; null: the default", None)
+    account: str | None = _key(_optional_text, "account charged for batch jobs; null: your default", None)
+    directives: list[str] = _key(_directives, "more batch options, one per line of the script, e.g. [--qos=short]",
+                                 [])
+    interface: str | None = _key(_optional_text, "slurm/pbs: network interface the dask scheduler and workers "
+                                 "talk over, e.g. ib0; null: dask's choice", None)
+    address: str | None = _key(_address, "slurm/pbs: join the dask scheduler running at this address (its "
+                               "workers) instead of starting worker jobs", None)
+    worker_wait: int = _key(_whole(1, 86_400), "slurm/pbs: seconds to wait for the worker jobs to start, and for a lost "
+                            "worker's replacement", 300)
 
 
 @dataclass(frozen=True)
@@ -549,6 +598,9 @@ def _check_together(spec: RunSpec, lines: dict, where: str, problems: list[str])
         report("prepare", "aggregate", "seasonal needs select.months, e.g. [12, 1, 2] for winter")
     if spec.prepare.baseline and spec.prepare.anomalies == "none":
         report("prepare", "baseline", "is only used with anomalies: climatology or mean")
+    if spec.compute.address and spec.compute.scheduler not in ("slurm", "pbs"):
+        report("compute", "address", "joins a running dask scheduler with compute.scheduler slurm or pbs; "
+                                     "set compute.scheduler, or remove compute.address")
 
 
 def _name_max(folder: Path) -> int:

@@ -163,6 +163,7 @@ def provenance(spec: RunSpec, opened: OpenedField, extra: dict) -> dict:
         "references": "North et al. 1982, Mon. Wea. Rev. 110, 699-706 (sampling errors)",
         "date_created": now,
         "climodes_method": extra["method"],
+        "climodes_compute": extra["compute"],
         "climodes_config": config_text,
         "climodes_config_sha256": hashlib.sha256(config_text.encode()).hexdigest(),
         "climodes_input_files": files,

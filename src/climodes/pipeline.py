@@ -18,8 +18,22 @@ from typing import Callable, Iterator
 import xarray as xr
 from dask.array import PerformanceWarning
 
-from climodes.cluster import dask_settings, pass_context, resident_bytes, worker_count
-from climodes.config import RunSpec, memory_bytes
+from climodes.cluster import (
+    batch_job,
+    batch_script,
+    batch_system,
+    Capacity,
+    capacity,
+    check_batch_commands,
+    running,
+    script_path,
+    submit_command,
+    submit_cores,
+    submit_script,
+    walltime,
+    write_script,
+)
+from climodes.config import RunSpec
 from climodes.diagnostics import effective_sample_size, north_errors, separated
 from climodes.errors import UserError
 from climodes.fields import OpenedField, open_field, rechunked, select
@@ -64,7 +78,7 @@ class Planned:
     along_time: TimeSteps
     weights: xr.DataArray
     plan: SolverPlan
-    workers: int
+    room: Capacity
     notes: list[str]
 
 
@@ -104,9 +118,9 @@ def _plan(spec: RunSpec) -> Planned:
     """Open, select and prepare the field lazily and plan the solver: every check before the first pass."""
     opened = open_field(spec.input, spec.select)
     field, along_time, notes = _prepared(spec, opened)
-    workers = worker_count(spec.compute)
-    plan = plan_solver(field.shape, spec.modes.count, spec.modes.method, memory_bytes(spec.compute.memory), workers,
-                       in_use=resident_bytes(), fitted_per_point=along_time.values_per_point)
+    room = capacity(spec.compute)
+    plan = plan_solver(field.shape, spec.modes.count, spec.modes.method, room.memory, room.workers,
+                       in_use=room.in_use, fitted_per_point=along_time.values_per_point)
     steps = field.sizes["time"]
     if steps < spec.modes.count + 1:
         raise UserError(f"modes.count: {spec.modes.count} modes need at least {spec.modes.count + 1} time steps, "
@@ -114,7 +128,7 @@ def _plan(spec: RunSpec) -> Planned:
     if "geotiff" in spec.output.formats:
         check_geotiff_grid(field)
     weights = field_weights(field, spec.prepare.weighting)
-    return Planned(opened, field, along_time, weights, plan, workers, notes)
+    return Planned(opened, field, along_time, weights, plan, room, notes)
 
 
 def check(spec: RunSpec) -> list[str]:
@@ -129,6 +143,7 @@ def check(spec: RunSpec) -> list[str]:
     warned: list[str] = []
     with library_warnings(warned):
         where = check_output_dir(spec)
+        check_batch_commands(spec.compute)
         planned = _plan(spec)
     field, files = planned.field, planned.opened.files
     times = field["time"].values
@@ -144,15 +159,19 @@ def check(spec: RunSpec) -> list[str]:
 
 
 def _solve(spec: RunSpec, planned: Planned, progress: bool):
-    """The decomposition of the planned field (the first pass over the data happens here); a streaming
-    solver gets the field opened again in its blocks of latitude rows."""
-    field, along_time = planned.field, planned.along_time
-    if planned.plan.lat_rows:
-        opened = rechunked(planned.opened, {"time": -1, "lat": planned.plan.lat_rows, "lon": -1})
+    """The decomposition of the planned field (the first pass over the data happens here), where
+    ``compute`` says; a streaming solver gets the field opened again in its blocks of latitude rows.
+    Returns the modes, the decomposition, the point counts and the compute session (where it ran)."""
+    field, along_time, plan = planned.field, planned.along_time, planned.plan
+    if plan.lat_rows:
+        opened = rechunked(planned.opened, {"time": -1, "lat": plan.lat_rows, "lon": -1})
         field, along_time, _ = _prepared(spec, opened)
-    with dask_settings(spec.compute):
-        return solve(field, planned.weights, spec.modes.count, spec.prepare.max_missing, planned.plan,
-                     spec.modes.seed, pass_context(progress, planned.workers), along_time)
+    limit = walltime(spec.compute, plan.method, field.shape, spec.modes.count, field.dtype.itemsize,
+                     planned.room.workers)
+    with running(spec.compute, progress, limit, spec.source.parent) as session:
+        modes, result, counts = solve(field, planned.weights, spec.modes.count, spec.prepare.max_missing, plan,
+                                      spec.modes.seed, session.during, along_time)
+    return modes, result, counts, session
 
 
 def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress: bool = False) -> RunSummary:
@@ -175,7 +194,7 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
         warned: list[str] = []
         with library_warnings(warned):
             planned = _plan(spec)
-            modes, result, counts = _solve(spec, planned, progress)
+            modes, result, counts, session = _solve(spec, planned, progress)
         notes = planned.notes + counts.notes + result.notes + warned
         for line in notes:
             say(f"note: {line}")
@@ -186,7 +205,7 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
         units = "1" if spec.prepare.standardize else planned.opened.data.attrs.get("units")
         extra = dict(errors=errors, separated=apart, n_eff=n_eff, n_eff_how=n_eff_how,
                      method=f"{result.method} (chosen because: {planned.plan.reason})",
-                     notes=notes, units=units, total_variance=result.total_variance,
+                     notes=notes, units=units, total_variance=result.total_variance, compute=session.description,
                      points=(f"{counts.used} of {counts.grid} grid points used; {counts.always_missing} missing at "
                              f"every step; {counts.too_often_missing} missing too often; {counts.filled_values} "
                              "missing values set to zero anomaly"))
@@ -203,6 +222,7 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
             table.append(f"{k + 1:>4}  {frac:8.1f}% +/- {err:4.1f}%   {'yes' if apart[k] else 'no, mixed'}")
         table.append(f"effective sample size {n_eff:.0f} of {steps} steps")
         log = [headline, *table, f"solver: {planned.plan.method} ({planned.plan.reason})",
+               f"compute: {session.description}", *(f"moved: {line}" for line in session.moved),
                *(f"note: {n}" for n in notes), "", "resolved config:", spec.to_yaml()]
         late: list[str] = []
         with library_warnings(late):
@@ -227,3 +247,31 @@ def _write(stage: Path, results: xr.Dataset, spec: RunSpec, opened: OpenedField,
         reason = err.strerror or str(err)
         raise UserError(f"output.dir: cannot write the results to {spec.output.dir} ({reason}); nothing was "
                         "written; free some space or choose another output.dir") from None
+
+
+def submit(spec: RunSpec, system: str | None, dry_run: bool, wait: bool, show: Callable[[str], None],
+           say: Callable[[str], None] = lambda line: None) -> int:
+    """Write the batch script that runs ``spec``, ``show`` it, and submit it (unless ``dry_run``).
+
+    The job asks for the resources the run needs, from the field's size and the solver the plan chooses
+    (see :func:`climodes.cluster.batch_job`); only the field's coordinates are read.  Returns 0, or with
+    ``wait`` the job's exit status.
+    """
+    check_output_dir(spec)
+    chosen = batch_system(spec.compute, system)
+    if not dry_run:
+        submit_command(chosen)
+    planned = _plan(spec)
+    field = planned.field
+    room = capacity(spec.compute, workers=submit_cores(spec.compute, planned.plan.method, field.sizes["lat"]))
+    plan = plan_solver(field.shape, spec.modes.count, spec.modes.method, room.memory, room.workers,
+                       in_use=room.in_use, fitted_per_point=planned.along_time.values_per_point)
+    job = batch_job(spec.source, spec.compute, chosen, plan.method, field.shape, spec.modes.count,
+                    field.dtype.itemsize, plan.memory)
+    text, path = batch_script(job, spec.compute), script_path(spec.source, chosen)
+    write_script(path, text)
+    show(text)
+    if dry_run:
+        say(f"climodes: wrote {path}; not submitted (--dry-run)")
+        return 0
+    return submit_script(path, chosen, wait, say)

@@ -106,11 +106,13 @@ class PointCounts:
 
 @dataclass(frozen=True)
 class SolverPlan:
-    """Which solver runs, why, and (for the streaming ones) how many latitude rows a block holds."""
+    """Which solver runs, why, (for the streaming ones) how many latitude rows a block holds, and the memory
+    in bytes the run needs with it, what it holds already included (what ``climodes submit`` asks for)."""
 
     method: str
     reason: str
     lat_rows: int | None = None
+    memory: int = 0
 
 
 def _size(nbytes: float) -> str:
@@ -155,7 +157,7 @@ def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: in
             raise UserError(f"modes.method: exact needs about {_size(exact_bytes + in_use)} for {shape_text}, more "
                             f"than compute.memory ({_size(budget_given)}); use method auto or gram, or raise "
                             "compute.memory")
-        return SolverPlan("exact", why)
+        return SolverPlan("exact", why, memory=int(in_use + exact_bytes))
     fixed = gram_bytes if method == "gram" else randomized_bytes
     room = 0.7 * budget - fixed
     per_row = workers * BYTES_PER_BLOCK_VALUE[method] * steps * nlon
@@ -167,7 +169,10 @@ def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: in
     rows = max(rows, 1)
     blocks = -(-nlat // rows)
     why += f"; {blocks} block(s) of {rows} latitude rows within compute.memory {_size(budget_given)}"
-    return SolverPlan(method, why, rows)
+    need = (fixed + per_row * rows) / 0.7
+    if method == "gram":  # and enough that auto, planning again with only this much, still takes gram
+        need = max(need, 2 * gram_bytes)
+    return SolverPlan(method, why, rows, int(np.ceil(in_use + need)))
 
 
 # --- the solvers
