@@ -155,6 +155,8 @@ def provenance(spec: RunSpec, opened: OpenedField, extra: dict) -> dict:
         "climodes_points": extra["points"],
         "climodes_notes": "\n".join(extra["notes"]) or "none",
         "climodes_python": sys.version.split()[0],
+        "climodes_elapsed_seconds": float(extra["elapsed"]),
+        "climodes_compute": extra["compute"],
     }
 
 

@@ -6,6 +6,9 @@ this module only calls them in order and collects what the user should hear.
 
 from __future__ import annotations
 
+import os
+import socket
+import time
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable
@@ -13,7 +16,7 @@ from typing import Callable
 import xarray as xr
 
 from climodes.cluster import dask_settings, pass_context, resident_bytes, worker_count
-from climodes.config import RunSpec, memory_bytes
+from climodes.config import FigureOptions, RunSpec, figure_options, memory_bytes
 from climodes.diagnostics import effective_sample_size, north_errors, separated
 from climodes.errors import UserError
 from climodes.fields import OpenedField, open_field, rechunked, select
@@ -26,6 +29,8 @@ from climodes.output import (
     write_netcdf,
 )
 from climodes.prepare import TimeSteps, time_steps
+from climodes.report import REPORT_FILE, Picture, report_html, run_log, stored_config, variance_table
+from climodes.results import open_results, results_path
 from climodes.solvers import plan_solver, solve
 from climodes.weights import field_weights
 
@@ -65,6 +70,7 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
     progress
         Draw a progress bar on stderr for each pass over the data.
     """
+    started = time.monotonic()
     check_output_dir(spec.output)
     opened = open_field(spec.input, spec.select)
     field, along_time, notes = _prepared(spec, opened)
@@ -95,6 +101,8 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
     extra = dict(errors=errors, separated=apart, n_eff=n_eff, n_eff_how=n_eff_how,
                  method=f"{result.method} (chosen because: {plan.reason})",
                  notes=notes, units=units, total_variance=result.total_variance,
+                 elapsed=time.monotonic() - started,
+                 compute=f"{spec.compute.scheduler} scheduler, {workers} worker(s), on {socket.gethostname()}",
                  points=(f"{counts.used} of {counts.grid} grid points used; {counts.always_missing} missing at every "
                          f"step; {counts.too_often_missing} missing too often; {counts.filled_values} missing "
                          "values set to zero anomaly"))
@@ -102,26 +110,68 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
     out = Path(spec.output.dir)
     headline = (f"climodes: {spec.modes.count} modes of {spec.input.variable} from {len(opened.files)} file(s), "
                 f"{steps} time steps x {counts.used} points ({result.method.split(':')[0]} solver) -> {out}")
-    table = ["mode  variance explained  separated (North)"]
-    for k in range(spec.modes.count):
-        frac = 100 * float(results["variance_explained"][k])
-        err = 100 * float(results["variance_explained_error"][k])
-        table.append(f"{k + 1:>4}  {frac:8.1f}% +/- {err:4.1f}%   {'yes' if apart[k] else 'no, mixed'}")
-    table.append(f"effective sample size {n_eff:.0f} of {steps} steps")
-    log = [headline, *table, f"solver: {plan.method} ({plan.reason})", *(f"note: {n}" for n in notes), "",
-           "resolved config:", spec.to_yaml()]
+    table = [*variance_table(results), f"effective sample size {n_eff:.0f} of {steps} steps"]
+    log = run_log(headline, table, f"{plan.method} ({plan.reason})", notes, spec.to_yaml())
     try:
         with staged_dir(out) as stage:
             write_netcdf(results, stage / "modes.nc", opened.time_encoding)
             if "geotiff" in spec.output.formats:
                 write_geotiff(results, stage / "modes.tif")
-            if spec.output.figures:
-                from climodes.figures import draw_all  # the numeric path never imports matplotlib
-
-                draw_all(results, stage)
-            (stage / "run.log").write_text("\n".join(log), encoding="utf-8")
+            publish(stage, spec.output.figures)
+            (stage / "run.log").write_text(log, encoding="utf-8")
     except OSError as err:  # disk full, permissions, a vanished folder: nothing was left behind
         reason = err.strerror or str(err)
         raise UserError(f"output.dir: cannot write the results to {out} ({reason}); nothing was written; "
                         "free some space or choose another output.dir") from None
     return RunSummary(out, headline, table, notes)
+
+
+def publish(folder: Path, options: FigureOptions | bool) -> list[Path]:
+    """Draw the figures of ``folder``'s ``modes.nc`` into ``folder/figures`` and write ``folder/report.html``.
+
+    Both are drawn from ``modes.nc`` alone, so a run and a later ``climodes
+    figures`` give the same images.  Each is written under a hidden name and
+    renamed into place; the files written are returned.
+    """
+    ds = open_results(folder)
+    try:
+        written: list[Path] = []
+        pictures: list[Picture] = []
+        if options:
+            from climodes.figures import replace_figures  # the numeric path never imports matplotlib
+
+            pictures, written = replace_figures(ds, options, folder)
+        report = folder / REPORT_FILE
+        hidden = folder / f".{REPORT_FILE}.partial"
+        hidden.write_text(report_html(ds, pictures), encoding="utf-8")
+        os.replace(hidden, report)
+    finally:
+        ds.close()
+    return [*written, report]
+
+
+def redraw(results: str | Path, **overrides) -> tuple[FigureOptions, list[Path]]:
+    """``climodes figures``: draw a results folder's figures and report again, without recomputing.
+
+    The options stored in the results' config are used, with ``overrides``
+    (``draw``, ``format``, ``dpi``, ``local_modes``; ``None`` keeps the stored
+    one) on top; figures switched off in the run are drawn with the defaults.
+    """
+    target = results_path(results)
+    with open_results(target) as ds:
+        stored = (stored_config(ds).get("output") or {}).get("figures", True)
+    try:
+        options = figure_options(stored) or FigureOptions()
+    except ValueError:
+        options = FigureOptions()
+    for key, value in overrides.items():
+        try:
+            options = options.changed(**{key: value})
+        except ValueError as err:
+            reason = str(err).split(": ", 1)[-1]
+            raise UserError(f"--{key.replace('_', '-')} {value}: {reason}") from None
+    try:
+        return options, publish(target.parent, options)
+    except OSError as err:
+        raise UserError(f"{target.parent}: cannot write the figures ({err.strerror or err}); nothing was "
+                        "replaced; free some space or check the folder's permissions") from None
