@@ -63,7 +63,9 @@ from climodes.report import (  # noqa: E402
 RAW = "#2c5d63"  # the PC itself
 SMOOTH = "#e3872d"  # its running mean
 BAND = "#efeadf"  # one standard deviation either side of zero
+BOX = "#d5e6df"  # the boxes of the box plots
 CAREFUL = "#b86e00"  # the mark of a mode to read with care
+NOISE = "#7b3f98"  # the red-noise threshold
 _FORMATS = {"png": "image/png", "svg": "image/svg+xml"}
 _RC = {"svg.hashsalt": "climodes", "font.size": 9, "axes.titlesize": 9, "axes.labelsize": 9,
        "axes.spines.top": False, "axes.spines.right": False}
@@ -141,7 +143,7 @@ def _header(fig: Figure, title: str, context: str, flags: list[str], height: flo
     for i, flag in enumerate(flags):
         fig.text(0.988, top - i * 0.22 / height, flag, fontsize=8, color="white", va="top", ha="right",
                  fontweight="bold", bbox={"boxstyle": "round,pad=0.3", "facecolor": CAREFUL, "edgecolor": "none"})
-    fig.get_layout_engine().set(rect=(0, 0, 1, 1 - 0.72 / height))
+    fig.get_layout_engine().set(rect=(0, 0, 1, 1 - 0.8 / height))
 
 
 def _mark(ax) -> None:
@@ -233,7 +235,7 @@ def _period_groups(years: np.ndarray, values: np.ndarray) -> tuple[list[np.ndarr
 def _boxes(ax, groups: list[np.ndarray], labels: list[str], xlabel: str) -> None:
     ax.axhline(0, color="0.55", linewidth=0.6, zorder=0)
     ax.boxplot(groups, tick_labels=labels, widths=0.62, patch_artist=True, whis=(5, 95),
-               boxprops={"facecolor": "#d5e6df", "edgecolor": RAW, "linewidth": 0.8},
+               boxprops={"facecolor": BOX, "edgecolor": RAW, "linewidth": 0.8},
                medianprops={"color": SMOOTH, "linewidth": 2.0},
                whiskerprops={"color": RAW, "linewidth": 0.8}, capprops={"color": RAW, "linewidth": 0.8},
                flierprops={"marker": "o", "markersize": 2.2, "markerfacecolor": RAW, "markeredgecolor": "none",
@@ -338,14 +340,16 @@ def spectrum_figure(ds: xr.Dataset) -> Figure:
     fig = plt.figure(figsize=(10.5 if whole else 6.8, 4.4), layout="constrained")
     ax = fig.add_subplot(1, 2 if whole else 1, 1)
     ax.errorbar(modes, share, yerr=error, fmt="none", ecolor="0.25", elinewidth=1, capsize=3, zorder=2)
-    ax.plot(modes[apart], share[apart], "o", color=RAW, markersize=6, label="separated (North's rule)", zorder=3)
-    ax.plot(modes[~apart], share[~apart], "o", markerfacecolor="white", markeredgecolor=CAREFUL, markeredgewidth=1.5,
-            markersize=6, label="not separated: mixed", zorder=3, linestyle="none")
+    if apart.any():
+        ax.plot(modes[apart], share[apart], "o", color=RAW, markersize=6, label="separated (North's rule)", zorder=3)
+    if not apart.all():
+        ax.plot(modes[~apart], share[~apart], "o", markerfacecolor="white", markeredgecolor=CAREFUL,
+                markeredgewidth=1.5, markersize=6, label="not separated: mixed", zorder=3, linestyle="none")
     if noise is not None:
-        ax.step(modes, noise, where="mid", color="#8e44ad", linestyle="--", linewidth=1.2,
-                label="red-noise threshold")
+        ax.step(modes, noise, where="mid", color=NOISE, linestyle="--", linewidth=1.2, label="red-noise threshold")
         weak = np.array([r.significant is False for r in rows])
-        ax.plot(modes[weak], share[weak], "x", color="#8e44ad", markersize=9, label="not significant", zorder=4)
+        if weak.any():
+            ax.plot(modes[weak], share[weak], "x", color=NOISE, markersize=9, label="not significant", zorder=4)
     ax.set_xticks(modes)
     ax.set_xlabel("mode")
     ax.set_ylabel("variance explained (%)")
@@ -359,17 +363,20 @@ def spectrum_figure(ds: xr.Dataset) -> Figure:
     cumulative.set_ylabel("cumulative variance explained (%)", color=SMOOTH)
     handles = ax.get_legend_handles_labels()
     extra = cumulative.get_legend_handles_labels()
-    ax.legend(handles[0] + extra[0], handles[1] + extra[1], fontsize=7.5, frameon=False, loc="upper right")
+    ax.legend(handles[0] + extra[0], handles[1] + extra[1], fontsize=7.5, frameon=False, loc="upper center",
+              bbox_to_anchor=(0.5, -0.16), ncols=3)
     if whole:
         every = ds["spectrum_explained"]
         ranks = ds[every.dims[0]].values if every.dims[0] in ds.coords else np.arange(1, every.size + 1)
         right = fig.add_subplot(1, 2, 2)
-        values = 100 * every.values
-        right.plot(ranks, values, color="0.45", linewidth=0.8, marker="o", markersize=2.2, label="every rank")
-        kept = ranks <= modes.max()
+        values = 100 * every.values.astype(float)
+        resolved = values > 1e-9 * values.max()  # the rest are zero but for rounding (a centred field's last rank)
+        right.plot(ranks[resolved], values[resolved], color="0.45", linewidth=0.8, marker="o", markersize=2.2,
+                   label="every rank")
+        kept = resolved & (ranks <= modes.max())
         right.plot(ranks[kept], values[kept], "o", color=RAW, markersize=5, label="kept")
         if noise is not None:
-            right.step(modes, noise, where="mid", color="#8e44ad", linestyle="--", linewidth=1.2,
+            right.step(modes, noise, where="mid", color=NOISE, linestyle="--", linewidth=1.2,
                        label="red-noise threshold")
         right.set_yscale("log")
         right.set_xscale("log" if ranks.size > 60 else "linear")
@@ -378,7 +385,7 @@ def spectrum_figure(ds: xr.Dataset) -> Figure:
         unresolved = float(every.attrs.get("unresolved_fraction", 0) or 0)
         right.set_title("the whole spectrum" + (f"; {percent(unresolved)} unresolved" if unresolved > 0 else ""),
                         loc="left")
-        right.legend(fontsize=7.5, frameon=False)
+        right.legend(fontsize=7.5, frameon=False, loc="upper center", bbox_to_anchor=(0.5, -0.16), ncols=3)
     _header(fig, "Variance explained", context_text(ds), [], 4.4)
     return fig
 

@@ -40,7 +40,7 @@ DIVERGING = "RdBu_r"
 SEQUENTIAL = "YlGnBu"
 # points that carry no value on the map; the flag values are those of point_status
 NOT_USED = {0: ("#d2d2d2", "no data at any step"),
-            1: ("#7a7a7a", "dropped: missing too often (prepare.max_missing)")}
+            1: ("#8f8272", "dropped: missing too often (prepare.max_missing)")}
 NOT_USED_EITHER = ("#b4b4b4", "not used (no data, or missing too often)")
 
 
@@ -83,8 +83,10 @@ def domain_of(lons: np.ndarray, lats: np.ndarray) -> Domain:
     gaps = np.diff(np.append(unique, unique[0] + 360))
     widest = int(np.argmax(gaps))
     cell = float(np.median(gaps))
-    west = unique[(widest + 1) % unique.size]
-    width = 360 - gaps[widest] + cell
+    if gaps[widest] <= 1.5 * cell:  # no gap: all longitudes, starting where the grid starts
+        west, width = float(np.min(lons)), 360.0
+    else:
+        west, width = unique[(widest + 1) % unique.size], 360 - gaps[widest] + cell
     rows = np.unique(np.round(lats, 6))
     half = float(np.median(np.diff(rows))) / 2 if rows.size > 1 else 0.5
     south, north = max(-90.0, float(np.min(lats)) - half), min(90.0, float(np.max(lats)) + half)
@@ -137,17 +139,20 @@ def frame(ax, domain: Domain, kind: str) -> None:
             ax.set_extent([domain.west, east - 1e-6, domain.south, domain.north], crs=PLATE)
 
 
-def nice_step(span: float, bins: int) -> float:
-    """A step of 1, 2, 2.5 or 5 times a power of ten that cuts ``span`` into about ``bins`` parts."""
-    raw = span / bins
-    power = 10 ** np.floor(np.log10(raw))
-    return float(power * next(m for m in (1, 2, 2.5, 5, 10) if m * power >= raw * (1 - 1e-9)))
+def nice_step(limit: float, bins: int) -> float:
+    """The step of 1, 2, 2.5 or 5 times a power of ten that covers ``limit`` in the number of bins nearest ``bins``.
+
+    Of two steps equally near, the larger is taken.
+    """
+    power = 10 ** np.floor(np.log10(limit / bins))
+    steps = [m * power * f for f in (0.1, 1, 10) for m in (1, 2, 2.5, 5)]
+    return float(min(steps, key=lambda s: (abs(np.ceil(limit / s - 1e-9) - bins), -s)))
 
 
 def symmetric_levels(values: np.ndarray, bins_each_side: int = 5) -> np.ndarray:
     """Colour-level edges symmetric about zero that hold every value, with zero an edge.
 
-    The step is a round number, so the legend reads as people write numbers.
+    The step is a round number, so the colour bar reads as people write numbers.
     """
     limit = float(np.nanmax(np.abs(values))) if np.isfinite(values).any() else 0.0
     if limit == 0:
@@ -193,6 +198,7 @@ def draw_map(ax, ds: xr.Dataset, values: np.ndarray, levels: np.ndarray, cmap: s
     ax.add_geometries([coastlines()], crs=PLATE, facecolor="none", edgecolor="#202020", linewidth=0.6)
     frame(ax, domain, kind)
     _gridlines(ax, domain, kind)
+    ax.set_autoscale_on(False)  # the frame stays where it was set, whatever is drawn on the map later
     return mesh
 
 
@@ -225,10 +231,13 @@ def _gridlines(ax, domain: Domain, kind: str) -> None:
     style = {"color": "#5b5b5b", "linewidth": 0.5, "alpha": 0.7, "linestyle": (0, (1, 2)), "transform": PLATE}
     south, north = (-90.0, 90.0) if kind == "global" and domain.south <= -60 and domain.north >= 60 else \
         (domain.south, domain.north)
+    limits = ax.get_xlim(), ax.get_ylim()
     for lon in lon_lines:
         ax.plot(np.full(100, lon), np.linspace(south, north, 100), **style)
     for lat in lat_lines:
         ax.plot(np.linspace(domain.west, east, 360), np.full(360, lat), **style)
+    ax.set_xlim(limits[0])
+    ax.set_ylim(limits[1])
     text = {"fontsize": 6.5, "color": "#333333", "clip_on": False}
     if kind == "polar":
         north_cap = domain.south >= 0 or domain.north >= 80
@@ -251,7 +260,9 @@ def _gridlines(ax, domain: Domain, kind: str) -> None:
     left = transforms.offset_copy(PLATE._as_mpl_transform(ax), fig=ax.figure, x=-3, units="points")
     if domain.all_longitudes and lon_lines.size > 1 and np.isclose(lon_lines[-1] - lon_lines[0], 360):
         lon_lines = lon_lines[:-1]
+    corner = domain.west if not domain.all_longitudes else None  # one label a corner: the parallel's
     for lon in lon_lines:
-        ax.text(lon, south, _degrees(lon, "E", "W"), transform=below, ha="center", va="top", **text)
+        if corner is None or abs(lon - corner) > 0.35 * step:
+            ax.text(lon, south, _degrees(lon, "E", "W"), transform=below, ha="center", va="top", **text)
     for lat in lat_lines:
         ax.text(domain.west + 1e-3 * domain.width, lat, _degrees(lat, "N", "S"), transform=left, ha="right", va="center", **text)
