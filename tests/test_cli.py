@@ -28,7 +28,7 @@ def test_run_writes_results_and_prints_a_table(tmp_path, small_field, cli):
     assert code == 0, err
     assert out.splitlines()[0].startswith("climodes: 3 modes of tas from 1 file(s), 60 time steps x 648 points")
     assert out.splitlines()[1].split() == ["mode", "variance", "explained", "separated", "(North)"]
-    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["modes.nc", "run.log"]
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["modes.nc", "report.html", "run.log"]
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # no staging folder left
 
 
@@ -164,6 +164,15 @@ CATALOGUE = {
     "output inside a file": (_inside_a_file, "which is a file; choose another folder"),
     "bad yaml syntax": (_bad_yaml, "run.yaml:3: not valid YAML"),
     "disk full": (_disk_full, "output.dir: cannot write the results to"),
+    # figures
+    "unknown figure format": (lambda t, m: ([_ok(t)], {"output": {"figures": {"format": "gif"}}}),
+                              "output.figures: format: expected one of png, svg, pdf; got 'gif'"),
+    "figure resolution too low": (lambda t, m: ([_ok(t)], {"output": {"figures": {"dpi": 10}}}),
+                                  "output.figures: dpi: expected a whole number from 50 to 1200"),
+    "unknown figure kind": (lambda t, m: ([_ok(t)], {"output": {"figures": {"draw": ["maps", "globe"]}}}),
+                            "output.figures: draw: expected a list drawn from maps, series"),
+    "unknown figures key": (lambda t, m: ([_ok(t)], {"output": {"figures": {"resolution": 300}}}),
+                            "output.figures: unknown key resolution; expected draw, format, dpi or local_modes"),
 }
 
 
@@ -190,7 +199,7 @@ def test_existing_output_dir_needs_overwrite(tmp_path, small_field, cli):
     config = write_config(tmp_path, [small_field], modes={"count": 2}, output={"overwrite": True})
     code, _, err = cli("run", config)
     assert code == 0, err
-    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["modes.nc", "run.log"]
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["modes.nc", "report.html", "run.log"]
 
 
 def test_input_files_are_left_unchanged(tmp_path, small_field, cli):

@@ -329,7 +329,7 @@ table.modes td.flag, table.modes th.flag {{ text-align: left; }}
 table.modes td.flag {{ color: #8a4b08; }}
 table.modes tr.careful td {{ background: #fbf0dc; }}
 figure {{ margin: 14px 0 26px; background: #fff; padding: 10px; border: 1px solid #ddd6c6; }}
-figure img {{ display: block; max-width: 100%; height: auto; margin: 0 auto; }}
+figure img {{ display: block; width: 100%; height: auto; margin: 0 auto; }}
 figcaption {{ font-size: 14px; color: #4c5a53; margin-top: 6px; }}
 ul.notes li {{ margin: 3px 0; }}
 pre {{ background: #fffdf8; border: 1px solid #ddd6c6; padding: 12px; overflow-x: auto; font-size: 13px; }}
