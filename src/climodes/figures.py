@@ -67,6 +67,8 @@ BOX = "#d5e6df"  # the boxes of the box plots
 CAREFUL = "#b86e00"  # the mark of a mode to read with care
 NOISE = "#7b3f98"  # the red-noise threshold
 _FORMATS = {"png": "image/png", "svg": "image/svg+xml"}
+# the density of the mode pairs: a sequential map whose lightest shade (one step) still shows on white
+_DENSITY = matplotlib.colors.ListedColormap(matplotlib.colormaps["PuBuGn"](np.linspace(0.22, 1, 256)))
 _RC = {"svg.hashsalt": "climodes", "font.size": 9, "axes.titlesize": 9, "axes.labelsize": 9,
        "axes.spines.top": False, "axes.spines.right": False}
 
@@ -187,13 +189,20 @@ def _map_page(ds: xr.Dataset, panels: list[tuple[str, np.ndarray, np.ndarray, st
     return fig
 
 
+def _per_pc(maps: xr.DataArray, pc: str) -> str:
+    """The colour-bar label of a regression map: the field's units per standard deviation of the PC."""
+    units = units_text(maps.attrs.get("units"))
+    if units == "1":  # a standardised field
+        return f"standard deviations of the field per standard deviation of {pc}"
+    return f"{units or 'field units'} per standard deviation of {pc}"
+
+
 def mode_map(ds: xr.Dataset, k: int) -> Figure:
     """Mode ``k`` (0-based) as a map: its regression pattern, and its correlation map beside it when present."""
     row = mode_rows(ds)[k]
     values = ds["eof"].isel(mode=k).values
-    units = units_text(ds["eof"].attrs.get("units"))
     panels = [(f"regression on PC {row.mode}", values, symmetric_levels(values), DIVERGING,
-               f"{units or 'field units'} per standard deviation of PC {row.mode}")]
+               _per_pc(ds["eof"], f"PC {row.mode}"))]
     if "correlation" in ds:
         panels.append((f"correlation with PC {row.mode}", ds["correlation"].isel(mode=k).values,
                        np.round(np.arange(-1, 1.01, 0.2), 1), DIVERGING,
@@ -205,11 +214,10 @@ def rotated_map(ds: xr.Dataset, k: int) -> Figure:
     """Rotated mode ``k`` (0-based) as a map."""
     number = int(ds["mode"].values[k])
     values = ds["rotated_eof"].isel(mode=k).values
-    units = units_text(ds["rotated_eof"].attrs.get("units", ds["eof"].attrs.get("units")))
     share = (f": {percent(float(ds['rotated_variance_explained'][k]))} of the variance"
              if "rotated_variance_explained" in ds else "")
     panels = [(f"rotated pattern {number}", values, symmetric_levels(values), DIVERGING,
-               f"{units or 'field units'} per standard deviation of rotated PC {number}")]
+               _per_pc(ds["rotated_eof"], f"rotated PC {number}"))]
     return _map_page(ds, panels, f"Rotated mode {number}{share}", [], "rotated_eof")
 
 
@@ -305,11 +313,11 @@ def pairs_figure(ds: xr.Dataset) -> Figure:
     cells = None
     for ax, (i, j) in zip(axes, pairs):
         cells = ax.hexbin(pcs[i], pcs[j], gridsize=size, extent=(-limit, limit, -limit, limit), mincnt=1,
-                          cmap="PuBuGn", bins="log" if steps > 2000 else None, linewidths=0.2,
+                          cmap=_DENSITY, bins="log" if steps > 2000 else None, linewidths=0.2,
                           edgecolors="face", rasterized=True)
         for radius in (1, 2):
-            ax.plot(radius * np.cos(theta), radius * np.sin(theta), color="0.35", linewidth=0.6,
-                    linestyle=(0, (2, 2)))
+            ax.plot(radius * np.cos(theta), radius * np.sin(theta), color="0.2", linewidth=0.7,
+                    linestyle=(0, (2, 2)), zorder=3)
         ax.axhline(0, color="0.7", linewidth=0.5, zorder=0)
         ax.axvline(0, color="0.7", linewidth=0.5, zorder=0)
         ax.set_xlim(-limit, limit)

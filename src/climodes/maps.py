@@ -221,11 +221,13 @@ def _degrees(value: float, positive: str, negative: str) -> str:
 
 def _gridlines(ax, domain: Domain, kind: str) -> None:
     """Meridians and parallels, labelled along the frame (cartopy's gridliner costs seconds a map)."""
-    span = max(domain.width, 2 * (domain.north - domain.south))
-    step = 60 if span > 300 and kind == "global" else 30 if span > 120 else 10 if span > 30 else 5
+    width, height = domain.width, domain.north - domain.south
+    step = 60 if width > 300 and kind == "global" else 30 if width > 120 else 10 if width > 30 else 5
+    lat_step = 30 if height > 90 else 10 if height > 25 else 5
+    if kind == "polar":
+        lat_step = step = max(step, lat_step)
     east = domain.west + domain.width
     lon_lines = np.arange(np.ceil(domain.west / step) * step, east + 1e-9, step)
-    lat_step = min(step, 30)
     lat_lines = np.arange(np.ceil(domain.south / lat_step) * lat_step, domain.north + 1e-9, lat_step)
     lat_lines = lat_lines[np.abs(lat_lines) < 90]
     style = {"color": "#5b5b5b", "linewidth": 0.5, "alpha": 0.7, "linestyle": (0, (1, 2)), "transform": PLATE}
@@ -264,5 +266,5 @@ def _gridlines(ax, domain: Domain, kind: str) -> None:
     for lon in lon_lines:
         if corner is None or abs(lon - corner) > 0.35 * step:
             ax.text(lon, south, _degrees(lon, "E", "W"), transform=below, ha="center", va="top", **text)
-    for lat in lat_lines:
+    for lat in lat_lines[(lat_lines > south + 0.2 * lat_step) & (lat_lines < north - 0.2 * lat_step)]:
         ax.text(domain.west + 1e-3 * domain.width, lat, _degrees(lat, "N", "S"), transform=left, ha="right", va="center", **text)
