@@ -39,7 +39,8 @@ def diagnosed(ds: xr.Dataset, dropped: np.ndarray | None = None, rotation: bool 
     field -= field.mean(axis=0)
     shape = eof.shape[1:]
 
-    anomaly = field / field.std(axis=0, where=used[None, :] & np.ones((steps, 1), bool), ddof=1).clip(1e-12)
+    spread = field.std(axis=0, ddof=1)
+    anomaly = field / np.where(spread > 0, spread, 1.0)
     corr = (pc.values @ anomaly) / (steps - 1)
     ds["correlation"] = ((mode, rows, columns), np.where(used, corr, np.nan).reshape(count, *shape),
                          {"long_name": "correlation of the PC with the prepared field", "units": "1"})
