@@ -321,7 +321,7 @@ def _assert_a_picture(image: np.ndarray, name: str) -> None:
     assert len(colours) >= 25, f"{name} has only {len(colours)} colours"
 
 
-def _level_colours(values: np.ndarray, levels: np.ndarray, cmap: str) -> list:
+def _level_colours(levels: np.ndarray, cmap: str) -> list:
     colours = matplotlib.colormaps[cmap].resampled(len(levels) - 1)
     return [colours(i) for i in range(colours.N)]
 
@@ -339,7 +339,7 @@ def _middle(image: np.ndarray, panels: int = 1) -> np.ndarray:
     return image[int(0.4 * rows):int(0.6 * rows), int(0.4 * columns):int(0.6 * columns)]
 
 
-def _check_domain(folder, dropped, dpi=50) -> None:
+def _check_domain(folder, dropped) -> None:
     ds = open_results(folder)
     for name in EXPECTED:
         path = folder / "figures" / f"{name}.png"
@@ -347,10 +347,10 @@ def _check_domain(folder, dropped, dpi=50) -> None:
         _assert_a_picture(image, name)
         if name.startswith("mode_"):
             values = ds["eof"].isel(mode=int(name[-2:]) - 1).values
-            colours = _level_colours(values, symmetric_levels(values), DIVERGING)
+            colours = _level_colours(symmetric_levels(values), DIVERGING)
             assert _share(_middle(image, 2), colours) > 0.3, f"{name}: no data in the middle of the map"
         if name == "residuals":
-            colours = _level_colours(None, np.linspace(0, 1, 11), SEQUENTIAL)
+            colours = _level_colours(np.linspace(0, 1, 11), SEQUENTIAL)
             assert _share(image[:, image.shape[1] // 2:], colours) > 0.05
         if name.startswith("pc_"):
             top = image[: image.shape[0] // 2]  # the series: the PC and its running mean
@@ -383,7 +383,7 @@ def test_maps_of_a_dateline_box_without_the_network(tmp_path, cli, offline):
     assert lons.min() == pytest.approx(142.5) and lons.max() == pytest.approx(237.5)  # one piece, not two
     image = _image(written[0])
     values = ds["eof"].isel(mode=0).values
-    assert _share(_middle(image), _level_colours(values, symmetric_levels(values), DIVERGING)) > 0.3
+    assert _share(_middle(image), _level_colours(symmetric_levels(values), DIVERGING)) > 0.3
 
 
 def _legend(fig) -> list[str]:

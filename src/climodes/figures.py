@@ -28,7 +28,6 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Iterator
 
-import cartopy.crs as ccrs  # noqa: F401  (GeoAxes need cartopy registered before drawing)
 import matplotlib
 
 matplotlib.use("Agg")
