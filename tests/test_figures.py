@@ -495,3 +495,18 @@ def test_figure_options_in_the_config(tmp_path, small_field):
     assert options == FigureOptions(draw=["maps", "pairs"], format="svg", dpi=200)
     assert load_spec(write_config(tmp_path, [small_field], output={"figures": True})).output.figures == \
         FigureOptions()
+
+
+def test_a_figure_that_fails_costs_the_figures_not_the_results(tmp_path, small_field, cli, monkeypatch):
+    def broken(ds, options):
+        raise ValueError("a drawing problem")
+        yield
+
+    monkeypatch.setattr(figures, "pages", broken)
+    config = write_config(tmp_path, [small_field], modes={"count": 2}, output={"figures": {"dpi": 50}})
+    code, out, err = cli("run", config)
+    assert code == 0
+    assert "note: the figures could not be drawn (ValueError: a drawing problem); the results are complete; " \
+           f"climodes figures {tmp_path / 'out'} draws them again" in err
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["modes.nc", "report.html", "run.log"]
+    assert "could not be drawn" in (tmp_path / "out" / "run.log").read_text()

@@ -111,19 +111,37 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
     headline = (f"climodes: {spec.modes.count} modes of {spec.input.variable} from {len(opened.files)} file(s), "
                 f"{steps} time steps x {counts.used} points ({result.method.split(':')[0]} solver) -> {out}")
     table = [*variance_table(results), f"effective sample size {n_eff:.0f} of {steps} steps"]
-    log = run_log(headline, table, f"{plan.method} ({plan.reason})", notes, spec.to_yaml())
     try:
         with staged_dir(out) as stage:
             write_netcdf(results, stage / "modes.nc", opened.time_encoding)
             if "geotiff" in spec.output.formats:
                 write_geotiff(results, stage / "modes.tif")
-            publish(stage, spec.output.figures)
+            notes += _drawn(stage, spec.output.figures, out, say)
+            log = run_log(headline, table, f"{plan.method} ({plan.reason})", notes, spec.to_yaml())
             (stage / "run.log").write_text(log, encoding="utf-8")
     except OSError as err:  # disk full, permissions, a vanished folder: nothing was left behind
         reason = err.strerror or str(err)
         raise UserError(f"output.dir: cannot write the results to {out} ({reason}); nothing was written; "
                         "free some space or choose another output.dir") from None
     return RunSummary(out, headline, table, notes)
+
+
+def _drawn(stage: Path, options: FigureOptions | bool, out: Path, say: Callable[[str], None]) -> list[str]:
+    """Draw a run's figures and report; a figure that fails to draw costs the figures, never the results.
+
+    Returns the note to add when it failed (none when it did not).
+    """
+    try:
+        publish(stage, options)
+        return []
+    except (UserError, OSError):
+        raise
+    except Exception as err:  # a drawing problem: the computed modes are kept, and the note says how to retry
+        line = (f"the figures could not be drawn ({type(err).__name__}: {err}); the results are complete; "
+                f"climodes figures {out} draws them again")
+        say(f"note: {line}")
+        publish(stage, False)
+        return [line]
 
 
 def publish(folder: Path, options: FigureOptions | bool) -> list[Path]:
