@@ -38,7 +38,7 @@ def test_run_writes_results_and_prints_a_table(tmp_path, small_field, cli):
     assert code == 0, err
     assert out.splitlines()[0].startswith("climodes: 3 modes of tas from 1 file(s), 60 time steps x 648 points")
     assert out.splitlines()[1].split() == ["mode", "variance", "explained", "separated", "(North)"]
-    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == [".climodes-results.json", "modes.nc", "run.log"]
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == [".climodes-results.json", "modes.nc", "report.html", "run.log"]
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # no staging folder or claim left
 
 
@@ -60,8 +60,8 @@ def test_count_above_the_rank_keeps_the_non_null_modes(tmp_path, cli):
     ds = xr.open_dataset(tmp_path / "out" / "modes.nc")
     assert ds.sizes["mode"] == 3 and "only 3 that are not null" in ds.attrs["climodes_notes"]
     np.testing.assert_allclose(ds["pc"].std("time", ddof=1), 1.0, rtol=1e-8)
-    assert sorted(p.name for p in (tmp_path / "out").glob("mode_*.png")) == ["mode_01.png", "mode_02.png",
-                                                                            "mode_03.png"]
+    assert sorted(p.name for p in (tmp_path / "out" / "figures").glob("mode_*.png")) == [
+        "mode_01.png", "mode_02.png", "mode_03.png"]
     assert "not null" in (tmp_path / "out" / "run.log").read_text()
     code, shown, _ = cli("show", tmp_path / "out")
     assert code == 0 and sum(1 for line in shown.splitlines() if line.strip()[:1].isdigit() and "%" in line) == 3
@@ -386,6 +386,15 @@ CATALOGUE = {
         "compute.address: cannot reach a dask scheduler at tcp://127.0.0.1:9"),
     "walltime not HH:MM:SS": (lambda t, m: ([_ok(t)], {"compute": {"walltime": "2h"}}),
                               "compute.walltime: expected a time limit as HH:MM:SS"),
+    # figures
+    "unknown figure format": (lambda t, m: ([_ok(t)], {"output": {"figures": {"format": "gif"}}}),
+                              "output.figures: format: expected one of png, svg, pdf; got 'gif'"),
+    "figure resolution too low": (lambda t, m: ([_ok(t)], {"output": {"figures": {"dpi": 10}}}),
+                                  "output.figures: dpi: expected a whole number from 50 to 1200"),
+    "unknown figure kind": (lambda t, m: ([_ok(t)], {"output": {"figures": {"draw": ["maps", "globe"]}}}),
+                            "output.figures: draw: expected a list drawn from maps, series"),
+    "unknown figures key": (lambda t, m: ([_ok(t)], {"output": {"figures": {"resolution": 300}}}),
+                            "output.figures: unknown key resolution; expected draw, format, dpi or local_modes"),
 }
 
 # found only once the run works: the field's values read, a dask scheduler reached, the results written;
@@ -463,7 +472,7 @@ def test_existing_output_dir_needs_overwrite(tmp_path, small_field, cli):
     config = write_config(tmp_path, [small_field], modes={"count": 2}, output={"overwrite": True})
     code, _, err = cli("run", config)
     assert code == 0, err
-    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == [".climodes-results.json", "modes.nc", "run.log"]
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == [".climodes-results.json", "modes.nc", "report.html", "run.log"]
 
 
 def test_a_folder_climodes_did_not_make_is_never_replaced(tmp_path, small_field, cli):

@@ -93,10 +93,12 @@ def test_demo_results_are_cf_compliant(demo_run):
 def test_demo_figures_exist_and_are_pictures(demo_run):
     root, _ = demo_run
     folder = root / "results" / "demo"
-    names = sorted(p.name for p in folder.glob("*.png"))
-    assert names == [f"mode_0{k}.png" for k in range(1, 6)] + ["pcs.png", "variance.png"]
-    for p in folder.glob("*.png"):
+    names = sorted(p.name for p in (folder / "figures").iterdir())
+    assert names == sorted([f"mode_0{k}.png" for k in range(1, 6)] + [f"pc_0{k}.png" for k in range(1, 6)]
+                           + ["pairs.png", "spectrum.png"])
+    for p in (folder / "figures").iterdir():
         assert p.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and p.stat().st_size > 10_000
+    assert (folder / "report.html").stat().st_size > 100_000
 
 
 def test_demo_files_are_reproducible(tmp_path):

@@ -21,7 +21,7 @@ from climodes.output import MARK, read_mark, unlisted, write_file_atomically
 from climodes.results import open_results
 from conftest import write_config
 
-RESULTS = [MARK, "modes.nc", "run.log"]
+RESULTS = [MARK, "modes.nc", "report.html", "run.log"]
 
 
 def snapshot(root: Path) -> dict[str, tuple]:
@@ -167,7 +167,8 @@ def test_the_manifest_names_the_run_and_lists_every_file(site, cli):
     assert mark["kind"] == "climodes results folder" and mark["config"] == str(config)
     assert mark["pid"] == os.getpid() and mark["host"] and mark["climodes"] and mark["run_id"]
     assert mark["started"] <= mark["finished"]
-    assert sorted(mark["files"]) == sorted(p.name for p in folder.iterdir() if p.name != MARK)
+    every = sorted(p.relative_to(folder).as_posix() for p in folder.rglob("*") if p.is_file() and p.name != MARK)
+    assert "figures/mode_01.png" in every and mark["files"] == every  # the files below figures/ too
     assert unlisted(folder, mark) == []
 
 
@@ -269,7 +270,8 @@ def test_results_folders_follow_the_umask(site, cli):
         os.umask(old)
     folder = project / "results"
     assert stat.S_IMODE(folder.stat().st_mode) == 0o750  # not 0700: the group may read, as the umask says
-    assert {stat.S_IMODE(p.stat().st_mode) for p in folder.iterdir()} == {0o640}
+    assert {stat.S_IMODE(p.stat().st_mode) for p in folder.rglob("*") if p.is_file()} == {0o640}
+    assert {stat.S_IMODE(p.stat().st_mode) for p in folder.rglob("*") if p.is_dir()} == {0o750}  # figures/
 
 
 def _reaped() -> int:
@@ -399,3 +401,24 @@ def test_temporary_files_of_killed_runs_go_and_others_stay(tmp_path):
         path.write_text("x")
     write_file_atomically(tmp_path / "report.html", lambda path: path.write_text("<html>"))
     assert not dead.exists() and alive.exists() and theirs.exists()
+
+
+def test_figures_drawn_again_keep_the_manifest_true(site, cli):
+    """`climodes figures` changes a finished results folder in place: its manifest then lists the new
+    figures, so a later run may still replace the folder, and a file of the user's put into figures/
+    is never removed: the redraw and the replacing run both refuse and leave it."""
+    project, source = site
+    config = _config(project, source, dir="results", figures=True)
+    assert cli("run", config)[0] == 0
+    folder = project / "results"
+    code, _, err = cli("figures", folder, "--format", "svg", "--draw", "maps")
+    assert code == 0, err
+    mark = read_mark(folder)
+    assert "figures/mode_01.svg" in mark["files"] and "figures/mode_01.png" not in mark["files"]
+    assert unlisted(folder, mark) == [] and not leftovers(project)
+    assert cli("run", config)[0] == 0  # replaced: everything in it was climodes' own
+    (folder / "figures" / "my_notes.txt").write_text("mine")
+    for command in (("figures", folder), ("run", config)):
+        code, _, err = cli(*command)
+        assert code == 2 and "my_notes.txt" in err and len(err.strip().splitlines()) == 1, err
+        assert (folder / "figures" / "my_notes.txt").read_text() == "mine"

@@ -28,12 +28,19 @@ def _parser() -> argparse.ArgumentParser:
     check = commands.add_parser("check", help="validate a config against its files and output folder; print it "
                                               "with every default filled in")
     check.add_argument("config", help="YAML run configuration")
-    run = commands.add_parser("run", help="run a config: write modes.nc, figures and run.log")
+    run = commands.add_parser("run", help="run a config: write modes.nc, figures, report.html and run.log")
     run.add_argument("config", help="YAML run configuration")
     run.add_argument("-q", "--quiet", action="store_true", help="print nothing but errors")
     run.add_argument("--overwrite", action="store_true", help="replace an existing results folder")
     show = commands.add_parser("show", help="summarise a results folder or modes.nc on one screen")
     show.add_argument("results", help="results folder or its modes.nc")
+    figures = commands.add_parser("figures", help="draw a results folder's figures and report.html again from "
+                                  "its modes.nc (no recomputing); options override the run's output.figures")
+    figures.add_argument("results", help="results folder or its modes.nc")
+    figures.add_argument("--draw", metavar="KINDS", help="comma-separated: maps, series, pairs, spectrum, residuals")
+    figures.add_argument("--format", help="png, svg or pdf")
+    figures.add_argument("--dpi", help="resolution in dots per inch (50 to 1200)")
+    figures.add_argument("--local-modes", metavar="K", help="draw the local variance explained by modes 1..K")
     submit = commands.add_parser("submit", help="write a batch script that runs a config, show it and submit it "
                                                 "(sbatch or qsub)")
     submit.add_argument("config", help="YAML run configuration")
@@ -42,6 +49,20 @@ def _parser() -> argparse.ArgumentParser:
     submit.add_argument("--system", choices=["slurm", "pbs"],
                         help="batch system (default: compute.scheduler if slurm or pbs, else the one installed)")
     return parser
+
+
+def _redraw(args: argparse.Namespace) -> str:
+    from climodes.pipeline import redraw
+
+    def whole(value: str | None) -> int | str | None:
+        return int(value) if value is not None and value.strip().isdigit() else value
+
+    options, written = redraw(args.results, draw=args.draw.split(",") if args.draw else None,
+                              format=args.format, dpi=whole(args.dpi), local_modes=whole(args.local_modes))
+    figures = len(written) - 1
+    where = written[-1].parent
+    return (f"climodes: drew {figures} figure(s) ({options.format}, {options.dpi} dpi) into {where / 'figures'} "
+            f"and wrote {written[-1]}")
 
 
 def _interrupt(signum, frame):  # noqa: ARG001  (signal handler signature)
@@ -65,6 +86,9 @@ def _command(args: argparse.Namespace) -> int:
             from climodes.report import summary
 
             print(summary(args.results))
+            return 0
+        if args.command == "figures":
+            print(_redraw(args))
             return 0
         spec = load_spec(args.config)  # config problems are found here, before the big imports
         if args.command == "check":

@@ -221,6 +221,53 @@ def _formats(value: Any) -> list[str]:
     return value
 
 
+FIGURE_KINDS = ("maps", "series", "pairs", "spectrum", "residuals")
+FIGURE_FORMATS = ("png", "svg", "pdf")
+
+
+@dataclass(frozen=True)
+class FigureOptions:
+    """Which figures ``output.figures`` asks for, in which file format and at what resolution."""
+
+    draw: list[str] = field(default_factory=lambda: list(FIGURE_KINDS))
+    format: str = "png"
+    dpi: int = 200
+    local_modes: int | None = None
+
+    def changed(self, **given: Any) -> "FigureOptions":
+        """These options with some replaced (``None`` values leave an option as it is), checked again."""
+        values = dataclasses.asdict(self) | {k: v for k, v in given.items() if v is not None}
+        return figure_options(values)
+
+
+def figure_options(value: Any) -> FigureOptions | bool:
+    """Check ``output.figures``: ``false``, ``true`` (every figure, the defaults) or a mapping of options."""
+    if value is False:
+        return False
+    if value is True:
+        return FigureOptions()
+    if not isinstance(value, dict):
+        raise ValueError(f"expected true, false or a mapping with keys draw, format, dpi, local_modes; got {value!r}")
+    unknown = [str(k) for k in value if k not in ("draw", "format", "dpi", "local_modes")]
+    if unknown:
+        raise ValueError(f"unknown key {unknown[0]}; expected draw, format, dpi or local_modes")
+    draw = value.get("draw", list(FIGURE_KINDS))
+    if isinstance(draw, str):
+        draw = [draw]
+    if not isinstance(draw, list) or not draw or not all(d in FIGURE_KINDS for d in draw):
+        raise ValueError(f"draw: expected a list drawn from {', '.join(FIGURE_KINDS)}; got {draw!r}")
+    kind = value.get("format", "png")
+    if kind not in FIGURE_FORMATS:
+        raise ValueError(f"format: expected one of {', '.join(FIGURE_FORMATS)}; got {kind!r}")
+    dpi = value.get("dpi", 200)
+    if isinstance(dpi, bool) or not isinstance(dpi, int) or not 50 <= dpi <= 1200:
+        raise ValueError(f"dpi: expected a whole number from 50 to 1200; got {dpi!r}")
+    local = value.get("local_modes")
+    if local is not None and (isinstance(local, bool) or not isinstance(local, int) or local < 1):
+        raise ValueError(f"local_modes: expected a whole number of 1 or more, or null for all modes; got {local!r}")
+    return FigureOptions(draw=[k for k in FIGURE_KINDS if k in draw], format=kind, dpi=dpi, local_modes=local)
+
+
 _SIZE = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*(B|KB|MB|GB|TB|KiB|MiB|GiB|TiB)\s*$", re.IGNORECASE)
 _FACTORS = {"b": 1, "kb": 1e3, "mb": 1e6, "gb": 1e9, "tb": 1e12, "kib": 2**10, "mib": 2**20, "gib": 2**30,
             "tib": 2**40}
@@ -366,7 +413,10 @@ class ComputeSection:
 class OutputSection:
     dir: str = _key(_path, "results folder, read from the config's folder", "results")
     formats: list[str] = _key(_formats, "files to write: netcdf (always), geotiff (modes.tif)", ["netcdf"])
-    figures: bool = _key(_boolean, "draw a map per mode, the PC series and the variance spectrum", True)
+    figures: FigureOptions | bool = _key(
+        figure_options, "figures: true (all, defaults), false (none), or a mapping of draw, format, dpi, local_modes",
+        FigureOptions()
+    )
     overwrite: bool = _key(_boolean, "replace an existing results folder", False)
 
 

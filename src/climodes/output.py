@@ -171,6 +171,8 @@ def provenance(spec: RunSpec, opened: OpenedField, extra: dict) -> dict:
         "climodes_points": extra["points"],
         "climodes_notes": "\n".join(extra["notes"]) or "none",
         "climodes_python": sys.version.split()[0],
+        "climodes_elapsed_seconds": float(extra["elapsed"]),
+        "climodes_compute": extra["compute"],
     }
 
 
@@ -305,20 +307,47 @@ def _read_json(path: Path) -> dict | None:
     return data if isinstance(data, dict) and data.get("kind") == _KIND else None
 
 
+def _plain(name: object) -> bool:
+    """A relative path inside a results folder: no absolute path, no ``..``, no empty or ``.`` part."""
+    return isinstance(name, str) and bool(name) and not name.startswith("/") and all(
+        part not in ("", ".", "..") for part in name.split("/"))
+
+
 def read_mark(folder: Path) -> dict | None:
     """The manifest of a finished results folder, or None if ``folder`` has none that climodes wrote."""
     mark = _read_json(Path(folder) / MARK)
     files = mark.get("files") if mark else None
-    plain = isinstance(files, list) and all(
-        isinstance(f, str) and f not in ("", ".", "..") and f == os.path.basename(f) for f in files)
-    return mark if plain else None
+    return mark if isinstance(files, list) and all(_plain(f) for f in files) else None
+
+
+def listing(folder: Path) -> list[str]:
+    """Every regular file below ``folder`` (but its manifest), as sorted ``/``-separated relative paths."""
+    found = []
+    for root, dirs, files in os.walk(folder):
+        inside = Path(root).relative_to(folder)
+        found += [(inside / name).as_posix() for name in files]
+    return sorted(name for name in found if name != MARK)
 
 
 def unlisted(folder: Path, mark: dict) -> list[str]:
-    """What ``folder`` holds beyond the regular files its manifest lists (sub-folders and links included)."""
+    """What ``folder`` holds beyond the regular files its manifest lists and the sub-folders holding them
+    (links, other files and folders included), as relative paths."""
     listed = set(mark["files"]) | {MARK}
-    with os.scandir(folder) as entries:
-        return sorted(e.name for e in entries if e.name not in listed or not e.is_file(follow_symlinks=False))
+    holding = {Path(name).parent.as_posix() for name in listed} - {"."}
+    holding |= {parent.as_posix() for name in holding for parent in Path(name).parents if parent != Path(".")}
+    found = []
+
+    def look(inside: Path) -> None:
+        with os.scandir(folder / inside) as entries:
+            for entry in entries:
+                name = (inside / entry.name).as_posix()
+                if entry.is_dir(follow_symlinks=False) and name in holding:
+                    look(inside / entry.name)
+                elif name not in listed or not entry.is_file(follow_symlinks=False):
+                    found.append(name)
+
+    look(Path("."))
+    return sorted(found)
 
 
 def _pid_alive(pid: object) -> bool:
@@ -538,7 +567,8 @@ def _identity(folder: Path) -> tuple | None:
 
 
 def _remove_results(folder: Path) -> list[str]:
-    """Remove the files a results folder's manifest lists, then the folder; return the names that stay."""
+    """Remove the files a results folder's manifest lists, the sub-folders they leave empty, then the
+    folder; return what stays (names of what climodes did not write)."""
     mark = read_mark(folder)
     if mark is None:
         return sorted(os.listdir(folder))
@@ -546,6 +576,10 @@ def _remove_results(folder: Path) -> list[str]:
         with contextlib.suppress(FileNotFoundError):
             if stat.S_ISREG(os.lstat(folder / name).st_mode):
                 os.unlink(folder / name)
+    parents = {parent for name in mark["files"] for parent in Path(name).parents if parent != Path(".")}
+    for parent in sorted(parents, key=lambda p: len(p.parts), reverse=True):
+        with contextlib.suppress(OSError):  # not empty: something of someone else's stays in it
+            os.rmdir(folder / parent)
     os.unlink(folder / MARK)
     left = sorted(os.listdir(folder))
     if not left:
@@ -642,7 +676,7 @@ def _make_parents(final: Path) -> list[Path]:
 
 def _write_mark(folder: Path, me: dict, files: list[str] | None) -> None:
     """Write the manifest of ``folder``: the ``files`` it holds, or None while it is being written."""
-    body = {**me, "files": files, **({"finished": _now()} if files is not None else {})}
+    body = {**me, "files": files, **({"finished": _now()} if files is not None and "finished" not in me else {})}
     write_file_atomically(folder / MARK, lambda path: path.write_text(json.dumps(body, indent=1), encoding="utf-8"),
                           replace=True)
 
@@ -720,7 +754,7 @@ def results_folder(spec: RunSpec, say: Callable[[str], None] = lambda line: None
             _write_mark(stage, me, None)
         yield stage
         with _writing(final), _signals_held(act=False):
-            _write_mark(stage, me, sorted(name for name in os.listdir(stage) if name != MARK))
+            _write_mark(stage, me, listing(stage))
             if _read_json(claim) != me:
                 raise UserError(f"output.dir: another run took over the claim on {final}; no results were written")
             notes = _put_in_place(stage, final, before)
@@ -736,6 +770,32 @@ def results_folder(spec: RunSpec, say: Callable[[str], None] = lambda line: None
             for folder in [] if done else reversed(made):
                 with contextlib.suppress(OSError):
                     os.rmdir(folder)
+
+
+@contextlib.contextmanager
+def results_update(folder: Path) -> Iterator[None]:
+    """Change a finished results folder in place (its figures drawn again), keeping its manifest true.
+
+    The folder must carry its mark and hold nothing climodes did not write; it is claimed as a run
+    claims it, so no run replaces it meanwhile.  When the block ends, the manifest lists what the
+    folder holds then (the block writes only climodes' own files into it, each atomically).
+    """
+    folder = Path(folder)
+    mark = read_mark(folder)
+    if mark is None:
+        raise UserError(f"{folder}: not a climodes results folder (it has no {MARK}); give a folder written by "
+                        "climodes run")
+    if foreign := unlisted(folder, mark):
+        raise UserError(f"{folder}: holds {foreign[0]}, which climodes did not write; move it away and try again")
+    me = _run_identity(Path(mark.get("config", "")))
+    claim = _claim(folder, me)
+    try:
+        yield
+        _write_mark(folder, {**mark, "updated": _now()}, listing(folder))
+    finally:
+        with _signals_held(act=True), contextlib.suppress(OSError):
+            if _read_json(claim) == me:
+                os.unlink(claim)
 
 
 @contextlib.contextmanager

@@ -10,6 +10,8 @@ refuses too.
 from __future__ import annotations
 
 import contextlib
+import os
+import time
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -33,7 +35,7 @@ from climodes.cluster import (
     walltime,
     write_script,
 )
-from climodes.config import RunSpec
+from climodes.config import FigureOptions, RunSpec, figure_options
 from climodes.diagnostics import effective_sample_size, north_errors, separated
 from climodes.errors import UserError
 from climodes.fields import OpenedField, open_field, rechunked, select
@@ -43,10 +45,14 @@ from climodes.output import (
     check_output_dir,
     results_dataset,
     results_folder,
+    results_update,
+    write_file_atomically,
     write_geotiff,
     write_netcdf,
 )
 from climodes.prepare import TimeSteps, time_steps
+from climodes.report import REPORT_FILE, Picture, report_html, run_log, stored_config, variance_table
+from climodes.results import open_results, results_path
 from climodes.solvers import SolverPlan, plan_solver, solve
 from climodes.weights import field_weights
 
@@ -189,6 +195,7 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
     progress
         Draw a progress bar on stderr for each pass over the data.
     """
+    started = time.monotonic()
     out = Path(spec.output.dir)
     with results_folder(spec, say) as stage:
         warned: list[str] = []
@@ -206,6 +213,7 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
         extra = dict(errors=errors, separated=apart, n_eff=n_eff, n_eff_how=n_eff_how,
                      method=f"{result.method} (chosen because: {planned.plan.reason})",
                      notes=notes, units=units, total_variance=result.total_variance, compute=session.description,
+                     elapsed=time.monotonic() - started,
                      points=(f"{counts.used} of {counts.grid} grid points used; {counts.always_missing} missing at "
                              f"every step; {counts.too_often_missing} missing too often; {counts.filled_values} "
                              "missing values set to zero anomaly"))
@@ -215,38 +223,41 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
         headline = (f"climodes: {kept} modes{asked} of {spec.input.variable} from {len(planned.opened.files)} "
                     f"file(s), {steps} time steps x {counts.used} points ({result.method.split(':')[0]} solver) "
                     f"-> {out}")
-        table = ["mode  variance explained  separated (North)"]
-        for k in range(kept):
-            frac = 100 * float(results["variance_explained"][k])
-            err = 100 * float(results["variance_explained_error"][k])
-            table.append(f"{k + 1:>4}  {frac:8.1f}% +/- {err:4.1f}%   {'yes' if apart[k] else 'no, mixed'}")
-        table.append(f"effective sample size {n_eff:.0f} of {steps} steps")
-        log = [headline, *table, f"solver: {planned.plan.method} ({planned.plan.reason})",
-               f"compute: {session.description}", *(f"moved: {line}" for line in session.moved),
-               *(f"note: {n}" for n in notes), "", "resolved config:", spec.to_yaml()]
+        table = [*variance_table(results), f"effective sample size {n_eff:.0f} of {steps} steps"]
+        where = [f"solver: {planned.plan.method} ({planned.plan.reason})", f"compute: {session.description}",
+                 *(f"moved: {line}" for line in session.moved)]
         late: list[str] = []
         with library_warnings(late):
-            _write(stage, results, spec, planned.opened, log)
+            late += _write(stage, results, spec, planned.opened)
         for line in late:
             say(f"note: {line}")
+        log = run_log(headline, table, where, notes + late, spec.to_yaml())
+        _write_log(stage, log, spec)
     return RunSummary(out, headline, table, notes + late)
 
 
-def _write(stage: Path, results: xr.Dataset, spec: RunSpec, opened: OpenedField, log: list[str]) -> None:
-    """Write every results file into the staging folder."""
+def _write(stage: Path, results: xr.Dataset, spec: RunSpec, opened: OpenedField) -> list[str]:
+    """Write the results files, figures and report into the staging folder; return notes on the figures."""
     try:
         write_netcdf(results, stage / "modes.nc", opened.time_encoding)
         if "geotiff" in spec.output.formats:
             write_geotiff(results, stage / "modes.tif")
-        if spec.output.figures:
-            from climodes.figures import draw_all  # the numeric path never imports matplotlib
-
-            draw_all(results, stage)
-        (stage / "run.log").write_text("\n".join(log), encoding="utf-8")
+        return _drawn(stage, spec.output.figures, Path(spec.output.dir))
     except OSError as err:  # disk full, permissions, a vanished folder: nothing is left behind
-        reason = err.strerror or str(err)
-        raise UserError(f"output.dir: cannot write the results to {spec.output.dir} ({reason}); nothing was "
-                        "written; free some space or choose another output.dir") from None
+        raise _cannot_write(spec, err) from None
+
+
+def _write_log(stage: Path, log: str, spec: RunSpec) -> None:
+    try:
+        (stage / "run.log").write_text(log, encoding="utf-8")
+    except OSError as err:
+        raise _cannot_write(spec, err) from None
+
+
+def _cannot_write(spec: RunSpec, err: OSError) -> UserError:
+    reason = err.strerror or str(err)
+    return UserError(f"output.dir: cannot write the results to {spec.output.dir} ({reason}); nothing was "
+                     "written; free some space or choose another output.dir")
 
 
 def submit(spec: RunSpec, system: str | None, dry_run: bool, wait: bool, show: Callable[[str], None],
@@ -275,3 +286,70 @@ def submit(spec: RunSpec, system: str | None, dry_run: bool, wait: bool, show: C
         say(f"climodes: wrote {path}; not submitted (--dry-run)")
         return 0
     return submit_script(path, chosen, wait, say)
+
+
+def _drawn(stage: Path, options: FigureOptions | bool, out: Path) -> list[str]:
+    """Draw a run's figures and report; a figure that fails to draw costs the figures, never the results.
+
+    Returns the note to add when it failed (none when it did not).
+    """
+    try:
+        publish(stage, options)
+        return []
+    except (UserError, OSError):
+        raise
+    except Exception as err:  # a drawing problem: the computed modes are kept, and the note says how to retry
+        publish(stage, False)
+        return [f"the figures could not be drawn ({type(err).__name__}: {err}); the results are complete; "
+                f"climodes figures {out} draws them again"]
+
+
+def publish(folder: Path, options: FigureOptions | bool) -> list[Path]:
+    """Draw the figures of ``folder``'s ``modes.nc`` into ``folder/figures`` and write ``folder/report.html``.
+
+    Both are drawn from ``modes.nc`` alone, so a run and a later ``climodes
+    figures`` give the same images.  Each is written under a hidden name and
+    renamed into place; the files written are returned.
+    """
+    ds = open_results(folder)
+    try:
+        pictures: list[Picture] = []
+        written: list[Path] = []
+        if options:
+            from climodes.figures import replace_figures  # the numeric path never imports matplotlib
+
+            pictures, written = replace_figures(ds, options, folder)
+        report = folder / REPORT_FILE
+        write_file_atomically(report, lambda path: path.write_text(report_html(ds, pictures), encoding="utf-8"),
+                              replace=True)
+    finally:
+        ds.close()
+    return [*written, report]
+
+
+def redraw(results: str | Path, **overrides) -> tuple[FigureOptions, list[Path]]:
+    """``climodes figures``: draw a results folder's figures and report again, without recomputing.
+
+    The options stored in the results' config are used, with ``overrides``
+    (``draw``, ``format``, ``dpi``, ``local_modes``; ``None`` keeps the stored
+    one) on top; figures switched off in the run are drawn with the defaults.
+    """
+    target = results_path(results)
+    with open_results(target) as ds:
+        stored = (stored_config(ds).get("output") or {}).get("figures", True)
+    try:
+        options = figure_options(stored) or FigureOptions()
+    except ValueError:
+        options = FigureOptions()
+    for key, value in overrides.items():
+        try:
+            options = options.changed(**{key: value})
+        except ValueError as err:
+            reason = str(err).split(": ", 1)[-1]
+            raise UserError(f"--{key.replace('_', '-')} {value}: {reason}") from None
+    try:
+        with results_update(target.parent):
+            return options, publish(target.parent, options)
+    except OSError as err:
+        raise UserError(f"{target.parent}: cannot write the figures ({err.strerror or err}); nothing was "
+                        "replaced; free some space or check the folder's permissions") from None
