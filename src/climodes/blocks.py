@@ -131,10 +131,13 @@ def gram_part(values, weights, max_missing, steps):
     cheap = _complete(block, steps)
     fraction = np.zeros(block.shape[1])
     read = _cheap_path(block, cheap, np.float64)
+    moments = np.empty((block.shape[1], 2))
+    moments[cheap] = prepared_moments(read, steps)
     read *= weights[cheap]
     full, fraction[~cheap] = full_path(block, ~cheap, steps, max_missing, np.float64)
+    moments[~cheap] = series_moments(full)
     full *= weights[~cheap]
-    return _product(read, read.T), _product(full, full.T), [fraction]
+    return _product(read, read.T), _product(full, full.T), [fraction], [moments]
 
 
 def range_part(values, weights, max_missing, omega, steps):
@@ -153,7 +156,27 @@ def range_part(values, weights, max_missing, omega, steps):
     total = _squares(anomaly) @ weights[complete] ** 2 + _squares(full) @ weights[~complete] ** 2
     sample = (anomaly @ (omega[complete] * weights[complete, None]).astype(work)).astype(np.float64)
     sample += full @ (omega[~complete] * weights[~complete, None]).astype(work)
-    return sample, float(total), [fraction]
+    moments = np.empty((block.shape[1], 2))
+    moments[complete], moments[~complete] = series_moments(anomaly), series_moments(full)
+    return sample, float(total), [fraction], [moments]
+
+
+def series_moments(anomaly: np.ndarray) -> np.ndarray:
+    """``(point, 2)``: each prepared (centred) series' sum of squares and sum of lag-1 products,
+    ``sum_t a_t^2`` and ``sum_t a_t a_{t+1}``, in float64.  From them come each point's variance and
+    lag-1 autocorrelation (correlation maps, the red-noise test) without another pass."""
+    return np.stack([_squares(anomaly), np.einsum("ij,ij->j", anomaly[1:], anomaly[:-1], dtype=np.float64)],
+                    axis=1)
+
+
+def prepared_moments(read: np.ndarray, steps: TimeSteps, values: int = 1_000_000) -> np.ndarray:
+    """:func:`series_moments` of ``L`` applied to the cheap path's centred points, a few columns at a
+    time (about ``values`` values), so the prepared copy stays small."""
+    width = max(1, values // max(read.shape[0], 1))
+    out = np.empty((read.shape[1], 2))
+    for start in range(0, read.shape[1], width):
+        out[start:start + width] = series_moments(time_operator(steps, read[:, start:start + width]))
+    return out
 
 
 def power_part(values, weights, max_missing, cheap, gappy, basis, basis_t, steps):
