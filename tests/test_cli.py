@@ -27,7 +27,7 @@ def test_run_writes_results_and_prints_a_table(tmp_path, small_field, cli):
     code, out, err = cli("run", config)
     assert code == 0, err
     assert out.splitlines()[0].startswith("climodes: 3 modes of tas from 1 file(s), 60 time steps x 648 points")
-    assert out.splitlines()[1].split() == ["mode", "variance", "explained", "separated", "(North)"]
+    assert out.splitlines()[1].split() == ["mode", "variance", "explained", "effective", "N", "separated", "(North)"]
     assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["modes.nc", "run.log"]
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # no staging folder left
 

@@ -14,7 +14,7 @@ import xarray as xr
 
 from climodes.cluster import dask_settings, pass_context, resident_bytes, worker_count
 from climodes.config import RunSpec, memory_bytes
-from climodes.diagnostics import effective_sample_size, north_errors, separated
+from climodes.diagnostics import correlation_maps, mode_diagnostics, sampling_errors
 from climodes.errors import UserError
 from climodes.fields import OpenedField, open_field, rechunked, select
 from climodes.output import (
@@ -26,6 +26,7 @@ from climodes.output import (
     write_netcdf,
 )
 from climodes.prepare import TimeSteps, time_steps
+from climodes.report import mode_table
 from climodes.solvers import plan_solver, solve
 from climodes.weights import field_weights
 
@@ -85,14 +86,17 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
         modes, result, counts = solve(field, weights, spec.modes.count, spec.prepare.max_missing, plan,
                                       spec.modes.seed, pass_context(progress, workers), along_time)
     notes += counts.notes + result.notes
-    n_eff, n_eff_how = effective_sample_size(result.pcs, spec.modes.effective_sample_size)
-    errors = north_errors(result.eigenvalues, n_eff)
-    apart = separated(result.eigenvalues, errors, result.next_eigenvalue)
+    sampling = sampling_errors(result.eigenvalues, result.pcs, result.next_eigenvalue, result.next_pc,
+                               spec.modes.effective_sample_size)
     for line in notes:
         say(f"note: {line}")
 
     units = "1" if spec.prepare.standardize else opened.data.attrs.get("units")
-    extra = dict(errors=errors, separated=apart, n_eff=n_eff, n_eff_how=n_eff_how,
+    correlation = correlation_maps(result.patterns, result.point_moments[:, 0], steps)
+    modes = xr.merge([modes, mode_diagnostics(modes, sampling, result.spectrum, result.total_variance,
+                                              result.unresolved_fraction,
+                                              correlation.T.reshape(modes["eof"].shape), units)])
+    extra = dict(errors=sampling.errors, separated=sampling.separated,
                  method=f"{result.method} (chosen because: {plan.reason})",
                  notes=notes, units=units, total_variance=result.total_variance,
                  points=(f"{counts.used} of {counts.grid} grid points used; {counts.always_missing} missing at every "
@@ -102,12 +106,7 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
     out = Path(spec.output.dir)
     headline = (f"climodes: {spec.modes.count} modes of {spec.input.variable} from {len(opened.files)} file(s), "
                 f"{steps} time steps x {counts.used} points ({result.method.split(':')[0]} solver) -> {out}")
-    table = ["mode  variance explained  separated (North)"]
-    for k in range(spec.modes.count):
-        frac = 100 * float(results["variance_explained"][k])
-        err = 100 * float(results["variance_explained_error"][k])
-        table.append(f"{k + 1:>4}  {frac:8.1f}% +/- {err:4.1f}%   {'yes' if apart[k] else 'no, mixed'}")
-    table.append(f"effective sample size {n_eff:.0f} of {steps} steps")
+    table = mode_table(results)
     log = [headline, *table, f"solver: {plan.method} ({plan.reason})", *(f"note: {n}" for n in notes), "",
            "resolved config:", spec.to_yaml()]
     try:

@@ -17,6 +17,44 @@ def _range(values: np.ndarray) -> str:
     return f"{np.nanmin(values):g} to {np.nanmax(values):g} (2-D)"
 
 
+def mode_table(ds: xr.Dataset) -> list[str]:
+    """The table of the modes, as ``climodes run`` prints it and ``run.log`` and ``climodes show`` hold it.
+
+    One row per mode: variance explained with its North et al. (1982) error, the mode's own effective sample
+    size, North's rule, and, when the red-noise test ran, the noise eigenvalue (as a share of the total
+    variance) and the verdict.  Columns a file does not hold are left out.
+    """
+    tested = "significant" in ds
+    header = "mode  variance explained"
+    if "effective_sample_size" in ds:
+        header += "  effective N"
+    header += "  separated (North)"
+    if tested:
+        level = ds["noise_eigenvalue"].attrs.get("level", float("nan"))
+        header += f"  red noise {100 * level:g}%  significant"
+    lines = [header]
+    total = ds["eigenvalue"].attrs.get("total_variance", np.nan)
+    for k, mode in enumerate(ds["mode"].values):
+        line = (f"{mode:>4}  {100 * float(ds['variance_explained'][k]):8.1f}% +/- "
+                f"{100 * float(ds['variance_explained_error'][k]):4.1f}%")
+        if "effective_sample_size" in ds:
+            line += f"  {float(ds['effective_sample_size'][k]):11.0f}"
+        if "separated" in ds:
+            line += f"  {'yes' if ds['separated'][k] else 'no, mixed':<17}"
+        if tested:
+            noise = 100 * float(ds["noise_eigenvalue"][k]) / total
+            line += f"  {noise:12.1f}%  {'yes' if ds['significant'][k] else 'no'}"
+        lines.append(line.rstrip())
+    steps = ds["pc"].shape[1]
+    if "effective_sample_size" in ds:
+        lines.append(f"effective N: each mode's own effective sample size, of {steps} time steps")
+    if tested:
+        lines.append(f"red noise {100 * level:g}%: that level of the eigenvalues at the same rank of "
+                     f"{int(ds['noise_eigenvalue'].attrs.get('surrogates', 0))} red-noise fields")
+        lines.append("significant: above it, counted from mode 1 up to the first mode that is not")
+    return lines
+
+
 def summary(path: str | Path) -> str:
     """The summary text of a results folder or ``modes.nc``."""
     ds = open_results(path)
@@ -36,14 +74,8 @@ def summary(path: str | Path) -> str:
         f"  points      {attrs.get('climodes_points', '?')}",
         f"  period      {str(times[0])[:10]} to {str(times[-1])[:10]}, {times.size} steps",
         f"  method      {attrs.get('climodes_method', '?')}",
-        f"  sample size {attrs.get('climodes_effective_sample_size', float('nan')):.0f} effective "
-        f"(North et al. 1982 errors)",
-        "  mode  variance explained  separated",
+        *(f"  {line}" for line in mode_table(ds)),
     ]
-    separated = ds["separated"].values if "separated" in ds else np.ones(ds.sizes["mode"])
-    for k, mode in enumerate(ds["mode"].values):
-        lines.append(f"  {mode:>4}  {100 * float(ds['variance_explained'][k]):8.1f}% +/- "
-                     f"{100 * float(ds['variance_explained_error'][k]):4.1f}%   {'yes' if separated[k] else 'no'}")
     notes = attrs.get("climodes_notes", "none")
     for i, line in enumerate(notes.splitlines() or ["none"]):
         lines.append(f"  {'notes' if i == 0 else '':<11} {line}")
