@@ -17,7 +17,8 @@ def test_check_prints_the_resolved_config(tmp_path, small_field, cli):
     code, out, err = cli("check", config)
     assert code == 0 and err == ""
     resolved = yaml.safe_load(out)
-    assert resolved["modes"] == {"count": 3, "effective_sample_size": "auto", "method": "auto", "seed": 0}
+    assert resolved["modes"] == {"count": 3, "effective_sample_size": "auto", "method": "auto", "seed": 0,
+                                 "noise_surrogates": 0, "noise_level": 0.95}
     assert resolved["compute"] == {"memory": "4GB", "workers": "auto", "scheduler": "threads"}
     assert resolved["prepare"]["weighting"] == "coslat"
 
@@ -164,6 +165,12 @@ CATALOGUE = {
     "output inside a file": (_inside_a_file, "which is a file; choose another folder"),
     "bad yaml syntax": (_bad_yaml, "run.yaml:3: not valid YAML"),
     "disk full": (_disk_full, "output.dir: cannot write the results to"),
+    # defending the modes: the red-noise test's settings
+    "too few surrogates for the level": (lambda t, m: ([_ok(t)], {"modes": {"noise_surrogates": 5}}),
+                                         "modes.noise_surrogates: 5 surrogates cannot test at noise_level 0.95; "
+                                         "give at least 19"),
+    "red-noise level not a fraction": (lambda t, m: ([_ok(t)], {"modes": {"noise_level": 95}}),
+                                       "modes.noise_level: expected a fraction between 0 and 1"),
 }
 
 

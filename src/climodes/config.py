@@ -21,6 +21,7 @@ from __future__ import annotations
 
 import dataclasses
 import difflib
+import math
 import os
 import re
 from dataclasses import dataclass, field
@@ -158,6 +159,12 @@ def _fraction(value: Any) -> float:
     return float(value)
 
 
+def _level(value: Any) -> float:
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not 0 < value < 1:
+        raise ValueError(f"expected a fraction between 0 and 1 (not included), e.g. 0.95; got {value!r}")
+    return float(value)
+
+
 def _sample_size(value: Any) -> int | str:
     if value == "auto":
         return value
@@ -256,8 +263,12 @@ class ModesSection:
                        "solver: auto chooses from the matrix shape and compute.memory", "auto")
     seed: int = _key(_whole(0), "random seed of the randomized solver", 0)
     effective_sample_size: int | str = _key(
-        _sample_size, "sample size for North's errors: auto (from PC autocorrelation) or a number", "auto"
+        _sample_size, "sample size for North's errors: auto (each mode's from its PC's autocorrelation) or a "
+        "number for every mode", "auto"
     )
+    noise_surrogates: int = _key(_whole(0), "red-noise surrogate fields for the significance test; 0: no test", 0)
+    noise_level: float = _key(_level, "level of the red-noise test: a mode of noise passes with probability "
+                              "at most 1 - level", 0.95)
 
 
 @dataclass(frozen=True)
@@ -417,6 +428,10 @@ def _check_together(spec: RunSpec, lines: dict, where: str, problems: list[str])
         report("prepare", "aggregate", "seasonal needs select.months, e.g. [12, 1, 2] for winter")
     if spec.prepare.baseline and spec.prepare.anomalies == "none":
         report("prepare", "baseline", "is only used with anomalies: climatology or mean")
+    fewest = math.ceil(spec.modes.noise_level / (1 - spec.modes.noise_level) - 1e-9)
+    if 0 < spec.modes.noise_surrogates < fewest:
+        report("modes", "noise_surrogates", f"{spec.modes.noise_surrogates} surrogates cannot test at "
+               f"noise_level {spec.modes.noise_level:g}; give at least {fewest} (100 or more is better)")
 
 
 def _resolve_paths(spec: RunSpec) -> RunSpec:

@@ -27,6 +27,7 @@ from climodes.output import (
 )
 from climodes.prepare import TimeSteps, time_steps
 from climodes.report import mode_table
+from climodes.significance import fit_red_noise, noise_variables, red_noise_test
 from climodes.solvers import plan_solver, solve
 from climodes.weights import field_weights
 
@@ -52,6 +53,16 @@ def _prepared(spec: RunSpec, opened: OpenedField) -> tuple[xr.DataArray, TimeSte
     notes = list(opened.notes)
     field, steps = time_steps(select(opened, spec.select), spec.prepare, spec.select.months, notes)
     return field, steps, notes
+
+
+def _red_noise(spec: RunSpec, result, weights: xr.DataArray, steps: int, progress):
+    """The red-noise test of the kept modes when the config asks for it (``modes.noise_surrogates``)."""
+    if not spec.modes.noise_surrogates:
+        return None
+    noise = fit_red_noise(result.point_moments, weights.values.reshape(-1), steps, weights.shape)
+    with progress(f"red-noise test: {spec.modes.noise_surrogates} surrogate fields"):
+        return red_noise_test(result.eigenvalues, noise, steps, spec.modes.noise_surrogates, spec.modes.noise_level,
+                              spec.modes.seed)
 
 
 def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress: bool = False) -> RunSummary:
@@ -85,6 +96,7 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
     with dask_settings(spec.compute):
         modes, result, counts = solve(field, weights, spec.modes.count, spec.prepare.max_missing, plan,
                                       spec.modes.seed, pass_context(progress, workers), along_time)
+        tested = _red_noise(spec, result, weights, steps, pass_context(progress, workers))
     notes += counts.notes + result.notes
     sampling = sampling_errors(result.eigenvalues, result.pcs, result.next_eigenvalue, result.next_pc,
                                spec.modes.effective_sample_size)
@@ -96,6 +108,8 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
     modes = xr.merge([modes, mode_diagnostics(modes, sampling, result.spectrum, result.total_variance,
                                               result.unresolved_fraction,
                                               correlation.T.reshape(modes["eof"].shape), units)])
+    if tested is not None:
+        modes = xr.merge([modes, noise_variables(tested, modes["mode"], units)])
     extra = dict(errors=sampling.errors, separated=sampling.separated,
                  method=f"{result.method} (chosen because: {plan.reason})",
                  notes=notes, units=units, total_variance=result.total_variance,
