@@ -134,16 +134,20 @@ def test_planted_modes_stand_above_red_noise():
 
 
 def test_surrogate_spectrum_is_the_same_whatever_the_blocks_and_method():
-    """One surrogate, however it is cut: numpy's SVD of the whole, the Gram matrix over blocks of 1 or 3
-    rows (1e-10); the block Krylov sketch, within 1 % of the leading eigenvalues (stated in the docs)."""
+    """One surrogate, however it is cut, against numpy's SVD of it: the cross-product of the whole, the
+    Gram matrix over blocks of 1, 3 or 12 rows (1e-10); the block Krylov sketch, within 1 % of the leading
+    eigenvalues (stated in the docs)."""
     rng = np.random.default_rng(6)
     noise = RedNoise(rng.uniform(0.0, 0.9, (12, 30)), rng.uniform(0.5, 2.0, (12, 30)))
     whole = surrogate_block(noise, range(0, 12), 300, 2, 5)
     reference = np.linalg.svd(whole, compute_uv=False)[:10] ** 2 / 299  # numpy's LAPACK
-    np.testing.assert_allclose(surrogate_spectrum(noise, 300, 10, 2, 5, method="svd"), reference, rtol=1e-10)
+    np.testing.assert_allclose(surrogate_spectrum(noise, 300, 10, 2, 5, method="whole"), reference, rtol=1e-10)
     for rows in (1, 3, 12):
         np.testing.assert_allclose(surrogate_spectrum(noise, 300, 10, 2, 5, rows=rows, method="gram"), reference,
                                    rtol=1e-10)
+    narrow = RedNoise(noise.lag1[:3, :10], noise.scale[:3, :10])  # fewer points than steps
+    few = np.linalg.svd(surrogate_block(narrow, range(0, 3), 300, 2, 5), compute_uv=False)[:10] ** 2 / 299
+    np.testing.assert_allclose(surrogate_spectrum(narrow, 300, 10, 2, 5, method="whole"), few, rtol=1e-10)
     sketch = surrogate_spectrum(noise, 300, 10, 2, 5, rows=4, method="sketch")
     np.testing.assert_allclose(sketch[:5], reference[:5], rtol=0.01)
     assert np.all(sketch <= reference * (1 + 1e-10))  # Ritz values are lower bounds
@@ -204,3 +208,20 @@ def test_the_results_say_which_modes_stand_above_red_noise(tmp_path, cli, method
     assert "red noise 95%  significant" in out and "red noise 95%  significant" in (folder / "run.log").read_text()
     shown = cli("show", folder)[1]
     assert "red noise 95%  significant" in shown and "39 red-noise fields" in shown
+
+
+@pytest.mark.parametrize("method", ["exact", "gram", "randomized"])
+def test_the_test_reads_no_data(tmp_path, cli, values_read, method):
+    """The surrogates need only each point's lag-1 and variance, from the solver's first pass: a run with
+    the test reads exactly as many values from the files as one without (counted at the netCDF4 backend)."""
+    path = _planted_file(tmp_path)
+    counts = []
+    for surrogates in (0, 19):
+        folder = tmp_path / f"s{surrogates}"
+        folder.mkdir()
+        values_read["values"] = 0
+        config = write_config(folder, [path], modes={"count": 3, "method": method, "noise_surrogates": surrogates})
+        code, _, err = cli("run", config)
+        assert code == 0, err
+        counts.append(values_read["values"])
+    assert counts[0] == counts[1] > 0

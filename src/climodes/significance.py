@@ -11,8 +11,9 @@ alone makes larger leading eigenvalues, so the noise here is red:
   autocorrelation ``r`` and variance ``s^2`` (of its prepared series, from the
   solver's first pass: no read of the data), independent from point to point;
 - its eigenvalues are computed like the field's (area-weighted, centred,
-  divided by ``n - 1``), chosen by size as the solvers choose: the singular
-  values of the whole surrogate when it is small, the ``time x time`` Gram
+  divided by ``n - 1``), chosen by size as the solvers choose: the
+  cross-product of the whole surrogate over its shorter side when it is
+  small, the ``time x time`` Gram
   matrix summed over blocks of latitude rows when the record has up to
   ``GRAM_MAX_STEPS`` steps, otherwise a randomized block Krylov sketch (power
   iterations, every iteration's basis kept), which draws each surrogate block
@@ -169,11 +170,11 @@ def _krylov_ritz_values(krylov: np.ndarray, product: np.ndarray) -> np.ndarray:
 
 
 def surrogate_method(noise: RedNoise, steps: int) -> str:
-    """How a surrogate's eigenvalues are found, as the solvers would choose for its shape:
-    ``svd`` (the whole surrogate in memory: LAPACK's singular values) up to ``EXACT_MAX_VALUES``,
-    ``gram`` up to ``GRAM_MAX_STEPS`` time steps, ``sketch`` beyond."""
+    """How a surrogate's eigenvalues are found, by its size as the solvers choose: ``whole`` (the whole
+    surrogate in memory, the cross-product over its shorter side) up to ``EXACT_MAX_VALUES``, ``gram``
+    (the time x time cross-product over blocks) up to ``GRAM_MAX_STEPS`` time steps, ``sketch`` beyond."""
     if steps * int(np.sum(noise.scale > 0)) <= EXACT_MAX_VALUES:
-        return "svd"
+        return "whole"
     return "gram" if steps <= GRAM_MAX_STEPS else "sketch"
 
 
@@ -194,13 +195,13 @@ def surrogate_spectrum(noise: RedNoise, steps: int, count: int, seed: int, surro
     rows
         Latitude rows per block (the result does not depend on it).
     method
-        ``svd``, ``gram`` or ``sketch``; by default :func:`surrogate_method`'s choice.
+        ``whole``, ``gram`` or ``sketch``; by default :func:`surrogate_method`'s choice.
     """
     blocks = _block_rows(noise, steps, rows)
     method = method or surrogate_method(noise, steps)
-    if method == "svd":
+    if method == "whole":
         whole = np.concatenate([surrogate_block(noise, b, steps, seed, surrogate) for b in blocks], axis=1)
-        values = np.linalg.svd(whole, compute_uv=False) ** 2  # LAPACK gesdd
+        values = np.linalg.eigvalsh(whole.T @ whole if whole.shape[1] < steps else whole @ whole.T)[::-1]
     elif method == "gram":
         gram = np.zeros((steps, steps))
         for block in blocks:
@@ -253,7 +254,7 @@ def red_noise_test(eigenvalues: np.ndarray, noise: RedNoise, steps: int, surroga
     tasks = [dask.delayed(surrogate_spectrum)(model, steps, count, seed, s, rows) for s in range(surrogates)]
     spectra = np.array(dask.compute(*tasks))
     threshold = noise_eigenvalues(spectra, level)
-    method = {"svd": "singular values of the whole surrogate", "gram": "time x time Gram matrix",
+    method = {"whole": "cross-product of the whole surrogate", "gram": "time x time Gram matrix",
               "sketch": f"randomized sketch, {SKETCH_PASSES} passes"}[surrogate_method(noise, steps)]
     how = (f"{surrogates} red-noise surrogate fields (AR(1) per point with its own lag-1 autocorrelation and "
            f"variance, the same points and weights; seed {seed}; eigenvalues from the {method}); noise eigenvalue: "
