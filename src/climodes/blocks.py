@@ -6,7 +6,9 @@ point with no missing value L is linear, so the streaming solvers take the cheap
 multiply the field as read (only centred, to keep float32 products accurate) and apply L, or its
 transpose, to their small (time x modes) products, once per pass instead of once per block.  Points
 with missing values, and every point when a step is not linear (standardising), take the full path:
-steps, missing-data rule and centring on the block itself.
+steps, missing-data rule and centring on the block itself.  The first pass prepares every point once
+anyway, a few columns at a time, for each point's variance and lag-1 products (:func:`series_moments`:
+the correlation maps and the red-noise test need them); the later passes take the cheap path.
 
 The randomized solver works in the field's precision (float32 stays float32 in
 flight); each block's small product is returned in float64, so the sums over
