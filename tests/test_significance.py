@@ -31,8 +31,10 @@ from conftest import field_dataset, write_config
 
 
 def test_noise_rank_hand_computed():
-    """ceil(p (S + 1)): 19 of 19 at 0.95 (P = 1/20 exactly), 95 of 99, 18 of 19 at 0.9 (P = 2/20)."""
+    """ceil(p (S + 1)): 19 of 19 at 0.95 (P = 1/20 exactly), 95 of 99, 18 of 19 at 0.9 (P = 2/20); with 100
+    surrogates at 0.95 the 96th (exceeded with P = 5/101; the 95th would allow 6/101), with 20 at 0.9 the 19th."""
     assert [noise_rank(0.95, 19), noise_rank(0.95, 99), noise_rank(0.9, 19), noise_rank(0.9, 9)] == [19, 95, 18, 9]
+    assert [noise_rank(0.95, 100), noise_rank(0.9, 20)] == [96, 19]
     spectra = np.arange(1.0, 20.0)[:, None] * np.array([1.0, 0.5])  # 19 surrogates, 2 ranks
     np.testing.assert_array_equal(noise_eigenvalues(spectra[::-1], 0.9), [18.0, 9.0])
 
