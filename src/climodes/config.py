@@ -261,7 +261,7 @@ class ModesSection:
     count: int = _key(_positive_int, "number of modes to keep", 10)
     method: str = _key(_choice("auto", "exact", "gram", "randomized"),
                        "solver: auto chooses from the matrix shape and compute.memory", "auto")
-    seed: int = _key(_whole(0), "random seed of the randomized solver", 0)
+    seed: int = _key(_whole(0), "random seed of the randomized solver and of the red-noise surrogates", 0)
     effective_sample_size: int | str = _key(
         _sample_size, "sample size for North's errors: auto (each mode's from its PC's autocorrelation) or a "
         "number for every mode", "auto"

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable
+from typing import Callable, ContextManager
 
 import xarray as xr
 
@@ -27,8 +27,8 @@ from climodes.output import (
 )
 from climodes.prepare import TimeSteps, time_steps
 from climodes.report import mode_table
-from climodes.significance import fit_red_noise, noise_variables, red_noise_test
-from climodes.solvers import plan_solver, solve
+from climodes.significance import NoiseTest, fit_red_noise, noise_variables, red_noise_test
+from climodes.solvers import Decomposition, plan_solver, solve
 from climodes.weights import field_weights
 
 
@@ -55,7 +55,8 @@ def _prepared(spec: RunSpec, opened: OpenedField) -> tuple[xr.DataArray, TimeSte
     return field, steps, notes
 
 
-def _red_noise(spec: RunSpec, result, weights: xr.DataArray, steps: int, progress):
+def _red_noise(spec: RunSpec, result: Decomposition, weights: xr.DataArray, steps: int,
+               progress: Callable[[str], ContextManager]) -> NoiseTest | None:
     """The red-noise test of the kept modes when the config asks for it (``modes.noise_surrogates``)."""
     if not spec.modes.noise_surrogates:
         return None
