@@ -22,12 +22,14 @@ def _flag(values: np.ndarray, meanings: str, count: int = 2) -> tuple:
 
 
 def diagnosed(ds: xr.Dataset, dropped: np.ndarray | None = None, rotation: bool = True) -> xr.Dataset:
-    """``ds`` with the diagnostics of the contract added.
+    """``ds`` with the diagnostics of the contract it lacks added (the run's own are kept).
 
     ``dropped`` marks the unused points that were dropped for missing data
-    (``point_status`` 1); the other unused points have no data (0).
+    (``point_status`` 1, replacing the run's); the other unused points have no data (0).
     """
-    ds = ds.load().copy()
+    kept = {name: ds[name] for name in ("correlation", "spectrum", "spectrum_explained", "effective_sample_size",
+                                        "point_status") if name in ds}
+    ds = ds.load().drop_vars(["spectrum", "spectrum_explained", "rank"], errors="ignore").copy()
     eof, pc = ds["eof"], ds["pc"]
     mode, rows, columns = eof.dims
     time = pc.dims[1]
@@ -62,7 +64,8 @@ def diagnosed(ds: xr.Dataset, dropped: np.ndarray | None = None, rotation: bool 
     ds = ds.assign_coords(rank=("rank", np.arange(1, eigen.size + 1)))
 
     threshold = np.full(count, 1.1 * ds["eigenvalue"].values[min(2, count - 1)])
-    ds["noise_eigenvalue"] = (mode, threshold, {"long_name": "red-noise surrogate eigenvalue"})
+    ds["noise_eigenvalue"] = (mode, threshold, {"long_name": "red-noise surrogate eigenvalue", "level": 0.95,
+                                                "surrogates": 99})
     values, attrs = _flag(ds["eigenvalue"].values > threshold, "not_significant significant")
     ds["significant"] = (mode, values, attrs)
     r = np.array([np.corrcoef(p[1:], p[:-1])[0, 1] for p in pc.values]).clip(0, None)
@@ -81,7 +84,11 @@ def diagnosed(ds: xr.Dataset, dropped: np.ndarray | None = None, rotation: bool 
         status = np.where(dropped & (status == 0), 1, status)
     values, attrs = _flag(status, "no_data dropped_for_missing_data used", 3)
     ds["point_status"] = ((rows, columns), values, attrs)
-    return ds
+    if dropped is not None:
+        kept.pop("point_status", None)
+    if "spectrum" in kept:
+        ds = ds.drop_vars(["spectrum", "spectrum_explained", "rank"])
+    return ds.assign(kept)
 
 
 def rewrite(folder: Path, ds: xr.Dataset) -> None:

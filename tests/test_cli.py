@@ -24,7 +24,8 @@ def test_check_prints_the_resolved_config(tmp_path, small_field, cli):
         f"writes  {tmp_path / 'out'} (a new folder)",
     ]
     resolved = yaml.safe_load(out)
-    assert resolved["modes"] == {"count": 3, "effective_sample_size": "auto", "method": "auto", "seed": 0}
+    assert resolved["modes"] == {"count": 3, "effective_sample_size": "auto", "method": "auto", "seed": 0,
+                                 "noise_surrogates": 0, "noise_level": 0.95}
     assert resolved["compute"] == {"memory": "4GB", "workers": "auto", "scheduler": "threads", "jobs": 2,
                                    "job_cores": 4, "job_memory": "8GB", "walltime": "auto", "queue": None,
                                    "account": None, "directives": [], "interface": None, "address": None,
@@ -37,7 +38,7 @@ def test_run_writes_results_and_prints_a_table(tmp_path, small_field, cli):
     code, out, err = cli("run", config)
     assert code == 0, err
     assert out.splitlines()[0].startswith("climodes: 3 modes of tas from 1 file(s), 60 time steps x 648 points")
-    assert out.splitlines()[1].split() == ["mode", "variance", "explained", "separated", "(North)"]
+    assert out.splitlines()[1].split() == ["mode", "variance", "explained", "effective", "N", "separated", "(North)"]
     assert sorted(p.name for p in (tmp_path / "out").iterdir()) == [".climodes-results.json", "modes.nc", "report.html", "run.log"]
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # no staging folder or claim left
 
@@ -395,6 +396,12 @@ CATALOGUE = {
                             "output.figures: draw: expected a list drawn from maps, series"),
     "unknown figures key": (lambda t, m: ([_ok(t)], {"output": {"figures": {"resolution": 300}}}),
                             "output.figures: unknown key resolution; expected draw, format, dpi or local_modes"),
+    # defending the modes: the red-noise test's settings
+    "too few surrogates for the level": (lambda t, m: ([_ok(t)], {"modes": {"noise_surrogates": 5}}),
+                                         "modes.noise_surrogates: 5 surrogates cannot test at noise_level 0.95; "
+                                         "give at least 19"),
+    "red-noise level not a fraction": (lambda t, m: ([_ok(t)], {"modes": {"noise_level": 95}}),
+                                       "modes.noise_level: expected a fraction between 0 and 1"),
 }
 
 # found only once the run works: the field's values read, a dask scheduler reached, the results written;

@@ -251,10 +251,11 @@ def test_a_local_cluster_reads_and_sums_on_its_workers(tmp_path, cli, values_rea
     assert [m[0] for m in moved] == ["pass 1 of 2", "pass 2 of 2"]
     gram_bytes, maps_bytes = 120 * 120 * 8, 72 * 144 * 3 * 8
     (_, sent1, between1, back1), (_, sent2, between2, back2) = [(m[0], *map(float, m[1:])) for m in moved]
-    # one Gram sum, and per point the missing fraction and the fitted preparation (12 monthly means, the offset)
-    assert back1 * 1e6 < 2 * gram_bytes + 14 * 72 * 144 * 8 + 1e5
+    # one Gram sum, and per point the missing fraction, the fitted preparation (12 monthly means, the offset)
+    # and the two moments of the prepared series: 16 values
+    assert back1 * 1e6 < 2 * gram_bytes + 16 * 72 * 144 * 8 + 1e5
     assert back2 * 1e6 < 1.1 * maps_bytes + 1e5  # the maps
-    assert between1 * 1e6 < 16 * gram_bytes + 14 * 72 * 144 * 8  # partial sums and fits only: no block travelled
+    assert between1 * 1e6 < 16 * gram_bytes + 16 * 72 * 144 * 8  # partial sums and fits only: no block travelled
     assert between2 == 0.0
     assert max(sent1, sent2, back2) * 1e6 < field_bytes / 5  # pass 1's traffic: the bounds above
 

@@ -120,11 +120,12 @@ def test_geotiff_is_refused_on_a_curvilinear_grid(tmp_path, cli):
 @pytest.mark.slow
 def test_curvilinear_results_are_cf_compliant_and_drawn(tmp_path, cli):
     _regional_model(tmp_path / "rcm.nc")
-    config = write_config(tmp_path, [tmp_path / "rcm.nc"], modes={"count": 2}, prepare={"weighting": "cell_area"},
-                          output={"figures": {"draw": ["maps"], "dpi": 60}})
+    config = write_config(tmp_path, [tmp_path / "rcm.nc"], modes={"count": 2, "noise_surrogates": 19},
+                          prepare={"weighting": "cell_area"}, output={"figures": {"draw": ["maps"], "dpi": 60}})
     code, _, err = cli("run", config)
     assert code == 0, err
     assert (tmp_path / "out" / "figures" / "mode_01.png").stat().st_size > 10_000
+    assert xr.open_dataset(tmp_path / "out" / "modes.nc")["correlation"].dims == ("mode", "rlat", "rlon")
     done = cf_strict(tmp_path / "out" / "modes.nc")
     assert done.returncode == 0, done.stdout[-3000:]
     code, out, _ = cli("show", tmp_path / "out")

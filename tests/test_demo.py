@@ -55,6 +55,12 @@ def test_demo_recovers_the_planted_modes(demo_run):
         assert abs(r) > 0.97, (k, r)  # analytic truth of the scenario: planted = amplitude x pattern
         np.testing.assert_allclose(float(found["eigenvalue"][k]), float(truth["eigenvalue"][k]), rtol=0.08)
     assert found["separated"].values[:3].all() and not found["separated"].values[3:].any()
+    # the planted modes stand above the red noise they were planted in; the two after them are that noise
+    assert found["significant"].values.tolist() == [1, 1, 1, 0, 0]
+    # each mode's own N*: N (1 - r^2) / (1 + r^2) with r the lag-1 autocorrelation of the planted PC
+    # (Bretherton et al. 1999; r by numpy's corrcoef; 10 % for the noise mixed into the recovered PCs)
+    r = np.array([np.corrcoef(pc[1:], pc[:-1])[0, 1] for pc in truth["pc"].values])
+    np.testing.assert_allclose(found["effective_sample_size"].values[:3], 600 * (1 - r**2) / (1 + r**2), rtol=0.1)
 
 
 def test_demo_matches_the_eofs_package(demo_run):

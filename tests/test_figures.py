@@ -480,7 +480,9 @@ def test_figures_options_on_the_command_line(tmp_path, small_results, cli):
     assert not (small_results / "figures").exists()
     code, out, err = cli("figures", small_results, "--draw", "spectrum", "--dpi", "60")
     assert code == 0 and [p.name for p in (small_results / "figures").iterdir()] == ["spectrum.png"]
-    assert _image(small_results / "figures" / "spectrum.png").shape[1] == pytest.approx(6.8 * 60, abs=2)
+    width = _image(small_results / "figures" / "spectrum.png").shape[1]
+    assert cli("figures", small_results, "--draw", "spectrum", "--dpi", "120")[0] == 0
+    assert _image(small_results / "figures" / "spectrum.png").shape[1] == pytest.approx(2 * width, abs=2)  # dpi
 
 
 def test_a_figures_folder_with_foreign_files_is_left_alone(small_results, cli):

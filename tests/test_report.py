@@ -76,8 +76,12 @@ def test_table_shows_significance_and_sample_size_when_the_file_has_them(drawn_r
     ds = diagnosed(open_results(folder))
     ds["significant"][:] = [1, 1, 0]
     lines = variance_table(ds)
-    assert lines[0].split() == ["mode", "variance", "explained", "separated", "(North)", "significant", "N*"]
-    assert [line.split()[-2] for line in lines[1:]] == ["yes", "yes", "no"]
+    assert lines[0].split() == ["mode", "variance", "explained", "effective", "N", "separated", "(North)", "red",
+                                "noise", "95%", "significant"]
+    assert [line.split()[-1] for line in lines[1:4]] == ["yes", "yes", "no"]
+    assert [line.split()[4] for line in lines[1:4]] == [f"{float(n):.0f}" for n in ds["effective_sample_size"]]
+    assert lines[4].startswith("effective N: each mode's own effective sample size")
+    assert "99 red-noise fields" in lines[5]
     assert mode_rows(ds)[2].flags == ["not significant: within red noise"]
 
 

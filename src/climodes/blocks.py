@@ -9,9 +9,11 @@ with missing values, and every point when a step is not linear (standardising), 
 steps, missing-data rule and centring on the block itself.
 
 Every step is fitted and applied by the same functions (:class:`~climodes.prepare.TimeSteps`) on a
-block's columns and in L.  The first pass also returns, per block, each point's missing fraction and
-the preparation fitted on its series (the climatology, trend and offset of a cheap point are fitted
-on the block as read, a few columns at a time): the fit stored with the results, with no extra read.
+block's columns and in L.  The first pass prepares every point once, a cheap point a few columns at a
+time, and returns per block each point's missing fraction, the preparation fitted on its series (the
+fit stored with the results) and its prepared series' variance and lag-1 products
+(:func:`series_moments`: the correlation maps and the red-noise test need them), with no extra read;
+the later passes take the cheap path.
 
 The randomized solver works in the field's precision (float32 stays float32 in
 flight); each block's small product is returned in float64, so the sums over
@@ -99,16 +101,22 @@ def _cheap_path(block: np.ndarray, which: np.ndarray, dtype) -> np.ndarray:
 FIT_VALUES = 2**21  # values of a block fitted at a time on the cheap path: the steps' working copies stay small
 
 
-def _fitted(block: np.ndarray, which: np.ndarray, steps: TimeSteps) -> dict:
-    """The preparation fitted on the ``which`` points of a block as read (in float64), a few columns at a
-    time; their anomalies are not kept (the cheap path makes them from the small products)."""
+def _fitted(block: np.ndarray, which: np.ndarray, steps: TimeSteps) -> tuple[dict, np.ndarray]:
+    """The preparation fitted on the ``which`` points of a block as read (in float64), and the
+    :func:`series_moments` of their prepared series, a few columns at a time; their anomalies are not
+    kept (the cheap path makes them from the small products)."""
     points = _columns(block, which)
     fitted = steps.blank(points.shape[1])
+    moments = np.empty((points.shape[1], 2))
     width = max(1, FIT_VALUES // block.shape[0])
     for start in range(0, points.shape[1], width):
-        for name, values in fit(points[:, start:start + width].astype(np.float64), steps).quantities.items():
-            fitted[name][..., start:start + width] = values
-    return fitted
+        columns = slice(start, start + width)
+        prepared, quantities = steps.fit_apply(points[:, columns].astype(np.float64))
+        anomaly, quantities["offset"] = centre(prepared)
+        for name, values in quantities.items():
+            fitted[name][..., columns] = values
+        moments[columns] = series_moments(anomaly)
+    return fitted, moments
 
 
 def _squares(block: np.ndarray) -> np.ndarray:
@@ -186,13 +194,16 @@ def gram_part(values, weights, max_missing, steps):
     cheap = _complete(block, steps)
     fraction = np.zeros(block.shape[1])
     fitted = steps.blank(block.shape[1])
-    _place(fitted, cheap, _fitted(block, cheap, steps))
+    moments = np.empty((block.shape[1], 2))
+    part, moments[cheap] = _fitted(block, cheap, steps)
+    _place(fitted, cheap, part)
     read = _cheap_path(block, cheap, np.float64)
     read *= weights[cheap]
     full, fraction[~cheap], part = full_path(block, ~cheap, steps, max_missing, np.float64)
     _place(fitted, ~cheap, part)
+    moments[~cheap] = series_moments(full)
     full *= weights[~cheap]
-    return _product(read, read.T), _product(full, full.T), [(fraction, fitted)]
+    return _product(read, read.T), _product(full, full.T), [(fraction, fitted, moments)]
 
 
 def range_part(values, weights, max_missing, omega, steps):
@@ -216,7 +227,17 @@ def range_part(values, weights, max_missing, omega, steps):
     total = _squares(anomaly) @ weights[complete] ** 2 + _squares(full) @ weights[~complete] ** 2
     sample = (anomaly @ (omega[complete] * weights[complete, None]).astype(work)).astype(np.float64)
     sample += full @ (omega[~complete] * weights[~complete, None]).astype(work)
-    return sample, float(total), [(fraction, fitted)]
+    moments = np.empty((block.shape[1], 2))
+    moments[complete], moments[~complete] = series_moments(anomaly), series_moments(full)
+    return sample, float(total), [(fraction, fitted, moments)]
+
+
+def series_moments(anomaly: np.ndarray) -> np.ndarray:
+    """``(point, 2)``: each prepared (centred) series' sum of squares and sum of lag-1 products,
+    ``sum_t a_t^2`` and ``sum_t a_t a_{t+1}``, in float64.  From them come each point's variance and
+    lag-1 autocorrelation (correlation maps, the red-noise test) without another pass."""
+    return np.stack([_squares(anomaly), np.einsum("ij,ij->j", anomaly[1:], anomaly[:-1], dtype=np.float64)],
+                    axis=1)
 
 
 def power_part(values, weights, max_missing, cheap, gappy, basis, basis_t, steps):
@@ -250,22 +271,24 @@ def _add(a, b):
     return a + b
 
 
-def joined(pieces: list[tuple[np.ndarray, dict]]) -> tuple[np.ndarray, dict]:
-    """The blocks' ``(missing fraction, fitted quantities)`` pieces, in block order, as whole-grid arrays.
+def joined(pieces: list[tuple[np.ndarray, dict, np.ndarray]]) -> tuple[np.ndarray, dict, np.ndarray]:
+    """The blocks' first-pass pieces (missing fraction, fitted quantities, :func:`series_moments`), in
+    block order, as whole-grid arrays.
 
     The pieces are taken off the list as they are copied, so the memory held is that of the whole
     grid's quantities and one block's, not twice the grid's.
     """
-    fraction = np.concatenate([f for f, _ in pieces])
+    fraction = np.concatenate([f for f, _, _ in pieces])
+    moments = np.concatenate([m for _, _, m in pieces])
     fitted = {name: np.empty(q.shape[:-1] + (fraction.size,), dtype=q.dtype) for name, q in pieces[0][1].items()}
     start = 0
     while pieces:
-        _, part = pieces.pop(0)
+        _, part, _ = pieces.pop(0)
         width = next(iter(part.values())).shape[-1]
         for name, values in part.items():
             fitted[name][..., start:start + width] = values
         start += width
-    return fraction, fitted
+    return fraction, fitted, moments
 
 
 def tree_sum(parts: list):

@@ -202,6 +202,12 @@ def _fraction(value: Any) -> float:
     return float(value)
 
 
+def _level(value: Any) -> float:
+    if not _is_number(value) or not 0 < value < 1:
+        raise ValueError(f"expected a fraction between 0 and 1 (not included), e.g. 0.95; got {quoted(value)}")
+    return float(value)
+
+
 def _sample_size(value: Any) -> int | str:
     if value == "auto":
         return value
@@ -378,10 +384,14 @@ class ModesSection:
     count: int = _key(_whole(1, 100_000), "number of modes to keep", 10)
     method: str = _key(_choice("auto", "exact", "gram", "randomized"),
                        "solver: auto chooses from the matrix shape and compute.memory", "auto")
-    seed: int = _key(_whole(0, 2**32 - 1), "random seed of the randomized solver", 0)
+    seed: int = _key(_whole(0, 2**32 - 1), "random seed of the randomized solver and of the red-noise surrogates", 0)
     effective_sample_size: int | str = _key(
-        _sample_size, "sample size for North's errors: auto (from PC autocorrelation) or a number", "auto"
+        _sample_size, "sample size for North's errors: auto (each mode's from its PC's autocorrelation) or a "
+        "number for every mode", "auto"
     )
+    noise_surrogates: int = _key(_whole(0, 100_000), "red-noise surrogate fields for the significance test; 0: no test", 0)
+    noise_level: float = _key(_level, "level of the red-noise test: a mode of noise passes with probability "
+                              "at most 1 - level", 0.95)
 
 
 @dataclass(frozen=True)
@@ -651,6 +661,11 @@ def _check_together(spec: RunSpec, lines: dict, where: str, problems: list[str])
     if spec.compute.address and spec.compute.scheduler not in ("slurm", "pbs"):
         report("compute", "address", "joins a running dask scheduler with compute.scheduler slurm or pbs; "
                                      "set compute.scheduler, or remove compute.address")
+
+    fewest = math.ceil(spec.modes.noise_level / (1 - spec.modes.noise_level) - 1e-9)
+    if 0 < spec.modes.noise_surrogates < fewest:
+        report("modes", "noise_surrogates", f"{spec.modes.noise_surrogates} surrogates cannot test at "
+               f"noise_level {spec.modes.noise_level:g}; give at least {fewest} (100 or more is better)")
 
 
 def _name_max(folder: Path) -> int:

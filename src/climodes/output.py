@@ -69,11 +69,12 @@ def lasting_attrs(attrs: dict) -> dict:
 def results_dataset(modes: xr.Dataset, opened: OpenedField, spec: RunSpec, extra: dict) -> xr.Dataset:
     """Dress the solver's modes as the CF results of the contract.
 
-    ``extra`` carries ``errors``, ``separated``, ``n_eff``, ``n_eff_how``,
-    ``method``, ``notes`` and ``units``.  Coordinates keep only their
+    ``extra`` carries ``errors``, ``separated``, ``method``, ``notes``,
+    ``units``, ``compute`` and ``elapsed``.  Coordinates keep only their
     attributes that stay true (:func:`lasting_attrs`); the level or member
     analysed stays as a scalar coordinate; a curvilinear grid keeps its rows'
-    and columns' 1-D coordinates and its grid mapping, where the input has them.
+    and columns' 1-D coordinates and its grid mapping, where the input has them;
+    every map variable names the grid mapping.
     """
     units = extra["units"]
     field_name = spec.input.variable
@@ -108,12 +109,12 @@ def results_dataset(modes: xr.Dataset, opened: OpenedField, spec: RunSpec, extra
     ds["variance_explained_error"].attrs = {
         "long_name": "sampling error of variance_explained (North et al. 1982)",
         "units": "1",
-        "effective_sample_size": float(extra["n_eff"]),
-        "comment": f"variance_explained * sqrt(2 / effective_sample_size); effective sample size: {extra['n_eff_how']}",
+        "comment": "variance_explained * sqrt(2 / effective_sample_size), with each mode's own effective_sample_size",
     }
     ds["separated"] = ("mode", extra["separated"].astype(np.int8))
     ds["separated"].attrs = {
-        "long_name": "mode separated from its neighbours by more than its sampling error (North's rule of thumb)",
+        "long_name": "mode farther from each neighbour than the larger of the two modes' sampling errors "
+                     "(North's rule of thumb)",
         "flag_values": np.array([0, 1], dtype=np.int8),
         "flag_meanings": "mixed_with_a_neighbour separated",
     }
@@ -160,19 +161,18 @@ def provenance(spec: RunSpec, opened: OpenedField, extra: dict) -> dict:
         "institution": "unknown (produced by climodes)",
         "source": f"climodes {__version__}",
         "history": f"{now}: climodes run {shlex.quote(str(spec.source))}",
-        "references": "North et al. 1982, Mon. Wea. Rev. 110, 699-706 (sampling errors)",
+        "references": "North et al. 1982, Mon. Wea. Rev. 110, 699-706 (sampling errors); Bretherton et al. 1999, "
+                      "J. Climate 12, 1990-2009 (effective sample sizes)",
         "date_created": now,
         "climodes_method": extra["method"],
         "climodes_compute": extra["compute"],
         "climodes_config": config_text,
         "climodes_config_sha256": hashlib.sha256(config_text.encode()).hexdigest(),
         "climodes_input_files": files,
-        "climodes_effective_sample_size": float(extra["n_eff"]),
         "climodes_points": extra["points"],
         "climodes_notes": "\n".join(extra["notes"]) or "none",
         "climodes_python": sys.version.split()[0],
         "climodes_elapsed_seconds": float(extra["elapsed"]),
-        "climodes_compute": extra["compute"],
     }
 
 

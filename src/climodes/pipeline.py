@@ -15,7 +15,7 @@ import time
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable, Iterator
+from typing import Callable, ContextManager, Iterator
 
 import xarray as xr
 from dask.array import PerformanceWarning
@@ -36,7 +36,7 @@ from climodes.cluster import (
     write_script,
 )
 from climodes.config import FigureOptions, RunSpec, figure_options
-from climodes.diagnostics import effective_sample_size, north_errors, separated
+from climodes.diagnostics import correlation_maps, mode_diagnostics, sampling_errors
 from climodes.errors import UserError
 from climodes.fields import OpenedField, open_field, rechunked, select
 from climodes.grid import GRID_LAT
@@ -53,7 +53,8 @@ from climodes.output import (
 from climodes.prepare import TimeSteps, time_steps
 from climodes.report import REPORT_FILE, Picture, report_html, run_log, stored_config, variance_table
 from climodes.results import open_results, results_path
-from climodes.solvers import SolverPlan, plan_solver, solve
+from climodes.significance import NoiseTest, fit_red_noise, noise_variables, red_noise_test
+from climodes.solvers import Decomposition, SolverPlan, plan_solver, solve
 from climodes.weights import field_weights
 
 # warnings meant for programmers, not for someone running climodes: deprecations and dask's chunking
@@ -167,7 +168,8 @@ def check(spec: RunSpec) -> list[str]:
 def _solve(spec: RunSpec, planned: Planned, progress: bool):
     """The decomposition of the planned field (the first pass over the data happens here), where
     ``compute`` says; a streaming solver gets the field opened again in its blocks of latitude rows.
-    Returns the modes, the decomposition, the point counts and the compute session (where it ran)."""
+    Returns the modes, the decomposition, the point counts, the compute session (where it ran) and the
+    red-noise test (None when it was not asked for)."""
     field, along_time, plan = planned.field, planned.along_time, planned.plan
     if plan.lat_rows:
         opened = rechunked(planned.opened, {"time": -1, "lat": plan.lat_rows, "lon": -1})
@@ -177,7 +179,33 @@ def _solve(spec: RunSpec, planned: Planned, progress: bool):
     with running(spec.compute, progress, limit, spec.source.parent) as session:
         modes, result, counts = solve(field, planned.weights, spec.modes.count, spec.prepare.max_missing, plan,
                                       spec.modes.seed, session.during, along_time)
-    return modes, result, counts, session
+        tested = _red_noise(spec, result, planned.weights, field.sizes["time"], session.during)
+    return modes, result, counts, session, tested
+
+
+def _red_noise(spec: RunSpec, result: Decomposition, weights: xr.DataArray, steps: int,
+               progress: Callable[[str], ContextManager]) -> NoiseTest | None:
+    """The red-noise test of the kept modes when the config asks for it (``modes.noise_surrogates``)."""
+    if not spec.modes.noise_surrogates:
+        return None
+    noise = fit_red_noise(result.point_moments, weights.values.reshape(-1), steps, weights.shape)
+    with progress(f"red-noise test: {spec.modes.noise_surrogates} surrogate fields"):
+        return red_noise_test(result.eigenvalues, noise, steps, spec.modes.noise_surrogates, spec.modes.noise_level,
+                              spec.modes.seed)
+
+
+def _diagnosed(spec: RunSpec, modes: xr.Dataset, result: Decomposition, tested: NoiseTest | None, steps: int,
+               units: str | None):
+    """The modes with what defends and explains them: each mode's sampling error and effective sample size,
+    North's rule, the whole spectrum, the correlation maps and, when it ran, the red-noise test."""
+    sampling = sampling_errors(result.eigenvalues, result.pcs, result.next_eigenvalue, result.next_pc,
+                               spec.modes.effective_sample_size)
+    correlation = correlation_maps(result.patterns, result.point_moments[:, 0], steps)
+    parts = [modes, mode_diagnostics(modes, sampling, result.spectrum, result.total_variance,
+                                     result.unresolved_fraction, correlation.T.reshape(modes["eof"].shape), units)]
+    if tested is not None:
+        parts.append(noise_variables(tested, modes["mode"], units))
+    return xr.merge(parts), sampling
 
 
 def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress: bool = False) -> RunSummary:
@@ -201,16 +229,15 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
         warned: list[str] = []
         with library_warnings(warned):
             planned = _plan(spec)
-            modes, result, counts, session = _solve(spec, planned, progress)
+            modes, result, counts, session, tested = _solve(spec, planned, progress)
         notes = planned.notes + counts.notes + result.notes + warned
         for line in notes:
             say(f"note: {line}")
         kept = modes.sizes["mode"]
-        n_eff, n_eff_how = effective_sample_size(result.pcs, spec.modes.effective_sample_size)
-        errors = north_errors(result.eigenvalues, n_eff)
-        apart = separated(result.eigenvalues, errors, result.next_eigenvalue)
+        steps = planned.field.sizes["time"]
         units = "1" if spec.prepare.standardize else planned.opened.data.attrs.get("units")
-        extra = dict(errors=errors, separated=apart, n_eff=n_eff, n_eff_how=n_eff_how,
+        modes, sampling = _diagnosed(spec, modes, result, tested, steps, units)
+        extra = dict(errors=sampling.errors, separated=sampling.separated,
                      method=f"{result.method} (chosen because: {planned.plan.reason})",
                      notes=notes, units=units, total_variance=result.total_variance, compute=session.description,
                      elapsed=time.monotonic() - started,
@@ -218,12 +245,11 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
                              f"every step; {counts.too_often_missing} missing too often; {counts.filled_values} "
                              "missing values set to zero anomaly"))
         results = results_dataset(modes, planned.opened, spec, extra)
-        steps = planned.field.sizes["time"]
         asked = f" ({spec.modes.count} asked, {kept} not null)" if kept < spec.modes.count else ""
         headline = (f"climodes: {kept} modes{asked} of {spec.input.variable} from {len(planned.opened.files)} "
                     f"file(s), {steps} time steps x {counts.used} points ({result.method.split(':')[0]} solver) "
                     f"-> {out}")
-        table = [*variance_table(results), f"effective sample size {n_eff:.0f} of {steps} steps"]
+        table = variance_table(results)
         where = [f"solver: {planned.plan.method} ({planned.plan.reason})", f"compute: {session.description}",
                  *(f"moved: {line}" for line in session.moved)]
         late: list[str] = []

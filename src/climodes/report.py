@@ -41,6 +41,7 @@ class ModeRow:
     separated: bool
     significant: bool | None  # None where the significance test did not run
     sample_size: str | None  # the mode's own effective sample size, where the file has it
+    noise: str | None = None  # the red-noise eigenvalue at its rank, as a share of the total variance
 
     def variance(self, plus_minus: str = "\u00b1") -> str:
         """``"23.3% ± 2.6%"``; terminals and logs get ``"+/-"``."""
@@ -66,29 +67,47 @@ def mode_rows(ds: xr.Dataset) -> list[ModeRow]:
     separated = ds["separated"].values if "separated" in ds else np.ones(count)
     significant = ds["significant"].values if "significant" in ds else [None] * count
     sizes = ds["effective_sample_size"].values if "effective_sample_size" in ds else [None] * count
+    total = float(ds["eigenvalue"].attrs.get("total_variance", np.nan))
+    noise = ds["noise_eigenvalue"].values / total if "noise_eigenvalue" in ds else [None] * count
     return [
         ModeRow(mode=int(ds["mode"].values[k]), share=percent(float(ds["variance_explained"][k])),
                 error=percent(float(ds["variance_explained_error"][k])), separated=bool(separated[k]),
                 significant=None if significant[k] is None else bool(significant[k]),
-                sample_size=None if sizes[k] is None else f"{float(sizes[k]):.0f}")
+                sample_size=None if sizes[k] is None else f"{float(sizes[k]):.0f}",
+                noise=None if noise[k] is None else percent(float(noise[k])))
         for k in range(count)
     ]
 
 
 def variance_table(ds: xr.Dataset) -> list[str]:
-    """The modes table as plain text lines (run summary, run.log and ``climodes show``)."""
+    """The modes table as plain text lines: the run's summary, ``run.log`` and ``climodes show``.
+
+    One row per mode: variance explained with its North et al. (1982) error, the mode's own effective
+    sample size, North's rule, and, when the red-noise test ran, the noise eigenvalue (as a share of the
+    total variance) and the verdict; then a line saying what the columns mean.  Columns a file does not
+    hold are left out.
+    """
     rows = mode_rows(ds)
-    tested = rows[0].significant is not None
-    sized = rows[0].sample_size is not None
-    lines = ["mode  variance explained  separated (North)" + ("  significant" if tested else "")
-             + ("  N*" if sized and not tested else "    N*" if sized else "")]
+    sized, tested = rows[0].sample_size is not None, rows[0].significant is not None
+    level = float(ds["noise_eigenvalue"].attrs.get("level", np.nan)) if tested else np.nan
+    header = "mode  variance explained" + ("  effective N" if sized else "") + "  separated (North)"
+    if tested:
+        header += f"  red noise {100 * level:g}%  significant"
+    lines = [header]
     for row in rows:
-        line = f"{row.mode:>4}  {row.share:>9} +/- {row.error:>5}   {'yes      ' if row.separated else 'no, mixed'}"
-        if tested:
-            line += f"          {'yes' if row.significant else 'no ':<3}"
+        line = f"{row.mode:>4}  {row.share:>9} +/- {row.error:>5}"
         if sized:
-            line += f"  {row.sample_size:>5}"
+            line += f"  {row.sample_size:>11}"
+        line += f"  {'yes' if row.separated else 'no, mixed':<17}"
+        if tested:
+            line += f"  {row.noise:>13}  {'yes' if row.significant else 'no'}"
         lines.append(line.rstrip())
+    if sized:
+        lines.append(f"effective N: each mode's own effective sample size, of {ds['pc'].shape[1]} time steps")
+    if tested:
+        lines.append(f"red noise {100 * level:g}%: that level of the eigenvalues at the same rank of "
+                     f"{int(ds['noise_eigenvalue'].attrs.get('surrogates', 0))} red-noise fields")
+        lines.append("significant: above it, counted from mode 1 up to the first mode that is not")
     return lines
 
 
@@ -280,8 +299,6 @@ def summary(path: str | Path) -> str:
         f"  points      {attrs.get('climodes_points', '?')}",
         f"  period      {str(times[0])[:10]} to {str(times[-1])[:10]}, {times.size} steps ({steps_text(ds)})",
         f"  method      {attrs.get('climodes_method', '?')}",
-        f"  sample size {attrs.get('climodes_effective_sample_size', float('nan')):.0f} effective "
-        f"(North et al. 1982 errors)",
         *(f"  {line}" for line in variance_table(ds)),
     ]
     notes = attrs.get("climodes_notes", "none")
@@ -367,8 +384,6 @@ def _facts(ds: xr.Dataset) -> list[tuple[str, str]]:
         ("preparation", ", ".join(_setting(k, v) for k, v in prepare.items() if v is not None)),
         ("points", attrs.get("climodes_points", "not recorded")),
         ("method", attrs.get("climodes_method", "not recorded")),
-        ("sample size", f"{attrs.get('climodes_effective_sample_size', float('nan')):.0f} effective "
-                        "(North et al. 1982 errors)"),
         ("time taken", duration_text(None if seconds is None else float(seconds))),
         ("where it ran", attrs.get("climodes_compute", "not recorded")),
         ("made by", f"{attrs.get('source', '?')} on {attrs.get('date_created', '?')}"),
@@ -379,15 +394,15 @@ def _facts(ds: xr.Dataset) -> list[tuple[str, str]]:
 def _modes_table(ds: xr.Dataset) -> str:
     rows = mode_rows(ds)
     units = units_text(ds["eigenvalue"].attrs.get("units"))
-    heads = ["mode", "variance explained", f"eigenvalue{f' ({units})' if units else ''}", "separated (North)"]
-    tested = rows[0].significant is not None
-    heads += ["significant"] * tested + ["N*"] * (rows[0].sample_size is not None) + ["read with care"]
+    sized, tested = rows[0].sample_size is not None, rows[0].significant is not None
+    level = float(ds["noise_eigenvalue"].attrs.get("level", np.nan)) if tested else np.nan
+    heads = (["mode", "variance explained", f"eigenvalue{f' ({units})' if units else ''}"] + ["effective N"] * sized
+             + ["separated (North)"] + [f"red noise {100 * level:g}%", "significant"] * tested + ["read with care"])
     out = ["<table class=\"modes\">", "<tr>" + "".join(f"<th>{html.escape(h)}</th>" for h in heads[:-1])
            + f"<th class=\"flag\">{heads[-1]}</th></tr>"]
     for k, row in enumerate(rows):
-        cells = [str(row.mode), row.variance(), f"{float(ds['eigenvalue'][k]):.4g}",
-                 "yes" if row.separated else "no, mixed"]
-        cells += ["yes" if row.significant else "no"] * tested + [row.sample_size] * (row.sample_size is not None)
+        cells = ([str(row.mode), row.variance(), f"{float(ds['eigenvalue'][k]):.4g}"] + [row.sample_size] * sized
+                 + ["yes" if row.separated else "no, mixed"] + [row.noise, "yes" if row.significant else "no"] * tested)
         flag = "; ".join(row.flags)
         opening = "<tr class=\"careful\">" if flag else "<tr>"
         out.append(opening + "".join(f"<td>{html.escape(c)}</td>" for c in cells)

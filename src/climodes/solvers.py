@@ -47,6 +47,7 @@ import xarray as xr
 
 from climodes.blocks import (
     field_blocks,
+    series_moments,
     flat,
     full_path,
     gram_part,
@@ -81,7 +82,14 @@ BYTES_PER_BLOCK_VALUE = {"gram": 28, "randomized": 16}
 
 @dataclass
 class Decomposition:
-    """Leading modes of a centred ``(time, point)`` anomaly matrix."""
+    """Leading modes of a centred ``(time, point)`` anomaly matrix.
+
+    ``spectrum`` holds every eigenvalue resolved, kept and beyond (all of them for the exact and Gram
+    solvers), and ``unresolved_fraction`` the share of the total variance beyond them; ``next_pc`` is
+    the PC of the mode after the last kept one (``None`` when there is none); ``point_moments`` is
+    ``(point, 2)``: each prepared series' sum of squares and sum of lag-1 products (see
+    :func:`climodes.blocks.series_moments`), zero at unused points (whose prepared series are zero).
+    """
 
     eigenvalues: np.ndarray
     pcs: np.ndarray
@@ -90,6 +98,10 @@ class Decomposition:
     next_eigenvalue: float
     method: str
     notes: list[str] = field(default_factory=list)
+    spectrum: np.ndarray | None = None
+    unresolved_fraction: float = 0.0
+    next_pc: np.ndarray | None = None
+    point_moments: np.ndarray | None = None
 
 
 @dataclass
@@ -193,7 +205,7 @@ def exact_modes(anomaly: np.ndarray, weights: np.ndarray, count: int) -> Decompo
     n = anomaly.shape[0] - 1
     weighted = anomaly * weights
     u, s, _ = np.linalg.svd(weighted, full_matrices=False)  # LAPACK gesdd
-    spectrum = s**2 / n
+    spectrum = s[:min(n, s.size)] ** 2 / n  # a centred matrix has rank n at most
     pcs = u[:, :count] * np.sqrt(n)
     return Decomposition(
         eigenvalues=spectrum[:count],
@@ -202,6 +214,9 @@ def exact_modes(anomaly: np.ndarray, weights: np.ndarray, count: int) -> Decompo
         total_variance=float(np.sum(weighted**2) / n),
         next_eigenvalue=float(spectrum[count]) if spectrum.size > count else 0.0,
         method="exact: LAPACK gesdd SVD of the in-memory weighted (time x point) matrix",
+        spectrum=spectrum,
+        next_pc=u[:, count] * np.sqrt(n) if spectrum.size > count else None,
+        point_moments=series_moments(anomaly),
     )
 
 
@@ -217,18 +232,27 @@ def _exact(field, weights, count, max_missing, progress, steps):
     patterns = np.full((keep.size, result.patterns.shape[1]), np.nan)
     patterns[keep] = result.patterns
     result.patterns = patterns
+    result.point_moments = series_moments(block)  # zero at the unused points
     return result, fraction, fitted
 
 
-def _leading_eigenpairs(matrix: np.ndarray, wanted: int) -> tuple[np.ndarray, np.ndarray]:
-    """The ``wanted`` largest eigenvalues (descending, floored at 0) and eigenvectors of a symmetric matrix.
+def _gram_spectrum(gram: np.ndarray, values: np.ndarray, rank: int) -> np.ndarray:
+    """Every eigenvalue of the Gram matrix (descending, floored at 0), its first ``rank`` ones: the
+    leading ``values`` already found, the rest from LAPACK's eigenvalues-only path when not all were."""
+    if values.size < gram.shape[0]:
+        values = np.clip(np.linalg.eigvalsh(gram)[::-1], 0, None)
+    return values[:rank]
 
-    Up to 2000 rows numpy's full ``eigh`` is quick; beyond, LAPACK's ``syevr``
-    for just the wanted ones (through scipy) saves most of the cost.
+
+def _leading_eigenpairs(matrix: np.ndarray, wanted: int) -> tuple[np.ndarray, np.ndarray]:
+    """Eigenvalues (descending, floored at 0) and the ``wanted`` leading eigenvectors of a symmetric matrix.
+
+    Up to 2000 rows numpy's full ``eigh`` is quick, and every eigenvalue comes back; beyond, LAPACK's
+    ``syevr`` for just the ``wanted`` pairs (through scipy) saves most of the cost.
     """
     if matrix.shape[0] <= 2000:
         values, vectors = np.linalg.eigh(matrix)
-        values, vectors = values[-wanted:], vectors[:, -wanted:]
+        vectors = vectors[:, -wanted:]  # every eigenvalue is kept: the spectrum
     else:
         import scipy.linalg
 
@@ -244,7 +268,7 @@ def _gram(field, weights, count, max_missing, progress, steps):
     parts = [dask.delayed(quietly(gram_part))(b, weights[r], max_missing, steps) for b, r in zip(blocks, rows)]
     with progress("pass 1 of 2: time x time cross-products"):
         read_gram, full_gram, pieces = dask.compute(tree_sum(parts))[0]
-    fraction, fitted = joined(pieces)
+    fraction, fitted, moments = joined(pieces)
     _refuse_infinities(not (np.isfinite(read_gram).all() and np.isfinite(full_gram).all()))
     _check_points(fraction, max_missing, count)
     cheap, gappy = path_points(fraction, max_missing, steps)
@@ -265,6 +289,9 @@ def _gram(field, weights, count, max_missing, progress, steps):
         total_variance=float(np.trace(gram)) / n,
         next_eigenvalue=float(values[count] / n) if values.size > count else 0.0,
         method="gram: eigendecomposition of the float64 time x time cross-product, streamed over grid blocks",
+        spectrum=_gram_spectrum(gram, values, min(n, int(np.sum(usable_points(fraction, max_missing))))) / n,
+        next_pc=vectors[:, count] * np.sqrt(n) if vectors.shape[1] > count else None,
+        point_moments=moments,
     )
     return result, fraction, fitted
 
@@ -289,7 +316,7 @@ def _randomized(field, weights, count, max_missing, progress, seed, steps):
              for b, r in zip(blocks, rows)]
     with progress(f"pass 1 of at most {most}: random projection"):
         sample, total, pieces = dask.compute(tree_sum(parts))[0]
-    fraction, fitted = joined(pieces)
+    fraction, fitted, moments = joined(pieces)
     _refuse_infinities(not (np.isfinite(sample).all() and np.isfinite(total)))
     _check_points(fraction, max_missing, count)
     cheap, gappy = path_points(fraction, max_missing, steps)
@@ -305,18 +332,26 @@ def _randomized(field, weights, count, max_missing, progress, seed, steps):
         ritz, vectors = np.linalg.eigh(basis.T @ sample)  # Q^T X X^T Q: the Rayleigh-Ritz matrix
         ritz, vectors = np.clip(ritz[::-1], 0, None), vectors[:, ::-1]
         kept = vectors[:, :count]
-        residual = np.linalg.norm(sample @ kept - basis @ kept * ritz[:count], axis=0)
+        residuals = np.linalg.norm(sample @ vectors - basis @ vectors * ritz, axis=0)
+        residual = residuals[:count]
         if _converged(ritz, residual, n + 1):
             how = f"converged in {done} passes"
             break
     else:
         how = f"not converged to its tolerance in {done} passes"
+    # the spectrum: the kept Ritz values, then those beyond whose residual (a bound on the distance to an
+    # eigenvalue) is within the tolerance of the leading eigenvalue, up to the first that is not
+    resolved = count + int(np.argmin(np.append(residuals[count:] <= RITZ_TOLERANCE * ritz[0], False)))
     result = Decomposition(
         eigenvalues=ritz[:count] / n,
         pcs=basis @ kept * np.sqrt(n),
         patterns=np.concatenate(projected) @ kept / np.sqrt(n),
         total_variance=total / n,
         next_eigenvalue=float(ritz[count] / n) if ritz.size > count else 0.0,
+        spectrum=ritz[:resolved] / n,
+        unresolved_fraction=max(0.0, 1 - float(np.sum(ritz[:resolved])) / total),
+        next_pc=basis @ vectors[:, count] * np.sqrt(n) if ritz.size > count else None,
+        point_moments=moments,
         method=(f"randomized: range finder with {OVERSAMPLING} extra vectors (Halko et al. 2011), seed {seed}, "
                 f"streamed over grid blocks; {how}"),
     )
