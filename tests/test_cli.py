@@ -9,6 +9,7 @@ import pytest
 import xarray as xr
 import yaml
 
+from climodes.cli import main
 from conftest import archive_file, field_dataset, red_field, write_config
 
 
@@ -544,3 +545,57 @@ def test_overwrite_flag(tmp_path, small_field, cli):
     assert cli("run", config)[0] == 0
     assert cli("run", config)[0] == 2
     assert cli("run", "--overwrite", config)[0] == 0
+
+
+def test_more_modes_than_grid_points_is_refused_by_check_too(tmp_path, cli):
+    path = tmp_path / "tiny.nc"
+    field_dataset(red_field((40, 2, 4)), np.array([-10.0, 10.0]), np.arange(0, 40.0, 10)).to_netcdf(path)
+    config = write_config(tmp_path, [path], modes={"count": 20})
+    for command in ("check", "run"):
+        code, _, err = cli(command, config)
+        assert code == 2 and "modes.count: 20 modes asked for, but the selected grid has only 8 points" in err
+
+
+def test_check_and_submit_take_overwrite_as_run_does(tmp_path, small_field, cli):
+    config = write_config(tmp_path, [small_field], modes={"count": 2})
+    assert cli("run", config)[0] == 0
+    code, _, err = cli("check", config)
+    assert code == 2 and "(or --overwrite)" in err
+    code, out, err = cli("check", "--overwrite", config)
+    assert code == 0, err
+    assert "overwrite: true" in out  # the run it describes replaces the folder
+    code, out, err = cli("submit", "--dry-run", "--system", "slurm", "--overwrite", config)
+    assert code == 0, err
+    assert "--overwrite" in out
+
+
+def test_without_a_command_the_help_is_shown(capsys):
+    assert main([]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("usage: climodes") and "template" in err and len(err.splitlines()) <= 25
+
+
+def test_the_template_is_a_valid_config_once_its_two_keys_are_filled(tmp_path, small_field, cli):
+    code, out, _ = cli("template")
+    assert code == 0
+    text = out.replace("paths: REQUIRED", f"paths: [{small_field}]").replace("variable: REQUIRED", "variable: tas")
+    (tmp_path / "mine.yaml").write_text(text)
+    minimal = write_config(tmp_path, [small_field], output={"figures": True, "dir": "results"})
+    from climodes.config import load_spec
+
+    assert load_spec(tmp_path / "mine.yaml").to_yaml() == load_spec(minimal).to_yaml()  # every default, as it is
+    assert all("#" in line for line in out.splitlines() if line.startswith("  "))  # every key says what it means
+
+
+def test_a_reader_that_goes_away_is_no_error(monkeypatch, capsys):
+    """`climodes show results | head` closes the pipe early: no traceback, no "internal error"."""
+    class ClosedPipe:
+        def write(self, text):
+            raise BrokenPipeError(32, "Broken pipe")
+
+        def flush(self):
+            pass
+
+    monkeypatch.setattr(sys, "stdout", ClosedPipe())
+    assert main(["template"]) == 0
+    assert capsys.readouterr().err == ""

@@ -75,7 +75,7 @@ def test_every_problem_is_reported_at_once(tmp_path):
     assert ":3: input.variable: expected a non-empty text" in text
     assert ":2: input.paths: required" in text
     assert ":7: prepare.weighting: expected one of coslat, cell_area, none; got 'area'" in text
-    assert ":8: prepare.aggregate:" in text and "write none" in text
+    assert ":8: prepare.aggregate:" in text and "booleans: write one of the words above" in text
     assert ":9: modes.count: expected a whole number from 1 to 100000; got -2" in text
     assert ":10: outptu: unknown section; did you mean output?" in text
     assert all(p.startswith(str(tmp_path / "c.yaml") + ":") for p in problems)
@@ -356,3 +356,15 @@ def test_a_merge_key_may_be_overridden(tmp_path):
         select: {<<: {lat: [-10, 10], months: [1, 2]}, lat: [-20, 20]}
     """))
     assert spec.select.lat == [-20.0, 20.0] and spec.select.months == [1, 2]
+
+
+def test_problems_come_in_the_order_of_their_lines(tmp_path):
+    config = tmp_path / "run.yaml"
+    config.write_text("modes:\n  count: 0\ninput:\n  paths: [a.nc]\n  variable: tas\nprepare:\n  detrend: yes\n"
+                      "select:\n  lat: north\n")
+    with pytest.raises(ConfigError) as caught:
+        load_spec(config)
+    lines = [int(problem.split(":")[1]) for problem in caught.value.problems]
+    assert lines == sorted(lines) and len(lines) == 3
+    detrend = next(p for p in caught.value.problems if "prepare.detrend" in p)
+    assert "YAML reads bare yes/no, on/off and true/false as booleans" in detrend  # `yes` is read as true

@@ -158,3 +158,11 @@ def test_report_opens_in_a_browser_showing_the_table_and_the_first_map(drawn_run
         hits |= np.abs(below - rgb).sum(axis=-1) < 12
     assert hits.sum() > 20_000, "the first map is not on screen below the table"
     assert units_text(ds["eof"].attrs["units"]) == "K"
+
+
+def test_small_shares_keep_two_significant_digits():
+    """A mode of 0.04 % is not "0.0%" (common practice: never print a non-zero share as zero)."""
+    from climodes.report import percent
+
+    assert [percent(x) for x in (0.2334, 0.012, 0.00042, 0.0000123, 0.0)] == ["23.3%", "1.2%", "0.042%", "0.0012%",
+                                                                            "0.0%"]

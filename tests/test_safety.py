@@ -11,6 +11,7 @@ import time
 import numpy as np
 import pytest
 
+from climodes.output import read_mark
 from conftest import field_dataset, red_field, write_config
 
 pytestmark = pytest.mark.slow
@@ -30,7 +31,7 @@ def _digest(path):
     return hashlib.sha256(path.read_bytes()).hexdigest()
 
 
-@pytest.mark.parametrize("sig, code", [(signal.SIGINT, 130), (signal.SIGTERM, 130), (signal.SIGKILL, -9)])
+@pytest.mark.parametrize("sig, code", [(signal.SIGINT, 130), (signal.SIGTERM, 143), (signal.SIGKILL, -9)])
 def test_interrupted_while_writing(slow_run, sig, code):
     folder, source, config = slow_run
     before = _digest(source)
@@ -45,10 +46,16 @@ def test_interrupted_while_writing(slow_run, sig, code):
     assert proc.poll() is None, "the run ended before it could be interrupted"
     proc.send_signal(sig)
     _, err = proc.communicate(timeout=120)
+    if proc.returncode == 0 and sig != signal.SIGKILL:
+        # on a loaded machine the signal can come while the finished results are moved into place: it is
+        # then held and dropped, and the results are complete (output.py, _signals_held)
+        assert read_mark(folder / "out") is not None and not list(folder.glob(".out*")), err
+        return
     assert proc.returncode == code, err
     assert not (folder / "out").exists()  # nothing under the final name
     if sig != signal.SIGKILL:  # a caught signal cleans up its staging folder and claim too
-        assert not list(folder.glob(".out*")) and "interrupted; no results were written" in err
+        word = "interrupted" if sig == signal.SIGINT else "stopped"
+        assert not list(folder.glob(".out*")) and f"{word}; no results were written" in err
         assert "Traceback" not in err
     else:  # what a SIGKILL leaves: the claim and the staging folder, both naming the dead run
         stage, = folder.glob(".out.climodes-stage-*")

@@ -2,13 +2,15 @@
 
 Exit codes: 0 success, 2 a problem with the user's input (one line each, no
 traceback), 1 an internal error (a bug: the traceback is printed to report it),
-130 interrupted.
+130 interrupted by SIGINT (Ctrl-C), 143 stopped by SIGTERM (128 + the signal's
+number, the shell's convention).
 """
 
 from __future__ import annotations
 
 import argparse
 import dataclasses
+import os
 import signal
 import sys
 import traceback
@@ -28,6 +30,8 @@ def _parser() -> argparse.ArgumentParser:
     check = commands.add_parser("check", help="validate a config against its files and output folder; print it "
                                               "with every default filled in")
     check.add_argument("config", help="YAML run configuration")
+    check.add_argument("--overwrite", action="store_true", help="check as run --overwrite would run")
+    commands.add_parser("template", help="print a config with every key, its default and what it means, to start from")
     run = commands.add_parser("run", help="run a config: write modes.nc, figures, report.html and run.log")
     run.add_argument("config", help="YAML run configuration")
     run.add_argument("-q", "--quiet", action="store_true", help="print nothing but errors")
@@ -48,6 +52,7 @@ def _parser() -> argparse.ArgumentParser:
     submit.add_argument("--wait", action="store_true", help="wait for the job to end and exit with its exit status")
     submit.add_argument("--system", choices=["slurm", "pbs"],
                         help="batch system (default: compute.scheduler if slurm or pbs, else the one installed)")
+    submit.add_argument("--overwrite", action="store_true", help="the job's run replaces an existing results folder")
     return parser
 
 
@@ -65,14 +70,22 @@ def _redraw(args: argparse.Namespace) -> str:
             f"and wrote {written[-1]}")
 
 
-def _interrupt(signum, frame):  # noqa: ARG001  (signal handler signature)
-    raise KeyboardInterrupt
+class Stopped(KeyboardInterrupt):
+    """SIGTERM (a batch system ending a job, ``kill``): cleaned up like Ctrl-C, with its own exit code."""
+
+
+def _stop(signum, frame):  # noqa: ARG001  (signal handler signature)
+    raise Stopped
 
 
 def main(argv: list[str] | None = None) -> int:
     """Entry point of the ``climodes`` console script; returns the exit code."""
-    args = _parser().parse_args(argv)
-    signal.signal(signal.SIGTERM, _interrupt)
+    parser = _parser()
+    if not (sys.argv[1:] if argv is None else argv):  # no command at all: what there is to do
+        parser.print_help(sys.stderr)
+        return 2
+    args = parser.parse_args(argv)
+    signal.signal(signal.SIGTERM, _stop)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # the run turns the warnings worth telling into notes
         return _command(args)
@@ -90,7 +103,14 @@ def _command(args: argparse.Namespace) -> int:
         if args.command == "figures":
             print(_redraw(args))
             return 0
+        if args.command == "template":
+            from climodes.config import template
+
+            print(template(), end="")
+            return 0
         spec = load_spec(args.config)  # config problems are found here, before the big imports
+        if args.overwrite:
+            spec = dataclasses.replace(spec, output=dataclasses.replace(spec.output, overwrite=True))
         if args.command == "check":
             from climodes.pipeline import check
 
@@ -106,9 +126,6 @@ def _command(args: argparse.Namespace) -> int:
         from climodes.cluster import show_progress
         from climodes.pipeline import run
 
-        if args.overwrite:
-            spec = dataclasses.replace(spec, output=dataclasses.replace(spec.output, overwrite=True))
-
         say = (lambda line: None) if args.quiet else (lambda line: print(line, file=sys.stderr))
         summary = run(spec, say, progress=show_progress(args.quiet))
         if not args.quiet:
@@ -121,9 +138,13 @@ def _command(args: argparse.Namespace) -> int:
     except UserError as err:
         print(f"climodes: error: {err}", file=sys.stderr)
         return 2
-    except KeyboardInterrupt:
-        print("climodes: interrupted; no results were written", file=sys.stderr)
-        return 130
+    except KeyboardInterrupt as err:
+        print(f"climodes: {'stopped' if isinstance(err, Stopped) else 'interrupted'}; no results were written",
+              file=sys.stderr)
+        return 143 if isinstance(err, Stopped) else 130
+    except BrokenPipeError:  # the reader went away (climodes show ... | head): nothing more to say
+        sys.stdout = open(os.devnull, "w")  # so the interpreter's last flush does not complain either
+        return 0
     except Exception:  # a bug: show everything needed to report it
         traceback.print_exc()
         print("climodes: internal error (a bug in climodes); please report it with the lines above", file=sys.stderr)

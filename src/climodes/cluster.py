@@ -542,10 +542,11 @@ class BatchJob:
     memory_mib: int
     walltime: str
     why: str
+    overwrite: bool = False  # the run replaces an existing results folder (climodes run --overwrite)
 
 
 def batch_job(spec_source: Path, compute: ComputeSection, system: str, method: str, shape, count: int,
-              itemsize: int, needed: int) -> BatchJob:
+              itemsize: int, needed: int, overwrite: bool = False) -> BatchJob:
     """The job for a run: ``cores`` from :func:`submit_cores`, the memory the plan needs (``needed`` bytes),
     the walltime of ``compute.walltime`` or :func:`estimated_walltime`."""
     cores = submit_cores(compute, method, shape[1])
@@ -553,7 +554,7 @@ def batch_job(spec_source: Path, compute: ComputeSection, system: str, method: s
     why = (f"{steps} steps x {nlat * nlon} points ({_size(steps * nlat * nlon * itemsize)}), {method} solver: "
            f"needs {_size(needed)}" + ("" if compute.walltime != "auto" else "; time limit estimated"))
     return BatchJob(system, spec_source, cores, _request(needed), walltime(compute, method, shape, count, itemsize,
-                                                                            cores), why)
+                                                                            cores), why, overwrite)
 
 
 def batch_system(compute: ComputeSection, chosen: str | None) -> str:
@@ -572,7 +573,8 @@ MARK = "# written by climodes submit"
 
 
 def batch_script(job: BatchJob, compute: ComputeSection) -> str:
-    """The text of the batch script: directives, then ``climodes run --quiet CONFIG`` with this Python."""
+    """The text of the batch script: directives, then ``climodes run --quiet CONFIG`` with this Python
+    (``--overwrite`` too when the job was asked to replace the results)."""
     folder, stem = job.config.parent, job.config.stem
     if job.system == "slurm":
         lines = [f"--job-name=climodes-{stem}", "--nodes=1", "--ntasks=1", f"--cpus-per-task={job.cores}",
@@ -594,7 +596,8 @@ def batch_script(job: BatchJob, compute: ComputeSection) -> str:
         f"# {job.why}; change these under compute: in the config",
         "set -eu",
         f"cd {_quoted(folder)}",
-        f"exec {_quoted(Path(sys.executable))} -m climodes run --quiet {_quoted(job.config)}",
+        f"exec {_quoted(Path(sys.executable))} -m climodes run --quiet {'--overwrite ' * job.overwrite}"
+        f"{_quoted(job.config)}",
         "",
     ]
     return "\n".join(body)

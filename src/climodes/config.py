@@ -50,7 +50,8 @@ NESTING = 50  # levels of lists and mappings a config may nest (a real one uses 
 def _choice(*options: str) -> Callable[[Any], str]:
     def check(value: Any) -> str:
         if value not in options:
-            hint = " (YAML reads bare no/off/false as a boolean: write none)" if value is False else ""
+            hint = (" (YAML reads bare yes/no, on/off and true/false as booleans: write one of the words above)"
+                    if isinstance(value, bool) else "")
             raise ValueError(f"expected one of {', '.join(options)}; got {quoted(value)}{hint}")
         return value
 
@@ -628,14 +629,44 @@ def load_spec(config_path: str | Path) -> RunSpec:
         if not problems:
             resolved[name] = cls(**values)
     if problems:
-        raise ConfigError(problems)
+        raise ConfigError(_by_line(problems))
 
     spec = RunSpec(source=path.resolve(), **resolved)
     _check_together(spec, lines, where, problems)
     _check_name_lengths(spec, lines, where, problems)
     if problems:
-        raise ConfigError(problems)
+        raise ConfigError(_by_line(problems))
     return _resolve_paths(spec)
+
+
+def _by_line(problems: list[str]) -> list[str]:
+    """The problems in the order of their lines in the file (``FILE:LINE: ...``), as an editor shows them."""
+    def line(problem: str) -> int:
+        number = problem.split(": ", 1)[0].rsplit(":", 1)[-1]
+        return int(number) if number.isdigit() else 0
+
+    return sorted(problems, key=line)
+
+
+def template() -> str:
+    """A config with every key at its default, each with what it means: a start for a new run.
+
+    The two keys without a default are left for the user to fill in.
+    """
+    lines = ["# A climodes run. Relative paths are read from this file's folder; `climodes check` validates it.",
+             "# Every key is shown at its default: delete the ones you keep as they are."]
+    for name, cls in SECTIONS.items():
+        lines.append(f"{name}:")
+        for f in dataclasses.fields(cls):
+            required = f.default is dataclasses.MISSING and f.default_factory is dataclasses.MISSING
+            default = None if required else (f.default if f.default_factory is dataclasses.MISSING
+                                             else f.default_factory())
+            if dataclasses.is_dataclass(default):
+                default = dataclasses.asdict(default)
+            value = "REQUIRED" if required else yaml.safe_dump(default, default_flow_style=True, width=10**6).strip()
+            value = value.removesuffix("\n...").removesuffix(" ...")
+            lines.append(f"  {f.name}: {value}  # {f.metadata['doc']}")
+    return "\n".join(lines) + "\n"
 
 
 def _suggest(word: Any, options) -> str:

@@ -128,7 +128,10 @@ def _plan(spec: RunSpec) -> Planned:
     room = capacity(spec.compute)
     plan = plan_solver(field.shape, spec.modes.count, spec.modes.method, room.memory, room.workers,
                        in_use=room.in_use, fitted_per_point=along_time.values_per_point)
-    steps = field.sizes["time"]
+    steps, points = field.sizes["time"], field.sizes["lat"] * field.sizes["lon"]
+    if spec.modes.count > points:
+        raise UserError(f"modes.count: {spec.modes.count} modes asked for, but the selected grid has only {points} "
+                        "points; lower modes.count or widen the region")
     if steps < spec.modes.count + 1:
         raise UserError(f"modes.count: {spec.modes.count} modes need at least {spec.modes.count + 1} time steps, "
                         f"but the prepared field has {steps}; lower modes.count or lengthen select.period")
@@ -304,7 +307,7 @@ def submit(spec: RunSpec, system: str | None, dry_run: bool, wait: bool, show: C
     plan = plan_solver(field.shape, spec.modes.count, spec.modes.method, room.memory, room.workers,
                        in_use=room.in_use, fitted_per_point=planned.along_time.values_per_point)
     job = batch_job(spec.source, spec.compute, chosen, plan.method, field.shape, spec.modes.count,
-                    field.dtype.itemsize, plan.memory)
+                    field.dtype.itemsize, plan.memory, overwrite=spec.output.overwrite)
     text, path = batch_script(job, spec.compute), script_path(spec.source, chosen)
     write_script(path, text)
     show(text)

@@ -57,8 +57,16 @@ class ModeRow:
 
 
 def percent(fraction: float) -> str:
-    """A fraction as people read it in the modes table: ``0.2334 -> "23.3%"``."""
-    return f"{100 * fraction:.1f}%"
+    """A fraction as people read it in the modes table, with two significant digits at least:
+    ``0.2334 -> "23.3%"``, ``0.00042 -> "0.042%"`` (never a bare "0.0%" for a small, non-zero share).
+
+    >>> percent(0.2334), percent(0.00042), percent(0.0)
+    ('23.3%', '0.042%', '0.0%')
+    """
+    share = 100 * fraction
+    if share == 0 or abs(share) >= 1 or not np.isfinite(share):
+        return f"{share:.1f}%"
+    return f"{share:.2g}%"
 
 
 def mode_rows(ds: xr.Dataset) -> list[ModeRow]:
