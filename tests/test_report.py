@@ -64,7 +64,7 @@ def test_one_modes_table_for_summary_log_show_figures_and_report(drawn_run, cli)
     assert "\n".join(f"  {line}" for line in table) in shown
     page = (folder / "report.html").read_text(encoding="utf-8")
     for k, row in enumerate(mode_rows(ds)):
-        assert f"{row.share:>9} +/- {row.error:>5}" in table[k + 1]
+        assert f"{row.share:>7} +/- {row.error:<7}" in table[k + 1]
         assert f"<td>{row.variance()}</td>" in page
         fig = figures.mode_map(ds, k)
         assert fig.texts[0].get_text() == f"Mode {row.mode}: {row.variance()} of the variance"

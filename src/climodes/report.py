@@ -18,6 +18,7 @@ from __future__ import annotations
 import base64
 import html
 import re
+import textwrap
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -62,11 +63,13 @@ def percent(fraction: float) -> str:
 
     >>> percent(0.2334), percent(0.00042), percent(0.0)
     ('23.3%', '0.042%', '0.0%')
+    >>> percent(0.005)
+    '0.50%'
     """
     share = 100 * fraction
     if share == 0 or abs(share) >= 1 or not np.isfinite(share):
         return f"{share:.1f}%"
-    return f"{share:.2g}%"
+    return f"{share:#.2g}%"
 
 
 def mode_rows(ds: xr.Dataset) -> list[ModeRow]:
@@ -98,12 +101,12 @@ def variance_table(ds: xr.Dataset) -> list[str]:
     rows = mode_rows(ds)
     sized, tested = rows[0].sample_size is not None, rows[0].significant is not None
     level = float(ds["noise_eigenvalue"].attrs.get("level", np.nan)) if tested else np.nan
-    header = "mode  variance explained" + ("  effective N" if sized else "") + "  separated (North)"
-    if tested:
-        header += f"  red noise {100 * level:g}%  significant"
-    lines = [header]
+    noise = f"red noise {100 * level:g}%"
+    header = f"mode  {'variance explained':<19}" + (f"  {'effective N':>11}" if sized else "") + \
+        f"  {'separated (North)':<17}" + (f"  {noise:>13}  significant" if tested else "")
+    lines = [header.rstrip()]
     for row in rows:
-        line = f"{row.mode:>4}  {row.share:>9} +/- {row.error:>5}"
+        line = f"{row.mode:>4}  {row.share:>7} +/- {row.error:<7}"
         if sized:
             line += f"  {row.sample_size:>11}"
         line += f"  {'yes' if row.separated else 'no, mixed':<17}"
@@ -293,8 +296,15 @@ def domain_text(ds: xr.Dataset) -> str:
             f"lon {_range(ds[lon].values)} ({ds.sizes[columns]} columns)")
 
 
+def _wrapped(label: str, text: str, width: int = 100) -> list[str]:
+    """``label`` and ``text`` as summary lines no wider than ``width``, the text's own lines kept."""
+    return textwrap.wrap(text, width=width, initial_indent=f"  {label:<11} ", subsequent_indent=" " * 14,
+                         break_on_hyphens=False) or [f"  {label}"]
+
+
 def summary(path: str | Path) -> str:
-    """The summary text of a results folder or ``modes.nc`` (``climodes show``)."""
+    """The summary text of a results folder or ``modes.nc`` (``climodes show``), lines of 100 characters
+    at most but for paths and the table."""
     ds = open_results(path)
     attrs = ds.attrs
     units = ds["eof"].attrs.get("units", "?")
@@ -304,9 +314,9 @@ def summary(path: str | Path) -> str:
         f"  made by     {attrs.get('source', '?')} on {attrs.get('date_created', '?')}",
         f"  field       {field_text(ds)} [{units}]",
         f"  domain      {domain_text(ds)}",
-        f"  points      {attrs.get('climodes_points', '?')}",
+        *_wrapped("points", attrs.get("climodes_points", "?")),
         f"  period      {str(times[0])[:10]} to {str(times[-1])[:10]}, {times.size} steps ({steps_text(ds)})",
-        f"  method      {attrs.get('climodes_method', '?')}",
+        *_wrapped("method", attrs.get("climodes_method", "?")),
         *(f"  {line}" for line in variance_table(ds)),
     ]
     notes = attrs.get("climodes_notes", "none")
