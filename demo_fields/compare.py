@@ -1,6 +1,7 @@
-"""Compare the modes climodes recovered from the demo with the ones planted in it.
+"""Compare the modes climodes recovered from the demo with the ones planted in it, and (given a
+projection folder) the later decade's pseudo-PCs with the series planted there.
 
-Usage: python demo_fields/compare.py RESULTS_DIR
+Usage: python demo_fields/compare.py RESULTS_DIR [PROJECTION_DIR]
 """
 
 import sys
@@ -27,3 +28,12 @@ for k, name in enumerate(truth["name"].values):
     rms = float(np.sqrt(((planted - np.sign(r_map) * recovered) ** 2).where(both).mean()))
     print(f"{k + 1} {name:<22} {float(truth['eigenvalue'][k]):8.2f} {float(found['eigenvalue'][k]):10.2f}"
           f"  {abs(r_map):10.4f}  {abs(r_pc):7.4f}  {rms:8.3f}")
+
+if len(sys.argv) > 2:
+    later = xr.open_dataset(here / "later_planted_modes.nc")
+    projection = xr.open_dataset(Path(sys.argv[2]) / "projection.nc")
+    print()
+    print("planted mode              |pseudo-PC r| with the later decade's planted PC")
+    for k, name in enumerate(later["name"].values):
+        r = float(np.corrcoef(later["pc"].isel(mode=k), projection["pc"].isel(mode=k))[0, 1])
+        print(f"{k + 1} {name:<22} {abs(r):8.4f}")

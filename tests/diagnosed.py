@@ -1,7 +1,8 @@
 """Results files carrying every variable the results contract lets a run add, for the figure and report tests.
 
-The variables are computed here, independently of climodes, from the file's
-own modes: a field rebuilt from the modes plus a fixed noise stands for the
+The variables a run wrote are kept; those it did not (the red-noise test, a
+rotation it was not asked for) are computed here, independently of climodes,
+from the file's own modes: a field rebuilt from the modes plus a fixed noise stands for the
 prepared field, and the diagnostics follow from their definitions (correlation
 of each PC with the field, residual after modes 1..k, the eigenvalues of the
 whole field, a two-mode rotation).  The red-noise threshold is a fixed
@@ -28,7 +29,8 @@ def diagnosed(ds: xr.Dataset, dropped: np.ndarray | None = None, rotation: bool 
     (``point_status`` 1, replacing the run's); the other unused points have no data (0).
     """
     kept = {name: ds[name] for name in ("correlation", "spectrum", "spectrum_explained", "effective_sample_size",
-                                        "point_status") if name in ds}
+                                        "point_status", "unexplained_fraction", "explained_locally", "rotated_eof",
+                                        "rotated_pc", "rotated_variance_explained") if name in ds}
     ds = ds.load().drop_vars(["spectrum", "spectrum_explained", "rank"], errors="ignore").copy()
     eof, pc = ds["eof"], ds["pc"]
     mode, rows, columns = eof.dims

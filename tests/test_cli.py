@@ -26,7 +26,7 @@ def test_check_prints_the_resolved_config(tmp_path, small_field, cli):
     ]
     resolved = yaml.safe_load(out)
     assert resolved["modes"] == {"count": 3, "effective_sample_size": "auto", "method": "auto", "seed": 0,
-                                 "noise_surrogates": 0, "noise_level": 0.95}
+                                 "noise_surrogates": 0, "noise_level": 0.95, "rotate": "none"}
     assert resolved["compute"] == {"memory": "4GB", "workers": "auto", "scheduler": "threads", "jobs": 2,
                                    "job_cores": 4, "job_memory": "8GB", "walltime": "auto", "queue": None,
                                    "account": None, "directives": [], "interface": None, "address": None,
@@ -252,6 +252,25 @@ def _daily_baseline_short(tmp_path, *_):
     return [path], {"modes": {"count": 2}, "prepare": {"baseline": ["2001-01-01", "2001-11-30"]}}
 
 
+def _marked(folder: Path, files: list[str]) -> Path:
+    """A folder with a climodes manifest listing ``files`` (written too), as a finished run leaves it."""
+    import json
+
+    folder.mkdir()
+    for name in files:
+        (folder / name).write_text("results")
+    (folder / ".climodes-results.json").write_text(json.dumps({"kind": "climodes results folder", "files": files}))
+    return folder
+
+
+def _inside_results(tmp_path, *_):
+    return [_ok(tmp_path)], {"output": {"dir": str(_marked(tmp_path / "earlier", ["modes.nc"]) / "new")}}
+
+
+def _a_projection(tmp_path, *_):
+    return [_ok(tmp_path)], {"output": {"dir": str(_marked(tmp_path / "later", ["projection.nc"])), "overwrite": True}}
+
+
 CATALOGUE = {
     "missing file": (lambda t, m: ([t / "absent.nc"], {}), "absent.nc: no such file"),
     "empty glob": (lambda t, m: ([t / "nothing_*.nc"], {}), "matches no file"),
@@ -403,6 +422,15 @@ CATALOGUE = {
                                          "give at least 19"),
     "red-noise level not a fraction": (lambda t, m: ([_ok(t)], {"modes": {"noise_level": 95}}),
                                        "modes.noise_level: expected a fraction between 0 and 1"),
+    # reuse: rotation (the project, reconstruct and table commands have their own table in test_reuse.py)
+    "unknown rotation": (lambda t, m: ([_ok(t)], {"modes": {"rotate": "promax"}}),
+                         "modes.rotate: expected one of none, varimax; got 'promax'"),
+    "output inside a results folder": (_inside_results, "lies inside the climodes results folder"),
+    "output into a projection's folder": (_a_projection, "holds the projection.nc of a projection, which a run never "
+                                                         "replaces"),
+    "rotation written as no": (lambda t, m: ([_ok(t)], {"modes": {"rotate": False}}),
+                               "modes.rotate: expected one of none, varimax; got False (YAML reads bare yes/no, "
+                               "on/off and true/false as booleans: write one of the words above)"),
 }
 
 # found only once the run works: the field's values read, a dask scheduler reached, the results written;

@@ -174,7 +174,7 @@ def test_dry_run_writes_a_pbs_script(tmp_path, cli):
                           f"-o {config.parent}/", "-q short", "-A proj1"]
 
 
-def test_the_job_asks_for_what_the_plan_needs(tmp_path, cli):
+def test_the_job_asks_for_what_the_plan_needs(tmp_path, cli, fresh_process):
     """The memory request follows the field and the solver: a bigger field that the gram solver streams
     asks for more than a small one, never more than compute.memory allows the plan."""
     small = _submit_config(tmp_path)

@@ -101,10 +101,24 @@ def test_demo_figures_exist_and_are_pictures(demo_run):
     folder = root / "results" / "demo"
     names = sorted(p.name for p in (folder / "figures").iterdir())
     assert names == sorted([f"mode_0{k}.png" for k in range(1, 6)] + [f"pc_0{k}.png" for k in range(1, 6)]
-                           + ["pairs.png", "spectrum.png"])
+                           + ["pairs.png", "spectrum.png", "residuals.png"])
     for p in (folder / "figures").iterdir():
         assert p.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and p.stat().st_size > 10_000
     assert (folder / "report.html").stat().st_size > 100_000
+
+
+def test_the_later_decade_projects_onto_the_demo_modes(demo_run):
+    """configs/demo_later.yaml: the later decade, made of the same planted patterns with new series, projected
+    onto the demo's modes gives pseudo-PCs that follow the planted series (planted truth; as closely as the
+    run's own PCs follow the first fifty years', 0.98 to 0.998 in the README)."""
+    root, _ = demo_run
+    (root / "configs" / "demo_later.yaml").write_text(open("configs/demo_later.yaml").read())
+    assert main(["project", "--quiet", str(root / "results" / "demo"), str(root / "configs" / "demo_later.yaml")]) == 0
+    projection = xr.open_dataset(root / "results" / "demo_later" / "projection.nc")
+    truth = xr.open_dataset(root / "demo_fields" / "later_planted_modes.nc")
+    for k in range(3):
+        assert abs(np.corrcoef(projection["pc"].values[k], truth["pc"].values[k])[0, 1]) > 0.98
+    assert cf_strict(root / "results" / "demo_later" / "projection.nc").returncode == 0
 
 
 def test_demo_files_are_reproducible(tmp_path):

@@ -278,3 +278,76 @@ def test_results_file_holds_the_spectrum_and_the_correlation(tmp_path, cli, smal
     for k in range(3):
         reference = np.corrcoef(ds["pc"].values[k], series)[0, 1]
         np.testing.assert_allclose(float(ds["correlation"][k, 4, 7]), reference, atol=1e-10)
+
+
+# --- the residual after k modes
+
+
+def _gappy_monthly(tmp_path):
+    """Six years of a monthly float32 field with a seasonal cycle, a trend, a filled gappy point and land."""
+    rng = np.random.default_rng(11)
+    lat, lon = np.linspace(-50, 50, 6), np.arange(0, 80.0, 10)
+    time = xr.date_range("1990-01-01", periods=72, freq="MS")
+    season = 5 * np.cos(2 * np.pi * (time.month.values - 1) / 12)[:, None, None]
+    values = 280 + season + 0.01 * np.arange(72)[:, None, None] + red_field((72, 6, 8), 11)
+    values += 0.2 * rng.standard_normal(values.shape)
+    values[:, 0, :2] = np.nan  # land
+    values[::13, 3, 4] = np.nan  # gappy, filled
+    path = tmp_path / "gappy.nc"
+    field_dataset(values.astype(np.float32), lat, lon, time=time).to_netcdf(path)
+    return path, values.astype(np.float32)
+
+
+def _brute_force_residuals(ds: xr.Dataset, values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The residual of the anomalies after rebuilding them from modes 1..k, by plain numpy: the anomalies from
+    the stored preparation, ``A - sum_{j<=k} pc_j eof_j``, its weighted sum of squares at each step over the
+    step's, and its variance at each point over the point's."""
+    from climodes.prepare import apply, fitted_preparation, keys_of
+
+    fitted = fitted_preparation(ds)
+    used = ds["point_status"].values == 2
+    anomaly = np.where(used, apply(values.astype(np.float64), fitted, keys_of(ds["time"], fitted)), 0.0)
+    w2 = np.where(used, ds["area_weight"].values, 0.0) ** 2
+    rebuilt = np.cumsum(np.einsum("kt,kyx->ktyx", ds["pc"].values, np.nan_to_num(ds["eof"].values)), axis=0)
+    residual = anomaly[None] - rebuilt
+    per_step = (residual**2 * w2).sum(axis=(2, 3)) / (anomaly**2 * w2).sum(axis=(1, 2))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        per_point = 1 - residual.var(axis=1, ddof=1) / np.where(used, anomaly.var(axis=0, ddof=1), np.nan)
+    return per_step, per_point
+
+
+@pytest.mark.parametrize("method, rtol", [("exact", 1e-9), ("gram", 1e-9), ("randomized", 1e-4)])
+def test_the_residual_after_k_modes_is_the_brute_force_residual(tmp_path, cli, method, rtol):
+    """unexplained_fraction and explained_locally against the residual of the anomalies rebuilt from modes
+    1..k by plain numpy (their definitions): for 3 modes, and for every mode of the field, where nothing is
+    left (SVD algebra: all modes rebuild the anomalies); the fractions never increase with k."""
+    path, values = _gappy_monthly(tmp_path)
+    for count in (3, 46):  # 46: every used point, the rank of the anomalies
+        config = write_config(tmp_path, [path], modes={"count": count, "method": method},
+                              prepare={"detrend": "linear"}, output={"overwrite": True})
+        code, _, err = cli("run", config)
+        assert code == 0, err
+        ds = xr.open_dataset(tmp_path / "out" / "modes.nc")
+        per_step, per_point = _brute_force_residuals(ds, values)
+        found = ds["unexplained_fraction"].values
+        np.testing.assert_allclose(found, per_step, rtol=0, atol=rtol)
+        np.testing.assert_allclose(ds["explained_locally"].values, per_point, rtol=0, atol=rtol)
+        assert (np.diff(found, axis=0) <= 1e-12).all()
+        assert (np.diff(ds["explained_locally"].values, axis=0) >= -1e-12)[:, ds["point_status"] == 2].all()
+        assert np.isnan(ds["explained_locally"].values[:, 0, :2]).all()  # land
+        np.testing.assert_allclose(ds["step_variance"].sum(), ds["eigenvalue"].attrs["total_variance"], rtol=1e-6)
+    assert ds.sizes["mode"] == 46
+    np.testing.assert_allclose(found[-1], 0, atol=rtol)
+    np.testing.assert_allclose(ds["explained_locally"].values[-1][ds["point_status"] == 2], 1, atol=rtol)
+
+
+def test_unexplained_fraction_hand_computed():
+    """Two orthogonal modes: a step made of 3 parts of mode 1 and 4 of mode 2 (sum of squares 25) leaves
+    16/25 after mode 1 and nothing after both; a step of zeros has no fraction (hand-computed)."""
+    from climodes.diagnostics import unexplained_fractions
+
+    eigenvalues = np.array([9.0, 4.0])  # pc * sqrt(lambda) is the step's part along each mode
+    pcs = np.array([[1.0, 2.0], [0.0, 0.0]])
+    found = unexplained_fractions(eigenvalues, pcs, np.array([25.0, 0.0]))
+    np.testing.assert_allclose(found[0], [16 / 25, 0.0])
+    assert np.isnan(found[1]).all()

@@ -188,7 +188,7 @@ def test_long_and_daily_series_are_smoothed(per_year, count, window):
 def _results_of(tmp_path, cli, values, lat, lon, time=None, **sections):
     path = tmp_path / "field.nc"
     field_dataset(values, lat, lon, time=time).to_netcdf(path)
-    sections.setdefault("modes", {"count": 3})
+    sections.setdefault("modes", {"count": 3, "rotate": "varimax"})  # the figures of rotated modes from the run
     code, _, err = cli("run", write_config(tmp_path, [path], **sections))
     assert code == 0, err
     return tmp_path / "out"
@@ -300,7 +300,8 @@ def _curvilinear(tmp_path, cli):
                 "lat": (("rlat", "rlon"), lat2d, {"standard_name": "latitude", "units": "degrees_north"}),
                 "lon": (("rlat", "rlon"), lon2d, {"standard_name": "longitude", "units": "degrees_east"})})
     ds.to_netcdf(tmp_path / "rcm.nc")
-    config = write_config(tmp_path, [tmp_path / "rcm.nc"], modes={"count": 3}, prepare={"weighting": "cell_area"})
+    config = write_config(tmp_path, [tmp_path / "rcm.nc"], modes={"count": 3, "rotate": "varimax"},
+                          prepare={"weighting": "cell_area"})
     code, _, err = cli("run", config)
     assert code == 0, err
     return tmp_path / "out", None
@@ -378,7 +379,8 @@ def test_every_figure_on_every_domain(tmp_path, cli, offline, domain):
 def test_maps_of_a_dateline_box_without_the_network(tmp_path, cli, offline):
     folder, _ = _dateline(tmp_path, cli)
     options, written = redraw(folder, draw=["maps"], dpi=50)
-    assert [p.name for p in written] == ["mode_01.png", "mode_02.png", "mode_03.png", "report.html"]
+    assert [p.name for p in written] == ["mode_01.png", "mode_02.png", "mode_03.png", "rotated_01.png",
+                                         "rotated_02.png", "rotated_03.png", "report.html"]
     ds = open_results(folder)
     lons, _ = grid_points(ds)
     assert lons.min() == pytest.approx(142.5) and lons.max() == pytest.approx(237.5)  # one piece, not two
@@ -455,11 +457,11 @@ def test_redrawing_gives_the_same_files_as_the_run(tmp_path, small_field, cli):
     assert cli("run", config)[0] == 0
     folder = tmp_path / "out"
     first = _drawn(folder)
-    assert len(first) == 8 and all(name.endswith(".png") for name in first)
+    assert len(first) == 9 and all(name.endswith(".png") for name in first)  # residuals.png from the run's own
     small_field.unlink()  # figures come from modes.nc alone
     code, out, err = cli("figures", folder)
     assert code == 0, err
-    assert "drew 8 figure(s) (png, 50 dpi)" in out
+    assert "drew 9 figure(s) (png, 50 dpi)" in out
     assert _drawn(folder) == first  # byte for byte: nothing in a figure depends on when it was drawn
     for kind in ("svg", "pdf"):
         assert cli("figures", folder, "--format", kind, "--draw", "maps,spectrum")[0] == 0

@@ -15,7 +15,7 @@ import xarray as xr
 from test_cluster import _kill_during_first_pass, many_files, run_config, same_modes
 from conftest import write_config
 
-pytestmark = pytest.mark.slow
+pytestmark = [pytest.mark.slow, pytest.mark.usefixtures("fresh_process")]
 
 # two worker jobs of one core on a node of two: the plan sees one worker per job, as the threads run
 # with one worker, so the blocks and their sums are the same

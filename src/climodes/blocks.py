@@ -30,7 +30,7 @@ import dask.array
 import numpy as np
 import xarray as xr
 
-from climodes.prepare import TimeSteps, centre, fit
+from climodes.prepare import TimeSteps, centre
 from climodes.weights import usable_points
 
 
@@ -207,10 +207,11 @@ def gram_part(values, weights, max_missing, steps):
 
 
 def range_part(values, weights, max_missing, omega, steps):
-    """The block's ``A w Omega`` and its share of the total variance ``sum(A w)^2``; and the block's missing
-    fractions and fitted quantities.
+    """The block's ``A w Omega`` and its share of each step's weighted sum of squares ``sum_x (a w)^2`` (whose
+    sum over the steps is the total variance times ``n - 1``); and the block's missing fractions and fitted
+    quantities.
 
-    The total variance needs every anomaly, so this pass fits and applies the steps on the block itself;
+    The sums of squares need every anomaly, so this pass fits and applies the steps on the block itself;
     the complete points (see :func:`_complete`) skip the missing-data rule, and their weights go into
     ``Omega`` rather than into the block.
     """
@@ -224,12 +225,18 @@ def range_part(values, weights, max_missing, omega, steps):
     _place(fitted, complete, part)
     full, fraction[~complete], part = full_path(block, ~complete, steps, max_missing, work)
     _place(fitted, ~complete, part)
-    total = _squares(anomaly) @ weights[complete] ** 2 + _squares(full) @ weights[~complete] ** 2
+    squares = step_squares(anomaly, weights[complete]) + step_squares(full, weights[~complete])
     sample = (anomaly @ (omega[complete] * weights[complete, None]).astype(work)).astype(np.float64)
     sample += full @ (omega[~complete] * weights[~complete, None]).astype(work)
     moments = np.empty((block.shape[1], 2))
     moments[complete], moments[~complete] = series_moments(anomaly), series_moments(full)
-    return sample, float(total), [(fraction, fitted, moments)]
+    return sample, squares, [(fraction, fitted, moments)]
+
+
+def step_squares(anomaly: np.ndarray, weights: np.ndarray) -> np.ndarray:
+    """Each step's weighted sum of squares over the points of a ``(time, point)`` block,
+    ``sum_x (w_x a_tx)^2``, accumulated in float64: the block's share of ``||x_t||^2``."""
+    return np.einsum("ij,ij,j->i", anomaly, anomaly, np.square(weights, dtype=np.float64), dtype=np.float64)
 
 
 def series_moments(anomaly: np.ndarray) -> np.ndarray:

@@ -393,6 +393,8 @@ class ModesSection:
     noise_surrogates: int = _key(_whole(0, 100_000), "red-noise surrogate fields for the significance test; 0: no test", 0)
     noise_level: float = _key(_level, "level of the red-noise test: a mode of noise passes with probability "
                               "at most 1 - level", 0.95)
+    rotate: str = _key(_choice("none", "varimax"), "rotate the kept modes: varimax (of the EOFs scaled by the square "
+                       "root of their eigenvalues) or none", "none")
 
 
 @dataclass(frozen=True)

@@ -15,6 +15,10 @@ eigenvalue is ``a_k^2`` and its EOF map (our regression convention) is
 orthogonal to each other, to the calendar months and to a linear trend, so the
 demo config (climatology anomalies, linear detrend) leaves them intact.
 
+A later decade (2021-2030) of the same scenario goes with it: the same
+patterns, mean state, seasonal cycle and trend, with new PCs and new noise,
+for projecting onto the demo's modes (``configs/demo_later.yaml``).
+
 Run ``python -m climodes.demo FOLDER`` (or ``demo_fields/generate.py``) to
 write the files; the same seed always writes the same numbers.
 """
@@ -35,6 +39,7 @@ from climodes.coastline import coastlines
 SEED = 20261201
 YEARS = (1971, 2020)
 FILE_YEARS = [(1971, 1990), (1991, 2010), (2011, 2020)]
+LATER_YEARS = (2021, 2030)  # the later decade, with its own seed (SEED + 1)
 MODES = {  # name: (amplitude in weighted degC, lag-1 autocorrelation of the PC, month to month)
     "equatorial warm tongue": (6.0, 0.92),
     "northern wave train": (4.0, 0.7),
@@ -86,8 +91,8 @@ def _orthonormal_pcs(rng: np.random.Generator, time: pd.DatetimeIndex) -> np.nda
     return q * np.sign(np.diag(r)) * np.sqrt(n - 1)
 
 
-def scenario(seed: int = SEED) -> tuple[xr.Dataset, xr.Dataset]:
-    """The whole demo field and the planted truth.
+def scenario(seed: int = SEED, years: tuple[int, int] = YEARS) -> tuple[xr.Dataset, xr.Dataset]:
+    """The whole demo field and the planted truth, for the demo's fifty years or another period.
 
     Returns
     -------
@@ -98,7 +103,7 @@ def scenario(seed: int = SEED) -> tuple[xr.Dataset, xr.Dataset]:
     """
     rng = np.random.default_rng(seed)
     lat, lon = grid()
-    time = pd.date_range(f"{YEARS[0]}-01-01", f"{YEARS[1]}-12-01", freq="MS") + pd.Timedelta(days=14)
+    time = pd.date_range(f"{years[0]}-01-01", f"{years[1]}-12-01", freq="MS") + pd.Timedelta(days=14)
     n = len(time)
     ocean = ~land_mask(lat, lon)
     w2 = np.cos(np.deg2rad(lat))[:, None] * ocean
@@ -164,10 +169,12 @@ def scenario(seed: int = SEED) -> tuple[xr.Dataset, xr.Dataset]:
 
 
 def write_demo_fields(folder: str | Path, seed: int = SEED) -> list[Path]:
-    """Write the demo field, split into files, and ``planted_modes.nc`` into ``folder``."""
+    """Write the demo field, split into files, and ``planted_modes.nc`` into ``folder``; and the later
+    decade as ``later_sst_2021-2030.nc`` with its ``later_planted_modes.nc``."""
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
     field, truth = scenario(seed)
+    later, later_truth = scenario(seed + 1, LATER_YEARS)
     paths = []
     encoding = {"time": {"units": "days since 1970-01-01", "calendar": "standard", "_FillValue": None},
                 "lat": {"_FillValue": None}, "lon": {"_FillValue": None},
@@ -176,9 +183,12 @@ def write_demo_fields(folder: str | Path, seed: int = SEED) -> list[Path]:
         path = folder / f"sst_{first}-{last}.nc"
         field.sel(time=slice(str(first), str(last))).to_netcdf(path, encoding=encoding)
         paths.append(path)
-    truth_path = folder / "planted_modes.nc"
-    truth.to_netcdf(truth_path, encoding={k: v for k, v in encoding.items() if k != "sst"})
-    return paths + [truth_path]
+    paths.append(folder / f"later_sst_{LATER_YEARS[0]}-{LATER_YEARS[1]}.nc")
+    later.to_netcdf(paths[-1], encoding=encoding)
+    for name, planted in (("planted_modes.nc", truth), ("later_planted_modes.nc", later_truth)):
+        paths.append(folder / name)
+        planted.to_netcdf(paths[-1], encoding={k: v for k, v in encoding.items() if k != "sst"})
+    return paths
 
 
 if __name__ == "__main__":

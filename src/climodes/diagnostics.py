@@ -1,4 +1,4 @@
-"""What the modes can be trusted for: sampling errors, separability, the spectrum, correlation maps.
+"""What the modes can be trusted for: sampling errors, separability, the spectrum, correlation maps, residuals.
 
 North et al. (1982), "Sampling errors in the estimation of empirical
 orthogonal functions", Mon. Wea. Rev. 110, 699-706: an eigenvalue estimated
@@ -207,15 +207,78 @@ def mode_diagnostics(modes: xr.Dataset, sampling: SamplingErrors, spectrum: np.n
     )
 
 
-def reconstruct(modes: xr.Dataset, which: list[int] | None = None) -> xr.DataArray:
-    """The anomaly field rebuilt from modes: ``sum_k pc_k(t) eof_k(x)``.
+def unexplained_fractions(eigenvalues: np.ndarray, pcs: np.ndarray, step_squares: np.ndarray) -> np.ndarray:
+    """``(time, mode)``: the fraction of each step's weighted anomaly variance that modes 1..k leave unexplained.
+
+    With ``X = A W = U S V^T``, ``pc_k = sqrt(n - 1) U_k`` and ``lambda_k = s_k^2 / (n - 1)`` (the
+    conventions of :mod:`climodes.solvers`), step ``t`` is the row ``x_t = sum_k U_tk s_k V_k`` of orthogonal
+    parts, so modes 1..k hold ``sum_{j<=k} U_tj^2 s_j^2 = sum_{j<=k} lambda_j pc_j(t)^2`` of its sum of squares
+    ``||x_t||^2`` (SVD algebra), and leave
+
+        1 - sum_{j<=k} lambda_j pc_j(t)^2 / ||x_t||^2.
+
+    It never increases with ``k``, and is 0 once every mode of the field is kept.  NaN at a step whose
+    anomalies are all zero.
+
+    Parameters
+    ----------
+    eigenvalues
+        ``(mode,)`` eigenvalues.
+    pcs
+        ``(time, mode)`` standardised PCs.
+    step_squares
+        ``(time,)`` each step's weighted anomaly sum of squares ``||x_t||^2``.
+    """
+    explained = np.cumsum(eigenvalues * pcs**2, axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return 1 - explained / np.where(step_squares > 0, step_squares, np.nan)[:, None]
+
+
+def local_explained(correlation: np.ndarray) -> np.ndarray:
+    """The fraction of each point's variance that modes 1..k explain, from the ``(mode, ...)`` correlation maps.
+
+    The PCs are uncorrelated with unit variance, so the part of a point's prepared series along modes
+    1..k, ``sum_{j<=k} pc_j eof_j(x)``, has variance ``sum_{j<=k} eof_j(x)^2``; over the point's variance
+    that is ``sum_{j<=k} r_j(x)^2`` with ``r_j = eof_j / sd`` the correlation of PC ``j`` with the point.
+    """
+    return np.cumsum(np.square(correlation), axis=0)
+
+
+def residual_variables(modes: xr.Dataset, eigenvalues: np.ndarray, pcs: np.ndarray, step_squares: np.ndarray,
+                       correlation: np.ndarray, units: str | None) -> xr.Dataset:
+    """The residual after modes 1..k as CF variables: ``unexplained_fraction(mode, time)`` (each step),
+    ``explained_locally(mode, lat, lon)`` (each point) and ``step_variance(time)``, each step's share of the
+    total variance (its weighted anomaly sum of squares over ``n - 1``).
 
     Parameters
     ----------
     modes
-        A results dataset with ``pc`` and ``eof``.
-    which
-        Mode numbers to use (1-based); all by default.
+        The solver's modes (for the coordinates).
+    eigenvalues, pcs
+        The kept modes: ``(mode,)`` and ``(time, mode)``.
+    step_squares
+        ``(time,)`` each step's weighted anomaly sum of squares.
+    correlation
+        ``(mode, lat, lon)`` from :func:`correlation_maps`.
+    units
+        The prepared field's units.
     """
-    chosen = modes if which is None else modes.sel(mode=which)
-    return xr.dot(chosen["pc"], chosen["eof"], dim="mode")
+    time = modes["pc"].dims[1]
+    return xr.Dataset(
+        {
+            "unexplained_fraction": (("mode", time), unexplained_fractions(eigenvalues, pcs, step_squares).T, {
+                "long_name": "fraction of the step's weighted anomaly variance that modes 1 to mode leave unexplained",
+                "units": "1",
+                "comment": "1 - sum over modes j <= mode of eigenvalue_j * pc_j^2 / (step_variance * (n - 1)); "
+                           "NaN where the step's anomalies are all zero"}),
+            "explained_locally": (("mode", "lat", "lon"), local_explained(correlation), {
+                "long_name": "fraction of the point's variance explained by modes 1 to mode",
+                "units": "1", "comment": "sum over modes j <= mode of correlation_j^2; NaN where the point was not "
+                                         "used or its prepared series is constant"}),
+            "step_variance": (time, step_squares / (pcs.shape[0] - 1), {
+                "long_name": "weighted anomaly sum of squares of the step over n - 1: its share of the total variance",
+                **({"units": f"({units})^2"} if units else {}),
+                "comment": "sums over the steps to the total variance (eigenvalue:total_variance)"}),
+        },
+        coords={"mode": modes["mode"]},
+    )

@@ -146,6 +146,37 @@ def results_dataset(modes: xr.Dataset, opened: OpenedField, spec: RunSpec, extra
     return ds
 
 
+def projection_dataset(variables: xr.Dataset, opened: OpenedField, spec: RunSpec, extra: dict,
+                       bounds: dict[str, xr.Variable], results: Path, trained: xr.Dataset) -> xr.Dataset:
+    """Dress a projection's variables (:func:`climodes.reuse.projection_variables`) as CF results.
+
+    The time axis keeps the new field's name, lasting attributes and (for means) bounds; the global
+    attributes are the run's provenance for the new field (``extra`` as for :func:`provenance`) and name
+    the results file projected onto.
+    """
+    ds = variables.assign_coords(bounds)
+    ds["mode"].attrs = {"long_name": "mode number of the modes projected onto", "units": "1"}
+    ds["time"].attrs = {k: v for k, v in lasting_attrs(opened.data["time"].attrs).items() if k != "units"}
+    ds["time"].attrs.update(standard_name="time", axis="T")
+    if "time_bnds" in ds.coords:
+        ds = ds.reset_coords("time_bnds")
+        ds["time"].attrs["bounds"] = "time_bnds"
+        for name in ("pc", "congruence", "unexplained_fraction"):
+            ds[name].attrs["cell_methods"] = "time: mean"
+    if opened.names["time"] != "time":
+        ds = ds.rename({"time": opened.names["time"]})
+    made = provenance(spec, opened, extra)
+    ds.attrs = {
+        **made,
+        "title": f"{spec.input.variable} projected onto the modes of variability of {results}",
+        "history": f"{made['date_created']}: {extra['command']}",
+        "references": "Lorenzo-Seva and ten Berge 2006, Methodology 2, 57-64 (congruence coefficient)",
+        "climodes_results": str(results),
+        "climodes_results_config_sha256": trained.attrs.get("climodes_config_sha256", "unknown"),
+    }
+    return ds
+
+
 def provenance(spec: RunSpec, opened: OpenedField, extra: dict) -> dict:
     """Global attributes that say where the results came from and how to make them again."""
     config_text = spec.to_yaml()
@@ -176,21 +207,40 @@ def provenance(spec: RunSpec, opened: OpenedField, extra: dict) -> dict:
     }
 
 
-def write_netcdf(ds: xr.Dataset, path: Path, time_encoding: dict) -> None:
-    """Write ``ds`` as NetCDF-4 with CF-friendly encodings (no fill values on coordinates).
+def write_netcdf(ds: xr.Dataset, path: Path, time_encoding: dict, time_name: str | None = None) -> None:
+    """Write ``ds`` as NetCDF-4 with CF-friendly encodings (no fill values on coordinates); ``time_name``
+    (by default the time axis of ``pc``) gets ``time_encoding``.
 
-    SIGINT and SIGTERM wait until the file is closed: an interruption inside xarray's writer can
-    leave its file lock taken, and the close that follows would then wait for ever.
+    A dask-backed variable is written chunk by chunk, each map of it a NetCDF chunk of its own.  SIGINT
+    and SIGTERM wait until the file is closed: an interruption inside xarray's writer can leave its file
+    lock taken, and the close that follows would then wait for ever.
     """
     encoding = {name: {"_FillValue": None} for name in ds.coords}
     for name, var in ds.data_vars.items():
         encoding[name] = {"_FillValue": FILL if var.dtype.kind == "f" else None}
         if var.ndim >= 2:
             encoding[name].update(zlib=True, complevel=4)
-    time_name = next(d for d in ds["pc"].dims if d != "mode")
+        if var.chunks:
+            encoding[name]["chunksizes"] = (1, *var.shape[1:])
+    time_name = time_name or next(d for d in ds["pc"].dims if d != "mode")
     encoding[time_name].update(time_encoding)
-    with _signals_held(act=True):
+    with _signals_held(act=True), _small_chunk_cache():
         ds.to_netcdf(path, format="NETCDF4", encoding=encoding)
+
+
+@contextlib.contextmanager
+def _small_chunk_cache() -> Iterator[None]:
+    """A chunk cache of 4 MB for the files opened meanwhile instead of netCDF-C's 64 MB: a file written
+    chunk by chunk, each chunk once, gains nothing from a larger one, which would fill with chunks written
+    already (64 MB more for a big field)."""
+    import netCDF4
+
+    before = netCDF4.get_chunk_cache()
+    netCDF4.set_chunk_cache(4 * 2**20, before[1], before[2])
+    try:
+        yield
+    finally:
+        netCDF4.set_chunk_cache(*before)
 
 
 def _regular(values: np.ndarray) -> bool:
@@ -442,14 +492,20 @@ def _refuse_run_files(final: Path, spec: RunSpec) -> None:
                             "choose an output.dir apart from them")
 
 
-def check_output_dir(spec: RunSpec) -> str:
+PRODUCTS = {"modes.nc": "a run", "projection.nc": "a projection"}
+"""The file that tells what a results folder holds, and the command that writes it: a folder of one kind is
+never replaced by the other."""
+
+
+def check_output_dir(spec: RunSpec, product: str = "modes.nc") -> str:
     """Refuse, before any data are read, an ``output.dir`` the results may not be written to.
 
     A new folder is fine if the folder above it can be made and written in.  An existing one may be
     replaced only with ``output.overwrite``, and only if it is a results folder climodes made: it
-    carries the mark (:data:`MARK`) and holds nothing its manifest does not list.  Never the root,
-    the home or current folder or an ancestor of either, a folder holding the config or an input
-    file, or a symbolic link.
+    carries the mark (:data:`MARK`), holds nothing its manifest does not list, and holds the same kind
+    of results (``product``, see :data:`PRODUCTS`).  Never the root, the home or current folder or an
+    ancestor of either, a folder holding the config or an input file, a folder inside a results folder,
+    or a symbolic link.
 
     Returns
     -------
@@ -458,14 +514,28 @@ def check_output_dir(spec: RunSpec) -> str:
     """
     final = _checked_name(spec.output.dir)
     try:
-        return _check_place(final, spec)
+        return _check_place(final, spec, product)
     except OSError as err:  # a folder on the way that cannot be looked into
         raise UserError(f"output.dir: cannot look at {final} ({err.strerror or err}); choose a folder you can "
                         "read and write") from None
 
 
-def _check_place(final: Path, spec: RunSpec) -> str:
+def results_folder_above(path: Path) -> Path | None:
+    """The climodes results folder (one carrying :data:`MARK`) that ``path`` lies inside, if any."""
+    real = Path(os.path.realpath(path))
+    return next((folder for folder in real.parents if _read_json(folder / MARK)), None)
+
+
+def _refuse_inside_results(final: Path, what: str) -> None:
+    """Refuse to write ``what`` inside a results folder: its manifest would no longer list all it holds."""
+    if (holder := results_folder_above(final)) is not None:
+        raise UserError(f"{what}: {final} lies inside the climodes results folder {holder}, which must hold only "
+                        "what its own run wrote; choose a place outside it")
+
+
+def _check_place(final: Path, spec: RunSpec, product: str) -> str:
     """The checks of :func:`check_output_dir` once the name itself is known to be valid."""
+    _refuse_inside_results(final, "output.dir")
     if final.is_symlink():
         raise UserError(f"output.dir: {final} is a symbolic link; climodes writes only to a real folder; "
                         "choose another output.dir")
@@ -480,11 +550,12 @@ def _check_place(final: Path, spec: RunSpec) -> str:
         raise UserError(f"output.dir: {final} is a file, not a folder; choose another output.dir")
     _refuse_protected(final)
     _refuse_run_files(final, spec)
-    return _check_replaceable(final, spec.output.overwrite)
+    return _check_replaceable(final, spec.output.overwrite, product)
 
 
-def _check_replaceable(final: Path, overwrite: bool) -> str:
-    """Refuse an existing folder that is not a results folder climodes made, or ``overwrite`` is off."""
+def _check_replaceable(final: Path, overwrite: bool, product: str) -> str:
+    """Refuse an existing folder that is not a results folder climodes made for ``product``, or ``overwrite``
+    is off."""
     mark = read_mark(final)
     if mark is None:
         raise UserError(f"output.dir: {final} exists and is not a climodes results folder (it has no {MARK}); "
@@ -493,6 +564,9 @@ def _check_replaceable(final: Path, overwrite: bool) -> str:
         more = f" and {len(extra) - 1} more" if len(extra) > 1 else ""
         raise UserError(f"output.dir: {final} holds {extra[0]}{more}, which climodes did not write there; "
                         "move it out or choose another output.dir")
+    if other := next((name for name in PRODUCTS if name != product and name in mark["files"]), None):
+        raise UserError(f"output.dir: {final} holds the {other} of {PRODUCTS[other]}, which {PRODUCTS[product]} "
+                        "never replaces; choose another output.dir")
     if not overwrite:
         raise UserError(f"output.dir: {final} exists already; set output.overwrite: true (or --overwrite) to "
                         "replace it, or choose another folder")
@@ -725,17 +799,19 @@ def _put_in_place(stage: Path, final: Path, before: tuple | None) -> list[str]:
 
 
 @contextlib.contextmanager
-def results_folder(spec: RunSpec, say: Callable[[str], None] = lambda line: None) -> Iterator[Path]:
+def results_folder(spec: RunSpec, say: Callable[[str], None] = lambda line: None,
+                   product: str = "modes.nc") -> Iterator[Path]:
     """Claim ``spec.output.dir``, yield a staging folder to write the results into, then put them in place.
 
     The claim is an exclusive create of a claim file beside the folder, so of two runs started
     together one wins and the other is refused; leftovers of killed runs of this host are removed
     once the claim is held.  When the block ends well, the staging folder gets its mark
     (:data:`MARK`, listing every file in it) and is renamed to ``output.dir``, replacing only the
-    results folder checked at the start.  On any failure or interruption the staging folder, the
-    claim and the folders made above are removed.  Notes go to ``say``.
+    results folder checked at the start (one holding the same ``product``, see :data:`PRODUCTS`).  On any
+    failure or interruption the staging folder, the claim and the folders made above are removed.  Notes
+    go to ``say``.
     """
-    check_output_dir(spec)
+    check_output_dir(spec, product)
     final = Path(spec.output.dir)
     me = _run_identity(spec.source)
     made: list[Path] = []
@@ -747,7 +823,7 @@ def results_folder(spec: RunSpec, say: Callable[[str], None] = lambda line: None
             claim = _claim(final, me)
             for line in _remove_stale(final):
                 say(f"note: {line}")
-            check_output_dir(spec)  # again, now that no other run can change it
+            check_output_dir(spec, product)  # again, now that no other run can change it
             before = _identity(final)
             stage = final.parent / _hidden_name(final, "stage")
             os.mkdir(stage)  # with the user's umask
@@ -864,3 +940,72 @@ def write_file_atomically(path: Path, write: Callable[[Path], None], replace: bo
     finally:
         with contextlib.suppress(FileNotFoundError):
             os.unlink(temporary)
+
+
+# --- single files written outside a results folder (reconstructions, tables)
+
+
+def written_by_climodes(path: Path) -> bool:
+    """Whether the file ``path`` says climodes wrote it: a NetCDF file's ``source`` attribute, the first line
+    of a CSV table, the ``source`` of a Parquet file's metadata (see :func:`table_writer`)."""
+    try:
+        if path.suffix == ".csv":
+            with open(path, encoding="utf-8") as f:
+                return f.readline().startswith("# climodes")
+        if path.suffix == ".parquet":
+            import pyarrow.parquet
+
+            metadata = pyarrow.parquet.read_schema(path).metadata or {}
+            return metadata.get(b"source", b"").startswith(b"climodes")
+        import netCDF4
+
+        with netCDF4.Dataset(path) as nc:
+            return str(getattr(nc, "source", "")).startswith("climodes")
+    except Exception:  # unreadable, not of its kind: not a file climodes wrote
+        return False
+
+
+def check_output_file(path: Path, overwrite: bool, option: str = "-o") -> None:
+    """Refuse, before any work, a file name an output may not be written to.
+
+    The folder it goes in must exist and lie outside every results folder; an existing file is replaced
+    only with ``overwrite`` and only if climodes wrote it (:func:`written_by_climodes`); never a folder or
+    a symbolic link.
+    """
+    if path.is_symlink():
+        raise UserError(f"{option} {path}: is a symbolic link; climodes writes only to a real file: give another name")
+    if path.is_dir():
+        raise UserError(f"{option} {path}: is a folder; give a file name")
+    if not path.parent.is_dir():
+        raise UserError(f"{option} {path}: the folder {path.parent} does not exist; make it first or give another "
+                        "name")
+    _refuse_inside_results(path, option)
+    if not path.exists():
+        return
+    if not overwrite:
+        raise UserError(f"{option} {path}: exists already; give --overwrite to replace it (only a file climodes "
+                        "wrote is replaced)")
+    if not written_by_climodes(path):
+        raise UserError(f"{option} {path}: exists and was not written by climodes; climodes replaces only files it "
+                        "wrote: give another name")
+
+
+def table_writer(frame, comment: str, metadata: dict[str, str], suffix: str) -> Callable[[Path], None]:
+    """What writes a ``pandas.DataFrame`` to a file of ``suffix``: CSV with ``comment`` as its first line
+    (``# climodes ...``, which pandas skips with ``comment="#"``), or Parquet with ``metadata`` (``source``
+    among them) in its schema."""
+
+    def csv(path: Path) -> None:
+        with open(path, "w", encoding="utf-8", newline="") as f:
+            f.write(f"# {comment}\n")
+            frame.to_csv(f, index=False, lineterminator="\n")
+
+    def parquet(path: Path) -> None:
+        import pyarrow
+        import pyarrow.parquet
+
+        table = pyarrow.Table.from_pandas(frame, preserve_index=False)
+        given = {key.encode(): value.encode() for key, value in metadata.items()}
+        pyarrow.parquet.write_table(table.replace_schema_metadata({**(table.schema.metadata or {}), **given}), path)
+
+    return csv if suffix == ".csv" else parquet

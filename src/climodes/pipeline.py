@@ -10,13 +10,14 @@ refuses too.
 from __future__ import annotations
 
 import contextlib
-import os
 import time
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable, ContextManager, Iterator
 
+import dask
+import numpy as np
 import xarray as xr
 from dask.array import PerformanceWarning
 
@@ -27,6 +28,7 @@ from climodes.cluster import (
     Capacity,
     capacity,
     check_batch_commands,
+    run_memory,
     running,
     script_path,
     submit_command,
@@ -35,24 +37,68 @@ from climodes.cluster import (
     walltime,
     write_script,
 )
-from climodes.config import FigureOptions, RunSpec, figure_options
-from climodes.diagnostics import correlation_maps, mode_diagnostics, sampling_errors
+from climodes import __version__
+from climodes.config import ComputeSection, FigureOptions, RunSpec, figure_options
+from climodes.diagnostics import correlation_maps, mode_diagnostics, residual_variables, sampling_errors
 from climodes.errors import UserError
 from climodes.fields import OpenedField, open_field, rechunked, select
 from climodes.grid import GRID_LAT
 from climodes.output import (
     check_geotiff_grid,
     check_output_dir,
+    check_output_file,
+    projection_dataset,
     results_dataset,
     results_folder,
     results_update,
+    table_writer,
     write_file_atomically,
     write_geotiff,
     write_netcdf,
 )
-from climodes.prepare import TimeSteps, time_steps
-from climodes.report import REPORT_FILE, Picture, report_html, run_log, stored_config, variance_table
+from climodes.prepare import (
+    Fitted,
+    TimeKeys,
+    TimeSteps,
+    aggregate,
+    fitted_preparation,
+    keys_of,
+    time_bounds,
+    time_steps,
+)
+from climodes.report import (
+    REPORT_FILE,
+    Picture,
+    ignored_sections_note,
+    modes_text,
+    months_text,
+    projection_headline,
+    projection_plan_lines,
+    projection_table,
+    reconstruction_line,
+    report_html,
+    run_log,
+    stored_config,
+    table_comment,
+    table_line,
+    variance_table,
+)
 from climodes.results import open_results, results_path
+from climodes.reuse import (
+    check_points,
+    check_same_grid,
+    check_same_units,
+    chosen_modes,
+    coefficient_table,
+    history,
+    plan_projection,
+    projected,
+    projection_variables,
+    reconstruction,
+    reconstruction_dataset,
+    time_name,
+)
+from climodes.rotation import rotated_variables
 from climodes.significance import NoiseTest, fit_red_noise, noise_variables, red_noise_test
 from climodes.solvers import Decomposition, SolverPlan, plan_solver, solve
 from climodes.weights import field_weights
@@ -198,16 +244,22 @@ def _red_noise(spec: RunSpec, result: Decomposition, weights: xr.DataArray, step
 
 
 def _diagnosed(spec: RunSpec, modes: xr.Dataset, result: Decomposition, tested: NoiseTest | None, steps: int,
-               units: str | None):
+               units: str | None, notes: list[str]):
     """The modes with what defends and explains them: each mode's sampling error and effective sample size,
-    North's rule, the whole spectrum, the correlation maps and, when it ran, the red-noise test."""
+    North's rule, the whole spectrum, the correlation maps, the residual after modes 1..k and, when they
+    ran, the red-noise test and the rotation (whose notes join ``notes``)."""
     sampling = sampling_errors(result.eigenvalues, result.pcs, result.next_eigenvalue, result.next_pc,
                                spec.modes.effective_sample_size)
-    correlation = correlation_maps(result.patterns, result.point_moments[:, 0], steps)
+    correlation = correlation_maps(result.patterns, result.point_moments[:, 0], steps).T.reshape(modes["eof"].shape)
     parts = [modes, mode_diagnostics(modes, sampling, result.spectrum, result.total_variance,
-                                     result.unresolved_fraction, correlation.T.reshape(modes["eof"].shape), units)]
+                                     result.unresolved_fraction, correlation, units),
+             residual_variables(modes, result.eigenvalues, result.pcs, result.step_squares, correlation, units)]
     if tested is not None:
         parts.append(noise_variables(tested, modes["mode"], units))
+    if spec.modes.rotate == "varimax":
+        rotated, rotation_notes = rotated_variables(modes, result.total_variance, units)
+        parts.append(rotated)
+        notes += rotation_notes
     return xr.merge(parts), sampling
 
 
@@ -234,12 +286,12 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
             planned = _plan(spec)
             modes, result, counts, session, tested = _solve(spec, planned, progress)
         notes = planned.notes + counts.notes + result.notes + warned
-        for line in notes:
-            say(f"note: {line}")
         kept = modes.sizes["mode"]
         steps = planned.field.sizes["time"]
         units = "1" if spec.prepare.standardize else planned.opened.data.attrs.get("units")
-        modes, sampling = _diagnosed(spec, modes, result, tested, steps, units)
+        modes, sampling = _diagnosed(spec, modes, result, tested, steps, units, notes)
+        for line in notes:
+            say(f"note: {line}")
         extra = dict(errors=sampling.errors, separated=sampling.separated,
                      method=f"{result.method} (chosen because: {planned.plan.reason})",
                      notes=notes, units=units, total_variance=result.total_variance, compute=session.description,
@@ -382,3 +434,184 @@ def redraw(results: str | Path, **overrides) -> tuple[FigureOptions, list[Path]]
     except OSError as err:
         raise UserError(f"{target.parent}: cannot write the figures ({err.strerror or err}); nothing was "
                         "replaced; free some space or check the folder's permissions") from None
+
+
+# --- reusing the modes of a finished run: project, reconstruct, table
+
+PROJECTION_FILE = "projection.nc"
+
+
+@dataclass
+class ProjectionPlan:
+    """What a projection reads and how, found from the files' coordinates and the results alone."""
+
+    source: Path
+    results: xr.Dataset
+    fitted: Fitted
+    opened: OpenedField
+    field: xr.DataArray
+    keys: TimeKeys
+    rows: int
+    blocks: str
+    room: Capacity
+    max_missing: float
+    notes: list[str]
+
+
+def _training(results: xr.Dataset) -> tuple[str, list[int] | None, float]:
+    """How the run of ``results`` took its means (``prepare.aggregate``), of which months, and its
+    ``prepare.max_missing``."""
+    config = stored_config(results)
+    prepare = config.get("prepare") or {}
+    return prepare.get("aggregate", "none"), (config.get("select") or {}).get("months"), prepare.get("max_missing", 0.1)
+
+
+def _new_field(spec: RunSpec, opened: OpenedField, results: xr.Dataset, notes: list[str]) -> xr.DataArray:
+    """The field to project: selected as ``spec`` says, averaged as the training run averaged (lazily)."""
+    how, months, _ = _training(results)
+    return aggregate(select(opened, spec.select), how, months, notes)
+
+
+def _plan_projection(results: str | Path, spec: RunSpec) -> ProjectionPlan:
+    """Open the results and the new field, check that one applies to the other, and plan the blocks:
+    every check a projection makes before it reads the field's values."""
+    source = results_path(results)
+    trained = open_results(source)
+    try:
+        fitted = fitted_preparation(trained)
+        how, months, max_missing = _training(trained)
+        if how != "none" and spec.select.months != months:
+            raise UserError(f"select.months: the modes in {source} were computed from {how} means of "
+                            f"{months_text(months)} ({months}); select the same months")
+        opened = open_field(spec.input, spec.select)
+        notes = list(opened.notes)
+        field = _new_field(spec, opened, trained, notes)
+        check_same_grid(field, trained, source)
+        check_same_units(field, trained, spec.input.variable, source)
+        keys = keys_of(field["time"], fitted)
+        room = capacity(spec.compute)
+        rows, blocks = plan_projection(field.shape, trained, fitted, room.memory, room.in_use, room.workers)
+    except BaseException:
+        trained.close()
+        raise
+    return ProjectionPlan(source, trained, fitted, opened, field, keys, rows, blocks, room, max_missing, notes)
+
+
+def _steps_text(fitted: Fitted) -> str:
+    return ", ".join(fitted.preparation.steps + ("offset",))
+
+
+def check_projection(results: str | Path, spec: RunSpec) -> list[str]:
+    """``climodes project --check``: every check :func:`project` makes before reading the field's values
+    (the results, the files, grid, units, calendar and months, the memory plan, the output folder);
+    returns a few lines on what it would read, do and write."""
+    warned: list[str] = []
+    with library_warnings(warned):
+        where = check_output_dir(spec, PROJECTION_FILE)
+        check_batch_commands(spec.compute)
+        plan = _plan_projection(results, spec)
+    plan.results.close()
+    field = plan.field
+    grid = f"{field.sizes['lat']} x {field.sizes['lon']}" + (" (curvilinear)" if GRID_LAT in field.coords else "")
+    lines = projection_plan_lines(spec.input.variable, plan.opened.files, field["time"].values, grid,
+                                  plan.results.sizes["mode"], plan.source, _steps_text(plan.fitted), plan.blocks, where)
+    return lines + [f"note: {line}" for line in [ignored_sections_note(spec.source, plan.source), *plan.notes,
+                                                   *warned]]
+
+
+def project(results: str | Path, spec: RunSpec, say: Callable[[str], None] = lambda line: None,
+            progress: bool = False) -> RunSummary:
+    """``climodes project``: the field of ``spec`` (its input and select) projected onto the modes of
+    ``results``, prepared with the preparation fitted there; writes ``<output.dir>/projection.nc``.
+
+    The output folder is claimed, staged and put in place as a run's results folder is (never a
+    training run's folder); the field is read once, in blocks of latitude rows within
+    ``compute.memory``, on the scheduler of ``compute``.
+    """
+    started = time.monotonic()
+    out = Path(spec.output.dir)
+    with results_folder(spec, say, PROJECTION_FILE) as stage:
+        warned: list[str] = []
+        with library_warnings(warned):
+            plan = _plan_projection(results, spec)
+        with contextlib.closing(plan.results) as trained:
+            with library_warnings(warned):
+                opened = rechunked(plan.opened, {"time": -1, "lat": plan.rows, "lon": -1})
+                field = _new_field(spec, opened, trained, [])
+                limit = walltime(spec.compute, "gram", field.shape, trained.sizes["mode"], field.dtype.itemsize,
+                                 plan.room.workers)
+                with running(spec.compute, progress, limit, spec.source.parent) as session:
+                    products, squares, fraction = projected(field, trained, plan.fitted, plan.keys, session.during)
+            check_points(fraction, trained, field, plan.max_missing, plan.source)
+            used = trained["point_status"].values.reshape(-1) == 2
+            filled = int(round(float(np.sum(fraction[used])) * field.sizes["time"]))
+            notes = [ignored_sections_note(spec.source, plan.source), *plan.notes, *warned]
+            if filled:
+                notes.append(f"set {filled} missing values at {int(np.sum(fraction[used] > 0))} points to zero anomaly")
+            extra = dict(method=f"projection onto the EOFs of {plan.source} ({plan.blocks})", notes=notes,
+                         compute=session.description, elapsed=time.monotonic() - started,
+                         points=f"{int(used.sum())} grid points of the modes; {filled} missing values set to zero "
+                                "anomaly",
+                         command=history("project", results, spec.source))
+            ds = projection_dataset(projection_variables(trained, products, squares, field["time"]), opened, spec,
+                                    extra, time_bounds(field), plan.source.resolve(), trained)
+        for line in notes:
+            say(f"note: {line}")
+        headline = projection_headline(spec.input.variable, len(opened.files), field.sizes["time"], ds.sizes["mode"],
+                                       plan.source, out)
+        table = projection_table(ds)
+        try:
+            write_netcdf(ds, stage / PROJECTION_FILE, opened.time_encoding)
+            (stage / "projection.log").write_text(
+                run_log(headline, table, [f"compute: {session.description}"], notes, spec.to_yaml()), encoding="utf-8")
+        except OSError as err:
+            raise _cannot_write(spec, err) from None
+    return RunSummary(out, headline, table, notes)
+
+
+def _time_encoding(results: xr.Dataset) -> dict:
+    return {k: v for k, v in results[time_name(results)].encoding.items() if k in ("units", "calendar", "dtype")}
+
+
+def reconstruct(results: str | Path, modes: str, out: str | Path, anomalies: bool = False,
+                overwrite: bool = False) -> str:
+    """``climodes reconstruct``: the field rebuilt from the chosen modes of ``results`` (full values, or
+    ``anomalies``), written as CF NetCDF to ``out`` block by block, atomically; an existing ``out`` is
+    replaced only with ``overwrite`` and only if climodes wrote it.  Returns the line to print."""
+    source, out = results_path(results), Path(out)
+    check_output_file(out, overwrite)
+    if out.suffix != ".nc":
+        raise UserError(f"-o {out}: give a NetCDF file name ending in .nc")
+    with open_results(source) as trained:
+        which = chosen_modes(modes, trained["mode"].values)
+        memory = (stored_config(trained).get("compute") or {}).get("memory", ComputeSection.memory)
+        data = reconstruction(trained, which, anomalies, run_memory(ComputeSection(memory=memory)))
+        command = history("reconstruct", results, "--modes", modes, "-o", out, *(["--anomalies"] * anomalies))
+        ds = reconstruction_dataset(trained, data, which, anomalies, source.resolve(), command)
+        try:
+            with dask.config.set(scheduler="synchronous"):  # one block at a time
+                write_file_atomically(out, lambda path: write_netcdf(ds, path, _time_encoding(trained),
+                                                                     time_name(trained)), replace=overwrite)
+        except OSError as err:
+            raise UserError(f"-o {out}: cannot write it ({err.strerror or err}); nothing was written") from None
+        return reconstruction_line(ds, modes_text(which), anomalies, out)
+
+
+def table(results: str | Path, out: str | Path, overwrite: bool = False) -> str:
+    """``climodes table``: the PCs, the residual fractions and each step's variance of ``results``, one row
+    per time step, as CSV or Parquet (by the extension of ``out``), written atomically; an existing
+    ``out`` is replaced only with ``overwrite`` and only if climodes wrote it.  Returns the line to print."""
+    source, out = results_path(results), Path(out)
+    check_output_file(out, overwrite)
+    if out.suffix not in (".csv", ".parquet"):
+        raise UserError(f"-o {out}: give a file name ending in .csv or .parquet")
+    with open_results(source) as trained:
+        frame = coefficient_table(trained)
+        write = table_writer(frame, table_comment(source, trained),
+                             {"source": f"climodes {__version__}", "climodes_results": str(source.resolve()),
+                              "title": table_comment(source, trained)}, out.suffix)
+    try:
+        write_file_atomically(out, write, replace=overwrite)
+    except OSError as err:
+        raise UserError(f"-o {out}: cannot write it ({err.strerror or err}); nothing was written") from None
+    return table_line(frame, out)

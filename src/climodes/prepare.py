@@ -274,6 +274,10 @@ class TimeKeys:
     in_base: np.ndarray
     count: int
 
+    def part(self, steps: slice) -> "TimeKeys":
+        """The keys of some of the steps, for a block of them."""
+        return replace(self, index=self.index[steps], days=self.days[steps], in_base=self.in_base[steps])
+
 
 def _quiet_nanmean(values: np.ndarray, axis: int = 0, keepdims: bool = True, dtype=None) -> np.ndarray:
     with warnings.catch_warnings():  # points missing at every step have no mean: NaN, as they should
@@ -791,3 +795,10 @@ def fitted_preparation(results: xr.Dataset) -> Fitted:
     if "scale" in steps:
         quantities["scale"] = read("fitted_scale")
     return Fitted(Preparation(steps, rule, keys, origin, offset.attrs.get("calendar", "")), quantities)
+
+
+def fitted_units(results: xr.Dataset) -> str | None:
+    """The units of the field the preparation was fitted on (the input's), as the fitted variables keep them:
+    ``fitted_scale`` has them when the field was standardised, ``fitted_offset`` otherwise."""
+    holder = "fitted_scale" if "fitted_scale" in results else "fitted_offset"
+    return results[holder].attrs.get("units") if holder in results else None

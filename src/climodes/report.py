@@ -26,6 +26,7 @@ import numpy as np
 import xarray as xr
 import yaml
 
+from climodes import __version__
 from climodes.grid import map_coordinates
 from climodes.results import open_results
 
@@ -95,8 +96,8 @@ def variance_table(ds: xr.Dataset) -> list[str]:
 
     One row per mode: variance explained with its North et al. (1982) error, the mode's own effective
     sample size, North's rule, and, when the red-noise test ran, the noise eigenvalue (as a share of the
-    total variance) and the verdict; then a line saying what the columns mean.  Columns a file does not
-    hold are left out.
+    total variance) and the verdict; then a line saying what the columns mean, and the variance of the
+    rotated modes when the file has them.  Columns a file does not hold are left out.
     """
     rows = mode_rows(ds)
     sized, tested = rows[0].sample_size is not None, rows[0].significant is not None
@@ -119,6 +120,10 @@ def variance_table(ds: xr.Dataset) -> list[str]:
         lines.append(f"red noise {100 * level:g}%: that level of the eigenvalues at the same rank of "
                      f"{int(ds['noise_eigenvalue'].attrs.get('surrogates', 0))} red-noise fields")
         lines.append("significant: above it, counted from mode 1 up to the first mode that is not")
+    if "rotated_variance_explained" in ds:
+        shares = ", ".join(percent(float(v)) for v in ds["rotated_variance_explained"].values)
+        lines.append(f"varimax-rotated modes: {shares} of the variance (together as much as the {len(rows)} "
+                     "modes above)")
     return lines
 
 
@@ -134,9 +139,14 @@ def stored_config(ds: xr.Dataset) -> dict:
     return config if isinstance(config, dict) else {}
 
 
+def long_name_of(ds: xr.Dataset) -> str:
+    """The input field's long name, as the EOF maps' long name keeps it (empty if it does not)."""
+    return ds["eof"].attrs.get("long_name", "").removeprefix("EOF map of ").split(":")[0].strip()
+
+
 def field_text(ds: xr.Dataset) -> str:
     """The analysed field: its long name and variable name, e.g. ``"sea surface temperature (sst)"``."""
-    long_name = ds["eof"].attrs.get("long_name", "").removeprefix("EOF map of ").split(":")[0].strip()
+    long_name = long_name_of(ds)
     variable = (stored_config(ds).get("input") or {}).get("variable")
     if long_name and variable and long_name != variable:
         return f"{long_name} ({variable})"
@@ -327,6 +337,82 @@ def summary(path: str | Path) -> str:
     lines.append(f"  config      sha256 {attrs.get('climodes_config_sha256', '?')[:16]}...")
     lines.append(f"  rerun       {attrs.get('history', '?').split(': ', 1)[-1]}")
     return "\n".join(lines)
+
+
+# --- what project, reconstruct and table say
+
+
+def modes_text(which: list[int]) -> str:
+    """Mode numbers as a person writes them: ``[1, 2, 3, 5] -> "1-3, 5"``."""
+    runs: list[list[int]] = []
+    for number in which:
+        if runs and number == runs[-1][-1] + 1:
+            runs[-1].append(number)
+        else:
+            runs.append([number])
+    return ", ".join(f"{r[0]}-{r[-1]}" if len(r) > 2 else ", ".join(map(str, r)) for r in runs)
+
+
+def ignored_sections_note(config: Path, results: Path) -> str:
+    """Why a projection config's ``prepare`` and ``modes`` sections change nothing."""
+    return (f"the prepare and modes sections of {config} are not used: the modes and the preparation fitted in "
+            f"{results} apply to the field")
+
+
+def projection_plan_lines(variable: str, files: list, times: np.ndarray, grid: str, count: int, results: Path,
+                          steps: str, blocks: str, where: str) -> list[str]:
+    """What ``climodes project --check`` says a projection would read, do and write."""
+    return [
+        f"reads    {variable} from {len(files)} file(s), first {files[0].path}",
+        f"steps    {times.size}, {str(times[0])[:10]} to {str(times[-1])[:10]}",
+        f"grid     {grid} points, the grid of the modes",
+        f"projects onto the {count} modes of {results}, prepared as there ({steps})",
+        f"blocks   {blocks}",
+        f"writes   {where}",
+    ]
+
+
+def projection_table(projection: xr.Dataset) -> list[str]:
+    """The projection's summary, one row per mode: the pseudo-PC's mean and standard deviation (a training
+    PC has 0 and 1), the median size of the steps' congruence with the mode's pattern, and the median
+    fraction of a step's variance that modes 1..k leave unexplained."""
+    lines = ["mode  pseudo-PC mean    std  |congruence|  unexplained by modes 1..k",
+             " " * 33 + "(median)  (median)"]
+    for k, mode in enumerate(projection["mode"].values):
+        pc = projection["pc"].values[k]
+        lines.append(f"{int(mode):>4}  {np.nanmean(pc):>14.2f}  {np.nanstd(pc, ddof=1):>5.2f}  "
+                     f"{np.nanmedian(np.abs(projection['congruence'].values[k])):>12.2f}  "
+                     f"{np.nanmedian(projection['unexplained_fraction'].values[k]):>8.2f}")
+    return lines
+
+
+def projection_headline(variable: str, files: int, steps: int, count: int, results: Path, out: Path) -> str:
+    return (f"climodes: projected {variable} from {files} file(s), {steps} time steps, onto the {count} modes of "
+            f"{results} -> {out}")
+
+
+def reconstruction_line(ds: xr.Dataset, modes: str, anomalies: bool, out: Path) -> str:
+    """What ``climodes reconstruct`` says it wrote."""
+    name = next(iter(ds.data_vars))
+    var = ds[name]
+    what = "anomalies" if anomalies else "values"
+    units = var.attrs.get("units")
+    return (f"climodes: wrote {name} rebuilt from modes {modes} ({what}{f', {units}' if units else ''}), "
+            f"{var.shape[0]} time steps x {var.shape[1]} x {var.shape[2]} points, to {out}")
+
+
+def table_comment(results: Path, ds: xr.Dataset) -> str:
+    """The first line of a CSV coefficient table: who wrote it, from what, and what its columns hold."""
+    units = units_text(ds["step_variance"].attrs.get("units")) if "step_variance" in ds else ""
+    return (f"climodes {__version__}: the PCs of {field_text(ds)} from "
+            f"{results}; pc_k: standardised PC of mode k; unexplained_fraction_k: fraction of the step's weighted "
+            f"variance modes 1..k leave unexplained; step_variance: the step's share of the total variance"
+            f"{f' ({units})' if units else ''}")
+
+
+def table_line(frame, out: Path) -> str:
+    """What ``climodes table`` says it wrote."""
+    return f"climodes: wrote {len(frame)} rows (one per time step) x {len(frame.columns)} columns to {out}"
 
 
 # --- report.html

@@ -58,6 +58,7 @@ from climodes.blocks import (
     range_part,
     regression_part,
     row_slices,
+    step_squares,
     time_operator,
     time_operator_transposed,
     tree_sum,
@@ -88,7 +89,9 @@ class Decomposition:
     solvers), and ``unresolved_fraction`` the share of the total variance beyond them; ``next_pc`` is
     the PC of the mode after the last kept one (``None`` when there is none); ``point_moments`` is
     ``(point, 2)``: each prepared series' sum of squares and sum of lag-1 products (see
-    :func:`climodes.blocks.series_moments`), zero at unused points (whose prepared series are zero).
+    :func:`climodes.blocks.series_moments`), zero at unused points (whose prepared series are zero);
+    ``step_squares`` is ``(time,)``: each step's weighted anomaly sum of squares ``||x_t||^2`` (the row sums
+    of ``X * X``, whose total is ``total_variance`` times ``n - 1``).
     """
 
     eigenvalues: np.ndarray
@@ -102,6 +105,7 @@ class Decomposition:
     unresolved_fraction: float = 0.0
     next_pc: np.ndarray | None = None
     point_moments: np.ndarray | None = None
+    step_squares: np.ndarray | None = None
 
 
 @dataclass
@@ -171,20 +175,39 @@ def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: in
                             "compute.memory")
         return SolverPlan("exact", why, memory=int(in_use + exact_bytes))
     fixed = gram_bytes if method == "gram" else randomized_bytes
-    room = 0.7 * budget - fixed
-    per_row = workers * BYTES_PER_BLOCK_VALUE[method] * steps * nlon
-    if room < per_row:
-        need = in_use + (fixed + per_row) / 0.7
-        raise UserError(f"compute.memory: {_size(budget_given)} is too small for the {method} solver on "
-                        f"{shape_text}; give at least {_size(need)}")
-    rows = int(min(room // per_row, BLOCK_MAX_BYTES // (4 * steps * nlon), nlat // (BLOCKS_PER_WORKER * workers)))
-    rows = max(rows, 1)
+    rows, need = block_size(nlat, steps * nlon, fixed, BYTES_PER_BLOCK_VALUE[method], budget_given, in_use,
+                            workers, f"the {method} solver on {shape_text}")
     blocks = -(-nlat // rows)
     why += f"; {blocks} block(s) of {rows} latitude rows within compute.memory {_size(budget_given)}"
-    need = (fixed + per_row * rows) / 0.7
     if method == "gram":  # and enough that auto, planning again with only this much, still takes gram
         need = max(need, 2 * gram_bytes)
     return SolverPlan(method, why, rows, int(np.ceil(in_use + need)))
+
+
+def block_size(units: int, unit_values: int, fixed: float, bytes_per_value: float, budget: int, in_use: int,
+               workers: int, what: str) -> tuple[int, float]:
+    """How many of ``units`` (latitude rows, time steps) of ``unit_values`` values each one block may hold.
+
+    ``workers`` blocks are in flight at once, each costing ``bytes_per_value`` a value (the values read and
+    their working copies), beside ``fixed`` bytes held for the whole work and the ``in_use`` the process
+    holds already, all within 70 % of ``budget`` (the rest for what the libraries allocate beside).  A
+    block reads at most :data:`BLOCK_MAX_BYTES` of float32, and each worker gets :data:`BLOCKS_PER_WORKER`
+    blocks where there are that many units.  Returns the units a block holds and the bytes the work needs
+    beside ``in_use``.
+
+    Raises
+    ------
+    UserError
+        If not even one unit a worker fits the budget (``what`` says what was planned).
+    """
+    room = 0.7 * (budget - in_use) - fixed
+    per_unit = workers * bytes_per_value * unit_values
+    if room < per_unit:
+        need = in_use + (fixed + per_unit) / 0.7
+        raise UserError(f"compute.memory: {_size(budget)} is too small for {what}; give at least {_size(need)}")
+    most = min(BLOCK_MAX_BYTES // (4 * unit_values), units // (BLOCKS_PER_WORKER * workers))
+    size = max(1, int(min(room // per_unit, most)))
+    return size, (fixed + per_unit * size) / 0.7
 
 
 # --- the solvers
@@ -207,11 +230,13 @@ def exact_modes(anomaly: np.ndarray, weights: np.ndarray, count: int) -> Decompo
     u, s, _ = np.linalg.svd(weighted, full_matrices=False)  # LAPACK gesdd
     spectrum = s[:min(n, s.size)] ** 2 / n  # a centred matrix has rank n at most
     pcs = u[:, :count] * np.sqrt(n)
+    squares = step_squares(anomaly, weights)
     return Decomposition(
         eigenvalues=spectrum[:count],
         pcs=pcs,
         patterns=anomaly.T @ pcs / n,
-        total_variance=float(np.sum(weighted**2) / n),
+        total_variance=float(squares.sum() / n),
+        step_squares=squares,
         next_eigenvalue=float(spectrum[count]) if spectrum.size > count else 0.0,
         method="exact: LAPACK gesdd SVD of the in-memory weighted (time x point) matrix",
         spectrum=spectrum,
@@ -292,6 +317,7 @@ def _gram(field, weights, count, max_missing, progress, steps):
         spectrum=_gram_spectrum(gram, values, min(n, int(np.sum(usable_points(fraction, max_missing))))) / n,
         next_pc=vectors[:, count] * np.sqrt(n) if vectors.shape[1] > count else None,
         point_moments=moments,
+        step_squares=np.diag(gram).copy(),  # (X X^T)_tt = ||x_t||^2
     )
     return result, fraction, fitted
 
@@ -315,7 +341,8 @@ def _randomized(field, weights, count, max_missing, progress, seed, steps):
     parts = [dask.delayed(quietly(range_part))(b, weights[r], max_missing, omega[r], steps)
              for b, r in zip(blocks, rows)]
     with progress(f"pass 1 of at most {most}: random projection"):
-        sample, total, pieces = dask.compute(tree_sum(parts))[0]
+        sample, squares, pieces = dask.compute(tree_sum(parts))[0]
+    total = float(squares.sum())
     fraction, fitted, moments = joined(pieces)
     _refuse_infinities(not (np.isfinite(sample).all() and np.isfinite(total)))
     _check_points(fraction, max_missing, count)
@@ -352,6 +379,7 @@ def _randomized(field, weights, count, max_missing, progress, seed, steps):
         unresolved_fraction=max(0.0, 1 - float(np.sum(ritz[:resolved])) / total),
         next_pc=basis @ vectors[:, count] * np.sqrt(n) if ritz.size > count else None,
         point_moments=moments,
+        step_squares=squares,
         method=(f"randomized: range finder with {OVERSAMPLING} extra vectors (Halko et al. 2011), seed {seed}, "
                 f"streamed over grid blocks; {how}"),
     )
