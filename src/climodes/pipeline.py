@@ -41,7 +41,7 @@ from climodes import __version__
 from climodes.config import ComputeSection, FigureOptions, RunSpec, figure_options
 from climodes.diagnostics import correlation_maps, mode_diagnostics, residual_variables, sampling_errors
 from climodes.errors import UserError
-from climodes.fields import OpenedField, open_field, rechunked, select
+from climodes.fields import OpenedField, field_from_array, open_field, rechunked, select
 from climodes.grid import GRID_LAT
 from climodes.output import (
     check_geotiff_grid,
@@ -117,6 +117,7 @@ class RunSummary:
     headline: str
     table: list[str]
     notes: list[str] = field(default_factory=list)
+    results: xr.Dataset | None = None  # what modes.nc (or projection.nc) holds
 
     def text(self) -> str:
         return "\n".join([self.headline, *self.table])
@@ -167,9 +168,15 @@ def _prepared(spec: RunSpec, opened: OpenedField) -> tuple[xr.DataArray, TimeSte
     return field, steps, notes
 
 
-def _plan(spec: RunSpec) -> Planned:
-    """Open, select and prepare the field lazily and plan the solver: every check before the first pass."""
-    opened = open_field(spec.input, spec.select)
+def opened_field(spec: RunSpec, data: xr.DataArray | None = None) -> OpenedField:
+    """The field of ``spec``'s input files opened lazily, or ``data`` (an in-memory field) in the same form."""
+    return open_field(spec.input, spec.select) if data is None else field_from_array(data, spec.input, spec.select)
+
+
+def _plan(spec: RunSpec, data: xr.DataArray | None = None) -> Planned:
+    """Open (or take ``data``), select and prepare the field lazily and plan the solver: every check before
+    the first pass."""
+    opened = opened_field(spec, data)
     field, along_time, notes = _prepared(spec, opened)
     room = capacity(spec.compute)
     plan = plan_solver(field.shape, spec.modes.count, spec.modes.method, room.memory, room.workers,
@@ -263,7 +270,8 @@ def _diagnosed(spec: RunSpec, modes: xr.Dataset, result: Decomposition, tested: 
     return xr.merge(parts), sampling
 
 
-def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress: bool = False) -> RunSummary:
+def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress: bool = False,
+        data: xr.DataArray | None = None, write: bool = True) -> RunSummary:
     """Run ``spec`` end to end and write its results folder.
 
     The folder is claimed before any data are read (:func:`climodes.output.results_folder`) and
@@ -277,13 +285,17 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
         Called with each note worth telling the user as the run goes.
     progress
         Draw a progress bar on stderr for each pass over the data.
+    data
+        The field to analyse in place of ``spec``'s input files (see :func:`climodes.fields.field_from_array`).
+    write
+        Write the results folder; without, nothing is written and the summary's ``results`` is all there is.
     """
     started = time.monotonic()
     out = Path(spec.output.dir)
-    with results_folder(spec, say) as stage:
+    with results_folder(spec, say) if write else contextlib.nullcontext() as stage:
         warned: list[str] = []
         with library_warnings(warned):
-            planned = _plan(spec)
+            planned = _plan(spec, data)
             modes, result, counts, session, tested = _solve(spec, planned, progress)
         notes = planned.notes + counts.notes + result.notes + warned
         kept = modes.sizes["mode"]
@@ -308,13 +320,14 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
         where = [f"solver: {planned.plan.method} ({planned.plan.reason})", f"compute: {session.description}",
                  *(f"moved: {line}" for line in session.moved)]
         late: list[str] = []
-        with library_warnings(late):
-            late += _write(stage, results, spec, planned.opened)
-        for line in late:
-            say(f"note: {line}")
-        log = run_log(headline, table, where, notes + late, spec.to_yaml())
-        _write_log(stage, log, spec)
-    return RunSummary(out, headline, table, notes + late)
+        if stage is not None:
+            with library_warnings(late):
+                late += _write(stage, results, spec, planned.opened)
+            for line in late:
+                say(f"note: {line}")
+            log = run_log(headline, table, where, notes + late, spec.to_yaml())
+            _write_log(stage, log, spec)
+    return RunSummary(out, headline, table, notes + late, results)
 
 
 def _write(stage: Path, results: xr.Dataset, spec: RunSpec, opened: OpenedField) -> list[str]:
