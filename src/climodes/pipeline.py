@@ -83,7 +83,7 @@ from climodes.report import (
     table_line,
     variance_table,
 )
-from climodes.results import open_results, results_path
+from climodes.results import check_results, open_results, results_path
 from climodes.reuse import (
     check_points,
     check_same_grid,
@@ -460,6 +460,7 @@ class ProjectionPlan:
 
     source: Path
     results: xr.Dataset
+    opened_here: bool  # the results were opened for the projection (and are closed after it)
     fitted: Fitted
     opened: OpenedField
     field: xr.DataArray
@@ -485,18 +486,38 @@ def _new_field(spec: RunSpec, opened: OpenedField, results: xr.Dataset, notes: l
     return aggregate(select(opened, spec.select), how, months, notes)
 
 
-def _plan_projection(results: str | Path, spec: RunSpec) -> ProjectionPlan:
-    """Open the results and the new field, check that one applies to the other, and plan the blocks:
-    every check a projection makes before it reads the field's values."""
-    source = results_path(results)
-    trained = open_results(source)
+IN_MEMORY_RESULTS = Path("(results in memory)")  # how results that are no file are named in messages
+
+
+def given_results(results: str | Path | xr.Dataset) -> tuple[Path, xr.Dataset, bool]:
+    """The results file of a folder or path opened and checked, or results given as a Dataset checked:
+    their source (the file, or :data:`IN_MEMORY_RESULTS`), the Dataset, and whether it was opened here
+    (and is the caller's to close)."""
+    if not isinstance(results, xr.Dataset):
+        source = results_path(results)
+        return source, open_results(source), True
+    source = Path(results.encoding["source"]) if results.encoding.get("source") else IN_MEMORY_RESULTS
+    check_results(results, source)
+    return source, results, False
+
+
+def _named(source: Path) -> str:
+    """The absolute path of a results file, for the provenance of what is made from it."""
+    return str(source if source == IN_MEMORY_RESULTS else source.resolve())
+
+
+def _plan_projection(results: str | Path | xr.Dataset, spec: RunSpec, data: xr.DataArray | None = None
+                     ) -> ProjectionPlan:
+    """Open the results and the new field (or take ``data``), check that one applies to the other, and plan
+    the blocks: every check a projection makes before it reads the field's values."""
+    source, trained, mine = given_results(results)
     try:
         fitted = fitted_preparation(trained)
         how, months, max_missing = _training(trained)
         if how != "none" and spec.select.months != months:
             raise UserError(f"select.months: the modes in {source} were computed from {how} means of "
                             f"{months_text(months)} ({months}); select the same months")
-        opened = open_field(spec.input, spec.select)
+        opened = opened_field(spec, data)
         notes = list(opened.notes)
         field = _new_field(spec, opened, trained, notes)
         check_same_grid(field, trained, source)
@@ -505,9 +526,10 @@ def _plan_projection(results: str | Path, spec: RunSpec) -> ProjectionPlan:
         room = capacity(spec.compute)
         rows, blocks = plan_projection(field.shape, trained, fitted, room.memory, room.in_use, room.workers)
     except BaseException:
-        trained.close()
+        if mine:
+            trained.close()
         raise
-    return ProjectionPlan(source, trained, fitted, opened, field, keys, rows, blocks, room, max_missing, notes)
+    return ProjectionPlan(source, trained, mine, fitted, opened, field, keys, rows, blocks, room, max_missing, notes)
 
 
 def _steps_text(fitted: Fitted) -> str:
@@ -523,7 +545,8 @@ def check_projection(results: str | Path, spec: RunSpec) -> list[str]:
         where = check_output_dir(spec, PROJECTION_FILE)
         check_batch_commands(spec.compute)
         plan = _plan_projection(results, spec)
-    plan.results.close()
+    if plan.opened_here:
+        plan.results.close()
     field = plan.field
     grid = f"{field.sizes['lat']} x {field.sizes['lon']}" + (" (curvilinear)" if GRID_LAT in field.coords else "")
     lines = projection_plan_lines(spec.input.variable, plan.opened.files, field["time"].values, grid,
@@ -532,10 +555,11 @@ def check_projection(results: str | Path, spec: RunSpec) -> list[str]:
                                                    *warned]]
 
 
-def project(results: str | Path, spec: RunSpec, say: Callable[[str], None] = lambda line: None,
-            progress: bool = False) -> RunSummary:
-    """``climodes project``: the field of ``spec`` (its input and select) projected onto the modes of
-    ``results``, prepared with the preparation fitted there; writes ``<output.dir>/projection.nc``.
+def project(results: str | Path | xr.Dataset, spec: RunSpec, say: Callable[[str], None] = lambda line: None,
+            progress: bool = False, data: xr.DataArray | None = None, write: bool = True) -> RunSummary:
+    """``climodes project``: the field of ``spec`` (its input and select, or ``data`` in place of its input)
+    projected onto the modes of ``results`` (a folder, its ``modes.nc`` or their Dataset), prepared with the
+    preparation fitted there; writes ``<output.dir>/projection.nc`` unless not to ``write``.
 
     The output folder is claimed, staged and put in place as a run's results folder is (never a
     training run's folder); the field is read once, in blocks of latitude rows within
@@ -543,11 +567,12 @@ def project(results: str | Path, spec: RunSpec, say: Callable[[str], None] = lam
     """
     started = time.monotonic()
     out = Path(spec.output.dir)
-    with results_folder(spec, say, PROJECTION_FILE) as stage:
+    with results_folder(spec, say, PROJECTION_FILE) if write else contextlib.nullcontext() as stage:
         warned: list[str] = []
         with library_warnings(warned):
-            plan = _plan_projection(results, spec)
-        with contextlib.closing(plan.results) as trained:
+            plan = _plan_projection(results, spec, data)
+        with contextlib.closing(plan.results) if plan.opened_here else contextlib.nullcontext(plan.results) \
+                as trained:
             with library_warnings(warned):
                 opened = rechunked(plan.opened, {"time": -1, "lat": plan.rows, "lon": -1})
                 field = _new_field(spec, opened, trained, [])
@@ -565,21 +590,24 @@ def project(results: str | Path, spec: RunSpec, say: Callable[[str], None] = lam
                          compute=session.description, elapsed=time.monotonic() - started,
                          points=f"{int(used.sum())} grid points of the modes; {filled} missing values set to zero "
                                 "anomaly",
-                         command=history("project", results, spec.source))
+                         command=history("project", plan.source if isinstance(results, xr.Dataset) else results,
+                                         spec.source))
             ds = projection_dataset(projection_variables(trained, products, squares, field["time"]), opened, spec,
-                                    extra, time_bounds(field), plan.source.resolve(), trained)
+                                    extra, time_bounds(field), _named(plan.source), trained)
         for line in notes:
             say(f"note: {line}")
         headline = projection_headline(spec.input.variable, len(opened.files), field.sizes["time"], ds.sizes["mode"],
                                        plan.source, out)
         table = projection_table(ds)
         try:
-            write_netcdf(ds, stage / PROJECTION_FILE, opened.time_encoding)
-            (stage / "projection.log").write_text(
-                run_log(headline, table, [f"compute: {session.description}"], notes, spec.to_yaml()), encoding="utf-8")
+            if stage is not None:
+                write_netcdf(ds, stage / PROJECTION_FILE, opened.time_encoding)
+                (stage / "projection.log").write_text(
+                    run_log(headline, table, [f"compute: {session.description}"], notes, spec.to_yaml()),
+                    encoding="utf-8")
         except OSError as err:
             raise _cannot_write(spec, err) from None
-    return RunSummary(out, headline, table, notes)
+    return RunSummary(out, headline, table, notes, ds)
 
 
 def _time_encoding(results: xr.Dataset) -> dict:
@@ -596,11 +624,8 @@ def reconstruct(results: str | Path, modes: str, out: str | Path, anomalies: boo
     if out.suffix != ".nc":
         raise UserError(f"-o {out}: give a NetCDF file name ending in .nc")
     with open_results(source) as trained:
-        which = chosen_modes(modes, trained["mode"].values)
-        memory = (stored_config(trained).get("compute") or {}).get("memory", ComputeSection.memory)
-        data = reconstruction(trained, which, anomalies, run_memory(ComputeSection(memory=memory)))
         command = history("reconstruct", results, "--modes", modes, "-o", out, *(["--anomalies"] * anomalies))
-        ds = reconstruction_dataset(trained, data, which, anomalies, source.resolve(), command)
+        ds, which = rebuilt(trained, source, modes, anomalies, command)
         try:
             with dask.config.set(scheduler="synchronous"):  # one block at a time
                 write_file_atomically(out, lambda path: write_netcdf(ds, path, _time_encoding(trained),
@@ -608,6 +633,15 @@ def reconstruct(results: str | Path, modes: str, out: str | Path, anomalies: boo
         except OSError as err:
             raise UserError(f"-o {out}: cannot write it ({err.strerror or err}); nothing was written") from None
         return reconstruction_line(ds, modes_text(which), anomalies, out)
+
+
+def rebuilt(trained: xr.Dataset, source: Path, modes: str, anomalies: bool, command: str) -> tuple[xr.Dataset, list[int]]:
+    """The reconstruction from the ``modes`` (``1-3``, ``1,4``) of the results ``trained`` read from ``source``,
+    as a lazy CF dataset (``command`` goes to its history), and the mode numbers chosen."""
+    which = chosen_modes(modes, trained["mode"].values)
+    memory = (stored_config(trained).get("compute") or {}).get("memory", ComputeSection.memory)
+    data = reconstruction(trained, which, anomalies, run_memory(ComputeSection(memory=memory)))
+    return reconstruction_dataset(trained, data, which, anomalies, _named(source), command), which
 
 
 def table(results: str | Path, out: str | Path, overwrite: bool = False) -> str:
