@@ -10,6 +10,7 @@ refuses too.
 from __future__ import annotations
 
 import contextlib
+import os
 import time
 import warnings
 from dataclasses import dataclass, field
@@ -493,10 +494,11 @@ def given_results(results: str | Path | xr.Dataset) -> tuple[Path, xr.Dataset, b
     """The results file of a folder or path opened and checked, or results given as a Dataset checked:
     their source (the file, or :data:`IN_MEMORY_RESULTS`), the Dataset, and whether it was opened here
     (and is the caller's to close)."""
-    if not isinstance(results, xr.Dataset):
+    if isinstance(results, (str, os.PathLike)):
         source = results_path(results)
         return source, open_results(source), True
-    source = Path(results.encoding["source"]) if results.encoding.get("source") else IN_MEMORY_RESULTS
+    encoding = getattr(results, "encoding", None) or {}
+    source = Path(encoding["source"]) if encoding.get("source") else IN_MEMORY_RESULTS
     check_results(results, source)
     return source, results, False
 
