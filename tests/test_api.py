@@ -164,6 +164,9 @@ def test_bad_modes_raise_the_command_lines_message(tmp_path, small_field, cli):
     assert f"climodes: error: {caught.value}" == err.strip()
     with pytest.raises(climodes.UserError, match="the results hold modes 1 to 2"):
         climodes.reconstruct(tmp_path / "out", [3])
+    for wrong in (1.5, [], [1, "2"], True):
+        with pytest.raises(climodes.UserError, match="give mode numbers"):
+            climodes.reconstruct(tmp_path / "out", wrong)
 
 
 def _field(**changes) -> xr.DataArray:

@@ -304,8 +304,8 @@ def reconstruct(results: str | os.PathLike | xr.Dataset, modes: str | int | Sequ
     from climodes.pipeline import given_results, rebuilt
     from climodes.reuse import history
 
-    text = modes if isinstance(modes, str) else str(modes) if isinstance(modes, int) else ",".join(map(str, modes))
     source, trained, _ = given_results(results)
+    text = _modes_text(modes)
     command = history("reconstruct", source, "--modes", text, *(["--anomalies"] * anomalies))
     ds, _ = rebuilt(trained, source, text, anomalies, command)
     return ds[next(iter(ds.data_vars))]
@@ -347,6 +347,16 @@ def coefficient_table(results: str | os.PathLike | xr.Dataset) -> pd.DataFrame:
     finally:
         if mine:
             trained.close()
+
+
+def _modes_text(modes: object) -> str:
+    """Mode numbers as the command line's ``--modes`` takes them: ``"1-3"`` as it is, ``2`` or ``[1, 2]``."""
+    if isinstance(modes, str):
+        return modes
+    numbers = [modes] if isinstance(modes, int) else list(modes) if isinstance(modes, (list, tuple, range)) else None
+    if not numbers or not all(isinstance(n, int) and not isinstance(n, bool) for n in numbers):
+        raise UserError(f"modes {modes!r}: give mode numbers such as \"1-3\", 2 or [1, 4]")
+    return ",".join(map(str, numbers))
 
 
 def _is_array(value: object) -> bool:
