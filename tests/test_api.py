@@ -275,3 +275,17 @@ def test_the_readme_example_runs_on_the_demo(demo, monkeypatch):
     namespace: dict = {}
     for block in _readme_blocks():
         exec(compile(block, "README.md", "exec"), namespace)  # noqa: S102  (the README's own example)
+
+
+def test_the_history_says_what_made_the_results(tmp_path, small_field, monkeypatch):
+    """CF's history names the command that made a file: the command line's words for a config file, the
+    Python function and what it was given otherwise (CF conventions 1.10, section 2.6.2)."""
+    monkeypatch.chdir(tmp_path)
+    config = write_config(tmp_path, [small_field], modes={"count": 2})
+    field = xr.open_dataset(small_field)["tas"]
+    assert climodes.run(config).attrs["history"].endswith(f": climodes run {config}")
+    assert "climodes.run (Python) of a config given as a mapping" in \
+        climodes.run(yaml.safe_load(config.read_text())).attrs["history"]
+    results = climodes.analyse(field, modes={"count": 2})
+    assert "climodes.analyse (Python) of DataArray 'tas'" in results.attrs["history"]
+    assert "climodes.project (Python) of DataArray 'tas'" in climodes.project(results, field).attrs["history"]

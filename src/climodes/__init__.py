@@ -125,7 +125,8 @@ def run(config: str | os.PathLike | Mapping | RunSpec, write: bool = False) -> x
     """
     from climodes.pipeline import run as run_spec
 
-    return run_spec(load_config(config), data=None, write=write).results
+    spec = load_config(config)
+    return run_spec(spec, write=write, command=None if _is_path(config) else _by_python("run", spec)).results
 
 
 def analyse(data: xr.DataArray, *, write: bool = False, **sections: Mapping[str, Any]) -> xr.Dataset:
@@ -178,7 +179,7 @@ def analyse(data: xr.DataArray, *, write: bool = False, **sections: Mapping[str,
     name = getattr(data, "name", None)
     sections = {**sections, "input": {**given, "paths": [IN_MEMORY], "variable": str(name or "field")}}
     spec = load_config(sections)
-    return run_spec(spec, data=data, write=write).results
+    return run_spec(spec, data=data, write=write, command=_by_python("analyse", spec, data)).results
 
 
 def open_results(path: str | os.PathLike) -> xr.Dataset:
@@ -266,7 +267,8 @@ def project(results: str | os.PathLike | xr.Dataset, other: str | os.PathLike | 
                         "the config")
     else:
         spec = load_config(other)
-    return project_spec(results, spec, data=data, write=write).results
+    command = None if _is_path(other) else _by_python("project", spec, data)
+    return project_spec(results, spec, data=data, write=write, command=command).results
 
 
 def reconstruct(results: str | os.PathLike | xr.Dataset, modes: str | int | Sequence[int],
@@ -357,6 +359,18 @@ def _modes_text(modes: object) -> str:
     if not numbers or not all(isinstance(n, int) and not isinstance(n, bool) for n in numbers):
         raise UserError(f"modes {modes!r}: give mode numbers such as \"1-3\", 2 or [1, 4]")
     return ",".join(map(str, numbers))
+
+
+def _is_path(config: object) -> bool:
+    return isinstance(config, (str, os.PathLike))
+
+
+def _by_python(function: str, spec: RunSpec, data: xr.DataArray | None = None) -> str:
+    """What made results from Python, for their history, where the command line's words would be."""
+    from climodes.fields import array_name
+
+    given = array_name(data) if data is not None else "a config given as a mapping"
+    return f"climodes.{function} (Python) of {given}, relative paths read from {spec.source.parent}"
 
 
 def _is_array(value: object) -> bool:

@@ -519,7 +519,8 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
 
 def array_name(data: xr.DataArray) -> str:
     """How an in-memory field is named in messages, where a file's path would be."""
-    return f"DataArray {str(data.name)!r}" if data.name is not None else "the DataArray"
+    name = getattr(data, "name", None)
+    return f"DataArray {str(name)!r}" if name is not None else "the DataArray"
 
 
 def field_from_array(data: xr.DataArray, spec: InputSection, choice: SelectSection | None = None) -> OpenedField:

@@ -272,7 +272,7 @@ def _diagnosed(spec: RunSpec, modes: xr.Dataset, result: Decomposition, tested: 
 
 
 def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress: bool = False,
-        data: xr.DataArray | None = None, write: bool = True) -> RunSummary:
+        data: xr.DataArray | None = None, write: bool = True, command: str | None = None) -> RunSummary:
     """Run ``spec`` end to end and write its results folder.
 
     The folder is claimed before any data are read (:func:`climodes.output.results_folder`) and
@@ -290,6 +290,8 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
         The field to analyse in place of ``spec``'s input files (see :func:`climodes.fields.field_from_array`).
     write
         Write the results folder; without, nothing is written and the summary's ``results`` is all there is.
+    command
+        What made the run, for the results' history (default: ``climodes run CONFIG``).
     """
     started = time.monotonic()
     out = Path(spec.output.dir)
@@ -308,6 +310,7 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
         extra = dict(errors=sampling.errors, separated=sampling.separated,
                      method=f"{result.method} (chosen because: {planned.plan.reason})",
                      notes=notes, units=units, total_variance=result.total_variance, compute=session.description,
+                     command=command or history("run", spec.source),
                      elapsed=time.monotonic() - started,
                      points=(f"{counts.used} of {counts.grid} grid points used; {counts.always_missing} missing at "
                              f"every step; {counts.too_often_missing} missing too often; {counts.filled_values} "
@@ -558,10 +561,12 @@ def check_projection(results: str | Path, spec: RunSpec) -> list[str]:
 
 
 def project(results: str | Path | xr.Dataset, spec: RunSpec, say: Callable[[str], None] = lambda line: None,
-            progress: bool = False, data: xr.DataArray | None = None, write: bool = True) -> RunSummary:
+            progress: bool = False, data: xr.DataArray | None = None, write: bool = True,
+            command: str | None = None) -> RunSummary:
     """``climodes project``: the field of ``spec`` (its input and select, or ``data`` in place of its input)
     projected onto the modes of ``results`` (a folder, its ``modes.nc`` or their Dataset), prepared with the
-    preparation fitted there; writes ``<output.dir>/projection.nc`` unless not to ``write``.
+    preparation fitted there; writes ``<output.dir>/projection.nc`` unless not to ``write``.  ``command``
+    is what made it, for the history (default: ``climodes project RESULTS CONFIG``).
 
     The output folder is claimed, staged and put in place as a run's results folder is (never a
     training run's folder); the field is read once, in blocks of latitude rows within
@@ -592,8 +597,8 @@ def project(results: str | Path | xr.Dataset, spec: RunSpec, say: Callable[[str]
                          compute=session.description, elapsed=time.monotonic() - started,
                          points=f"{int(used.sum())} grid points of the modes; {filled} missing values set to zero "
                                 "anomaly",
-                         command=history("project", plan.source if isinstance(results, xr.Dataset) else results,
-                                         spec.source))
+                         command=command or history("project", plan.source if isinstance(results, xr.Dataset)
+                                                    else results, spec.source))
             ds = projection_dataset(projection_variables(trained, products, squares, field["time"]), opened, spec,
                                     extra, time_bounds(field), _named(plan.source), trained)
         for line in notes:
