@@ -267,14 +267,19 @@ def test_the_readme_uses_only_the_public_names():
 
 
 @pytest.mark.slow
-def test_the_readme_example_runs_on_the_demo(demo, monkeypatch):
+def test_the_readme_example_runs_on_the_demo(demo, monkeypatch, capsys):
     """The section's code, block after block in one namespace, from the repository folder's layout
-    (demo_fields/, configs/, results/demo written by make demo)."""
+    (demo_fields/, configs/, results/demo written by make demo); every line it prints is one of the
+    README's comments, so the numbers shown are the demo's."""
     root, _, _, _ = demo
     monkeypatch.chdir(root)
     namespace: dict = {}
+    capsys.readouterr()
     for block in _readme_blocks():
         exec(compile(block, "README.md", "exec"), namespace)  # noqa: S102  (the README's own example)
+    printed = [" ".join(line.split()) for line in capsys.readouterr().out.splitlines()]
+    shown = {" ".join(m.group(1).split()) for block in _readme_blocks() for m in re.finditer(r"# ?(.*)$", block, re.M)}
+    assert printed and [line for line in printed if line not in shown] == []
 
 
 def test_the_history_says_what_made_the_results(tmp_path, small_field, monkeypatch):
