@@ -203,6 +203,15 @@ def test_bad_sections_of_analyse_are_config_problems():
                                      "config: modes.count: expected a whole number from 1 to 100000; got 'many'"]
 
 
+def test_a_projection_refuses_sections_it_would_not_use():
+    results = climodes.analyse(_field(), modes={"count": 2})
+    with pytest.raises(climodes.UserError) as caught:
+        climodes.project(results, _field(), prepare={"detrend": "linear"}, modes={"count": 1})
+    assert [line.split(":")[1].strip() for line in caught.value.problems] == ["prepare", "modes"]
+    with pytest.raises(climodes.UserError, match="the sections select go with a DataArray"):
+        climodes.project(results, {"input": {"paths": ["x.nc"], "variable": "tas"}}, select={"lat": [0, 10]})
+
+
 def test_results_that_are_not_climodes_results_are_refused(tmp_path):
     with pytest.raises(climodes.UserError, match="not a climodes results file"):
         climodes.coefficient_table(_field().to_dataset())

@@ -233,7 +233,8 @@ def project(results: str | os.PathLike | xr.Dataset, other: str | os.PathLike | 
     write
         Write ``projection.nc`` into the ``output.dir`` of the config (or of ``output``).
     **sections
-        With a DataArray: ``select``, ``compute``, ``output`` and ``input`` (``chunks``) as mappings.
+        With a DataArray: ``select``, ``compute``, ``output`` and ``input`` (``chunks``) as mappings
+        (``prepare`` and ``modes`` are the run's).
 
     Returns
     -------
@@ -256,8 +257,14 @@ def project(results: str | os.PathLike | xr.Dataset, other: str | os.PathLike | 
     """
     from climodes.pipeline import project as project_spec
 
+    from climodes.config import MAPPING_NAME
+    from climodes.errors import ConfigError
+
     data = None
     if _is_array(other):
+        if unused := [name for name in ("prepare", "modes") if name in sections]:
+            raise ConfigError([f"{MAPPING_NAME}: {name}: not used by a projection, which applies the modes and the "
+                               "preparation fitted in the run; leave it out" for name in unused])
         name = getattr(other, "name", None)
         sections = {**sections, "input": {**dict(sections.get("input") or {}), "paths": [IN_MEMORY],
                                           "variable": str(name or "field")}}

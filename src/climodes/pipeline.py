@@ -590,7 +590,8 @@ def project(results: str | Path | xr.Dataset, spec: RunSpec, say: Callable[[str]
             check_points(fraction, trained, field, plan.max_missing, plan.source)
             used = trained["point_status"].values.reshape(-1) == 2
             filled = int(round(float(np.sum(fraction[used])) * field.sizes["time"]))
-            notes = [ignored_sections_note(spec.source, plan.source), *plan.notes, *warned]
+            ignored = [ignored_sections_note(spec.source, plan.source)] if data is None else []
+            notes = [*ignored, *plan.notes, *warned]
             if filled:
                 notes.append(f"set {filled} missing values at {int(np.sum(fraction[used] > 0))} points to zero anomaly")
             extra = dict(method=f"projection onto the EOFs of {plan.source} ({plan.blocks})", notes=notes,
