@@ -147,7 +147,7 @@ def _submit_config(tmp_path, **compute):
     return write_config(folder, paths, modes={"count": 3}, compute={"workers": 2, "memory": "2GB", **compute})
 
 
-def test_dry_run_writes_and_prints_a_slurm_script(tmp_path, cli):
+def test_dry_run_writes_and_prints_a_slurm_script(tmp_path, cli, fresh_process):
     config = _submit_config(tmp_path, queue="short", account="proj1", directives=["--qos=low", "--mail-type=END"])
     code, out, err = cli("submit", "--dry-run", "--system", "slurm", config)
     assert code == 0, err
@@ -164,7 +164,7 @@ def test_dry_run_writes_and_prints_a_slurm_script(tmp_path, cli):
     assert not (config.parent / "out").exists()  # nothing ran
 
 
-def test_dry_run_writes_a_pbs_script(tmp_path, cli):
+def test_dry_run_writes_a_pbs_script(tmp_path, cli, fresh_process):
     config = _submit_config(tmp_path, queue="short", account="proj1", walltime="05:00:00")
     code, out, err = cli("submit", "--dry-run", "--system", "pbs", config)
     assert code == 0, err

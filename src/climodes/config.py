@@ -599,41 +599,79 @@ def load_spec(config_path: str | Path) -> RunSpec:
     problems: list[str] = []
     lines: dict[tuple[str, ...], int] = {}
     data = _parse(text, where, lines, problems)
+    return _validated(data, path.resolve(), where, lines, problems)
+
+
+MAPPING_NAME = "config"  # how a config given as a mapping is named in its problems, where a file's name would be
+
+
+def spec_from_mapping(data: Any, folder: str | Path | None = None) -> RunSpec:
+    """Validate and resolve a run configuration given as a mapping (the YAML file's content as Python).
+
+    The checks and messages are those of :func:`load_spec`; each problem starts with ``config:``
+    where a file's problems start with ``FILE:LINE:``.
+
+    Parameters
+    ----------
+    data
+        ``{"input": {...}, "select": {...}, ...}``, the sections of a config.
+    folder
+        Folder that relative paths are read from (the working folder by default), as a config
+        file's own folder is.
+
+    Raises
+    ------
+    ConfigError
+        With one ``config: key: problem`` line per problem found.
+    """
+    base = Path(folder if folder is not None else os.getcwd()).resolve()
+    return _validated(data, base / MAPPING_NAME, MAPPING_NAME, None, [])
+
+
+def _at(where: str, lines: dict | None, path: tuple[str, ...], fallback: tuple[str, ...] = ()) -> str:
+    """``FILE:LINE`` of the key at ``path`` (else of ``fallback``, else line 1); plain ``where`` without lines."""
+    if lines is None:
+        return where
+    return f"{where}:{lines.get(path, lines.get(fallback, 1))}"
+
+
+def _validated(data: Any, source: Path, where: str, lines: dict | None, problems: list[str]) -> RunSpec:
+    """The :class:`RunSpec` of a config's parsed content; ``lines`` maps keys to lines (None: no lines)."""
     if not isinstance(data, dict):
-        raise ConfigError([f"{where}:1: expected a mapping with sections input, select, prepare, modes, output"])
+        raise ConfigError([f"{_at(where, lines, ())}: expected a mapping with sections input, select, prepare, "
+                           "modes, output"])
     for name in data:
         if name not in SECTIONS:
-            problems.append(f"{where}:{lines.get((str(name),), 1)}: {shortened(str(name))}: unknown section"
+            problems.append(f"{_at(where, lines, (str(name),))}: {shortened(str(name))}: unknown section"
                             f"{_suggest(name, SECTIONS)}")
 
     resolved = {}
     for name, cls in SECTIONS.items():
         given = data.get(name) or {}
-        line = lines.get((name,), 1)
+        at = _at(where, lines, (name,))
         if not isinstance(given, dict):
-            problems.append(f"{where}:{line}: {name}: expected a mapping of keys; got {quoted(given)}")
+            problems.append(f"{at}: {name}: expected a mapping of keys; got {quoted(given)}")
             given = {}
         values = {}
         keys = {f.name: f for f in dataclasses.fields(cls)}
         for key, value in given.items():
-            key_line = lines.get((name, str(key)), line)
+            key_at = _at(where, lines, (name, str(key)), (name,))
             if key not in keys:
-                problems.append(f"{where}:{key_line}: {name}.{shortened(str(key))}: unknown key{_suggest(key, keys)}")
+                problems.append(f"{key_at}: {name}.{shortened(str(key))}: unknown key{_suggest(key, keys)}")
                 continue
             try:
                 values[key] = keys[key].metadata["check"](value)
             except ValueError as err:
-                problems.append(f"{where}:{key_line}: {name}.{key}: {err}")
+                problems.append(f"{key_at}: {name}.{key}: {err}")
         for key, f in keys.items():
             required = f.default is dataclasses.MISSING and f.default_factory is dataclasses.MISSING
             if required and key not in given:
-                problems.append(f"{where}:{line}: {name}.{key}: required ({f.metadata['doc']})")
+                problems.append(f"{at}: {name}.{key}: required ({f.metadata['doc']})")
         if not problems:
             resolved[name] = cls(**values)
     if problems:
         raise ConfigError(_by_line(problems))
-
-    spec = RunSpec(source=path.resolve(), **resolved)
+    spec = RunSpec(source=source, **resolved)
     _check_together(spec, lines, where, problems)
     _check_name_lengths(spec, lines, where, problems)
     if problems:
@@ -676,12 +714,11 @@ def _suggest(word: Any, options) -> str:
     return f"; did you mean {close[0]}?" if close else f"; expected one of {', '.join(options)}"
 
 
-def _check_together(spec: RunSpec, lines: dict, where: str, problems: list[str]) -> None:
+def _check_together(spec: RunSpec, lines: dict | None, where: str, problems: list[str]) -> None:
     """Checks that involve more than one key."""
 
     def report(section: str, key: str, message: str) -> None:
-        line = lines.get((section, key), lines.get((section,), 1))
-        problems.append(f"{where}:{line}: {section}.{key}: {message}")
+        problems.append(f"{_at(where, lines, (section, key), (section,))}: {section}.{key}: {message}")
 
     if spec.select.lat and spec.select.lat[0] > spec.select.lat[1]:
         report("select", "lat", f"SOUTH {spec.select.lat[0]:g} is north of NORTH {spec.select.lat[1]:g}")
@@ -710,15 +747,14 @@ def _name_max(folder: Path) -> int:
     return limit if limit > 0 else 255
 
 
-def _check_name_lengths(spec: RunSpec, lines: dict, where: str, problems: list[str]) -> None:
+def _check_name_lengths(spec: RunSpec, lines: dict | None, where: str, problems: list[str]) -> None:
     """Every name in a path (between separators) must fit the file system's limit; glob patterns may be longer."""
     limit = _name_max(spec.source.parent)
     for section, key, paths in (("input", "paths", spec.input.paths), ("output", "dir", [spec.output.dir])):
         for p in paths:
             long = [part for part in Path(p).parts if len(os.fsencode(part)) > limit and not glob.has_magic(part)]
             if long:
-                line = lines.get((section, key), lines.get((section,), 1))
-                problems.append(f"{where}:{line}: {section}.{key}: the name {quoted(long[0])} is "
+                problems.append(f"{_at(where, lines, (section, key), (section,))}: {section}.{key}: the name {quoted(long[0])} is "
                                 f"{len(os.fsencode(long[0]))} bytes long; this system allows {limit}")
 
 

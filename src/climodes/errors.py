@@ -10,16 +10,27 @@ class UserError(Exception):
     """A problem with the user's input, reported as one line without a traceback.
 
     The message names the file, variable or config key at fault and says what
-    to do about it.
+    to do about it; ``problems`` holds its lines (one, but for a :class:`ConfigError`).
+
+    >>> UserError("data.nc: no variable 'sst'").problems
+    ["data.nc: no variable 'sst'"]
     """
+
+    @property
+    def problems(self) -> list[str]:
+        return [str(self)]
 
 
 class ConfigError(UserError):
     """One or more problems in a YAML config; ``problems`` holds one line each."""
 
     def __init__(self, problems: list[str]):
-        self.problems = problems
+        self._problems = list(problems)
         super().__init__("\n".join(problems))
+
+    @property
+    def problems(self) -> list[str]:
+        return self._problems
 
 
 def shortened(text: str, limit: int = 60) -> str:

@@ -270,11 +270,15 @@ def _open_one(path: str, variable: str) -> tuple[xr.DataArray, xr.Dataset]:
         names = ", ".join(sorted(map(str, ds.data_vars))) or "none"
         raise UserError(f"{path}: no variable {variable!r}; variables there: {names}; set input.variable")
     da = ds[variable]
+    _check_numeric(da, variable, path)
+    return da, ds
+
+
+def _check_numeric(da: xr.DataArray, variable: str, where: str) -> None:
     if not np.issubdtype(da.dtype, np.number) or np.issubdtype(da.dtype, np.complexfloating):
         kind = "text" if da.dtype.kind in "USO" else str(da.dtype)
-        raise UserError(f"{path}: variable {variable!r} holds {kind} values, not numbers; set input.variable to a "
+        raise UserError(f"{where}: variable {variable!r} holds {kind} values, not numbers; set input.variable to a "
                         "numeric field")
-    return da, ds
 
 
 def _with_cell_areas(da: xr.DataArray, ds: xr.Dataset, name: str | None, path: str) -> xr.DataArray:
@@ -435,6 +439,37 @@ def _check_agreement(first: tuple, other: tuple, variable: str) -> None:
                         "units (convert the values, not just the attribute)")
 
 
+def _standard_piece(da: xr.DataArray, ds: xr.Dataset, axes: dict[str, str], grid: tuple[str, str] | None,
+                    spec: InputSection, choice: SelectSection | None, where: str):
+    """One file's field (or an in-memory one) checked and put in the standard form: dimensions
+    ``(time, lat, lon)``, an extra axis reduced, a curvilinear grid's coordinates renamed, cell areas attached,
+    stamps at the middles of the time bounds, longitudes in order.  ``ds`` holds the variables the field's
+    attributes name.  Returns the field, whether its stamps moved, the note on rolled longitudes (or None)
+    and its grid-mapping variable (or None)."""
+    _check_time(da[axes["time"]], ds, where)
+    da = pick_extra_dims(da, axes, choice, where)
+    mapping = None
+    if grid:  # the rows and columns keep their 1-D coordinates (rotated ones are not latitudes) under own names
+        rows = {inner: (dim, da[dim].values, da[dim].attrs)
+                for inner, dim in ((GRID_Y, axes["lat"]), (GRID_X, axes["lon"])) if dim in da.coords}
+        da = da.drop_vars([axes["lat"], axes["lon"]], errors="ignore")
+        da = da.rename({grid[0]: GRID_LAT, grid[1]: GRID_LON}).assign_coords(rows)
+        mapping = _grid_mapping(da, ds)
+    da = _with_cell_areas(da, ds, spec.cell_area, where)
+    da, restamped = _stamp_at_interval_middles(da, ds, axes["time"])
+    da = da.rename({v: k for k, v in axes.items()}).transpose("time", "lat", "lon")
+    da, rolled = _in_grid_order(da, axes, where)
+    return da, restamped, rolled, mapping
+
+
+def _check_steps_in_order(da: xr.DataArray, where: str) -> None:
+    steps = da["time"].values
+    if steps.size > 1 and not all(b > a for a, b in zip(steps[:-1], steps[1:])):
+        at = next(i for i in range(1, steps.size) if not steps[i] > steps[i - 1])
+        raise UserError(f"{where}: time step {at} ({str(steps[at])[:19]}) repeats or goes back in time; "
+                        "remove the duplicate or sort the steps")
+
+
 def open_field(spec: InputSection, choice: SelectSection | None = None) -> OpenedField:
     """Open ``spec.variable`` from every file of ``spec.paths`` as one lazy field.
 
@@ -455,26 +490,13 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
         if names and axes != names:
             raise UserError(f"{path}: axes are named {axes}, but {paths[0]} names them {names}; make them agree")
         names = axes
-        _check_time(da[axes["time"]], ds, path)
-        da = pick_extra_dims(da, axes, choice, path)
-        if grid:  # the rows and columns keep their 1-D coordinates (rotated ones are not latitudes) under own names
-            rows = {inner: (dim, da[dim].values, da[dim].attrs)
-                    for inner, dim in ((GRID_Y, axes["lat"]), (GRID_X, axes["lon"])) if dim in da.coords}
-            da = da.drop_vars([axes["lat"], axes["lon"]], errors="ignore")
-            da = da.rename({grid[0]: GRID_LAT, grid[1]: GRID_LON}).assign_coords(rows)
-            grid_names, grid_mapping = grid, _grid_mapping(da, ds)
-        da = _with_cell_areas(da, ds, spec.cell_area, path)
-        da, restamped = _stamp_at_interval_middles(da, ds, axes["time"])
+        da, restamped, rolled, mapping = _standard_piece(da, ds, axes, grid, spec, choice, path)
+        if grid:
+            grid_names, grid_mapping = grid, mapping
         moved.append(restamped)
-        da = da.rename({v: k for k, v in axes.items()}).transpose("time", "lat", "lon")
-        da, rolled = _in_grid_order(da, axes, path)
         if rolled and rolled not in notes:
             notes.append(rolled)
-        steps = da["time"].values
-        if steps.size > 1 and not all(b > a for a, b in zip(steps[:-1], steps[1:])):
-            where = next(i for i in range(1, steps.size) if not steps[i] > steps[i - 1])
-            raise UserError(f"{path}: time step {where} ({str(steps[where])[:19]}) repeats or goes back in time; "
-                            "remove the duplicate or sort the steps")
+        _check_steps_in_order(da, path)
         pieces.append((path, da, ds[axes["time"]].encoding))
         _check_agreement(pieces[0], pieces[-1], spec.variable)
     pieces.sort(key=lambda p: p[1]["time"].values[0])
@@ -492,6 +514,41 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
     opened = OpenedField(xr.DataArray(), files, names, encoding, pieces=[p[1] for p in pieces], grid=grid_names,
                          grid_mapping=grid_mapping, opening_notes=notes)
     opened.restamped = any(moved)
+    return rechunked(opened, spec.chunks)
+
+
+def array_name(data: xr.DataArray) -> str:
+    """How an in-memory field is named in messages, where a file's path would be."""
+    name = getattr(data, "name", None)
+    return f"DataArray {str(name)!r}" if name is not None else "the DataArray"
+
+
+def field_from_array(data: xr.DataArray, spec: InputSection, choice: SelectSection | None = None) -> OpenedField:
+    """An in-memory (or lazily computed) field as :func:`open_field` gives a file's: the same checks and the
+    same standard form, so that everything after opening treats both alike.
+
+    ``data`` needs time, latitude and longitude axes that :func:`find_axes` recognises; ``spec.chunks``
+    cuts it into dask chunks (a numpy-backed array becomes a dask one, nothing is computed).  The results
+    list no input file.
+
+    Raises
+    ------
+    UserError
+        If ``data`` is not a numeric DataArray with dated time steps in order on a grid climodes reads.
+    """
+    if not isinstance(data, xr.DataArray):
+        raise UserError(f"expected an xarray.DataArray with time, latitude and longitude axes; got "
+                        f"{type(data).__name__}")
+    where = array_name(data)
+    _check_numeric(data, spec.variable, where)
+    axes, grid = find_axes(data, where)
+    known = data.coords.to_dataset()
+    da, restamped, rolled, mapping = _standard_piece(data, known, axes, grid, spec, choice, where)
+    _check_steps_in_order(da, where)
+    encoding = {k: v for k, v in data[axes["time"]].encoding.items() if k in ("units", "calendar", "dtype")}
+    opened = OpenedField(xr.DataArray(), [], axes, encoding, pieces=[da], grid=grid, grid_mapping=mapping,
+                         opening_notes=[rolled] if rolled else [])
+    opened.restamped = restamped
     return rechunked(opened, spec.chunks)
 
 

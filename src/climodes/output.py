@@ -21,7 +21,6 @@ import json
 import os
 import re
 import secrets
-import shlex
 import shutil
 import signal
 import socket
@@ -70,7 +69,7 @@ def results_dataset(modes: xr.Dataset, opened: OpenedField, spec: RunSpec, extra
     """Dress the solver's modes as the CF results of the contract.
 
     ``extra`` carries ``errors``, ``separated``, ``method``, ``notes``,
-    ``units``, ``compute`` and ``elapsed``.  Coordinates keep only their
+    ``units``, ``compute``, ``elapsed`` and ``command`` (for the history).  Coordinates keep only their
     attributes that stay true (:func:`lasting_attrs`); the level or member
     analysed stays as a scalar coordinate; a curvilinear grid keeps its rows'
     and columns' 1-D coordinates and its grid mapping, where the input has them;
@@ -191,7 +190,7 @@ def provenance(spec: RunSpec, opened: OpenedField, extra: dict) -> dict:
         "title": f"Leading modes of variability of {spec.input.variable}",
         "institution": "unknown (produced by climodes)",
         "source": f"climodes {__version__}",
-        "history": f"{now}: climodes run {shlex.quote(str(spec.source))}",
+        "history": f"{now}: {extra['command']}",
         "references": "North et al. 1982, Mon. Wea. Rev. 110, 699-706 (sampling errors); Bretherton et al. 1999, "
                       "J. Climate 12, 1990-2009 (effective sample sizes)",
         "date_created": now,

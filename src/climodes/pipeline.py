@@ -10,6 +10,7 @@ refuses too.
 from __future__ import annotations
 
 import contextlib
+import os
 import time
 import warnings
 from dataclasses import dataclass, field
@@ -41,7 +42,7 @@ from climodes import __version__
 from climodes.config import ComputeSection, FigureOptions, RunSpec, figure_options
 from climodes.diagnostics import correlation_maps, mode_diagnostics, residual_variables, sampling_errors
 from climodes.errors import UserError
-from climodes.fields import OpenedField, open_field, rechunked, select
+from climodes.fields import OpenedField, field_from_array, open_field, rechunked, select
 from climodes.grid import GRID_LAT
 from climodes.output import (
     check_geotiff_grid,
@@ -83,7 +84,7 @@ from climodes.report import (
     table_line,
     variance_table,
 )
-from climodes.results import open_results, results_path
+from climodes.results import check_results, open_results, results_path
 from climodes.reuse import (
     check_points,
     check_same_grid,
@@ -117,6 +118,7 @@ class RunSummary:
     headline: str
     table: list[str]
     notes: list[str] = field(default_factory=list)
+    results: xr.Dataset | None = None  # what modes.nc (or projection.nc) holds
 
     def text(self) -> str:
         return "\n".join([self.headline, *self.table])
@@ -167,9 +169,15 @@ def _prepared(spec: RunSpec, opened: OpenedField) -> tuple[xr.DataArray, TimeSte
     return field, steps, notes
 
 
-def _plan(spec: RunSpec) -> Planned:
-    """Open, select and prepare the field lazily and plan the solver: every check before the first pass."""
-    opened = open_field(spec.input, spec.select)
+def opened_field(spec: RunSpec, data: xr.DataArray | None = None) -> OpenedField:
+    """The field of ``spec``'s input files opened lazily, or ``data`` (an in-memory field) in the same form."""
+    return open_field(spec.input, spec.select) if data is None else field_from_array(data, spec.input, spec.select)
+
+
+def _plan(spec: RunSpec, data: xr.DataArray | None = None) -> Planned:
+    """Open (or take ``data``), select and prepare the field lazily and plan the solver: every check before
+    the first pass."""
+    opened = opened_field(spec, data)
     field, along_time, notes = _prepared(spec, opened)
     room = capacity(spec.compute)
     plan = plan_solver(field.shape, spec.modes.count, spec.modes.method, room.memory, room.workers,
@@ -263,7 +271,8 @@ def _diagnosed(spec: RunSpec, modes: xr.Dataset, result: Decomposition, tested: 
     return xr.merge(parts), sampling
 
 
-def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress: bool = False) -> RunSummary:
+def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress: bool = False,
+        data: xr.DataArray | None = None, write: bool = True, command: str | None = None) -> RunSummary:
     """Run ``spec`` end to end and write its results folder.
 
     The folder is claimed before any data are read (:func:`climodes.output.results_folder`) and
@@ -277,13 +286,19 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
         Called with each note worth telling the user as the run goes.
     progress
         Draw a progress bar on stderr for each pass over the data.
+    data
+        The field to analyse in place of ``spec``'s input files (see :func:`climodes.fields.field_from_array`).
+    write
+        Write the results folder; without, nothing is written and the summary's ``results`` is all there is.
+    command
+        What made the run, for the results' history (default: ``climodes run CONFIG``).
     """
     started = time.monotonic()
     out = Path(spec.output.dir)
-    with results_folder(spec, say) as stage:
+    with results_folder(spec, say) if write else contextlib.nullcontext() as stage:
         warned: list[str] = []
         with library_warnings(warned):
-            planned = _plan(spec)
+            planned = _plan(spec, data)
             modes, result, counts, session, tested = _solve(spec, planned, progress)
         notes = planned.notes + counts.notes + result.notes + warned
         kept = modes.sizes["mode"]
@@ -295,6 +310,7 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
         extra = dict(errors=sampling.errors, separated=sampling.separated,
                      method=f"{result.method} (chosen because: {planned.plan.reason})",
                      notes=notes, units=units, total_variance=result.total_variance, compute=session.description,
+                     command=command or history("run", spec.source),
                      elapsed=time.monotonic() - started,
                      points=(f"{counts.used} of {counts.grid} grid points used; {counts.always_missing} missing at "
                              f"every step; {counts.too_often_missing} missing too often; {counts.filled_values} "
@@ -308,13 +324,14 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
         where = [f"solver: {planned.plan.method} ({planned.plan.reason})", f"compute: {session.description}",
                  *(f"moved: {line}" for line in session.moved)]
         late: list[str] = []
-        with library_warnings(late):
-            late += _write(stage, results, spec, planned.opened)
-        for line in late:
-            say(f"note: {line}")
-        log = run_log(headline, table, where, notes + late, spec.to_yaml())
-        _write_log(stage, log, spec)
-    return RunSummary(out, headline, table, notes + late)
+        if stage is not None:
+            with library_warnings(late):
+                late += _write(stage, results, spec, planned.opened)
+            for line in late:
+                say(f"note: {line}")
+            log = run_log(headline, table, where, notes + late, spec.to_yaml())
+            _write_log(stage, log, spec)
+    return RunSummary(out, headline, table, notes + late, results)
 
 
 def _write(stage: Path, results: xr.Dataset, spec: RunSpec, opened: OpenedField) -> list[str]:
@@ -447,6 +464,7 @@ class ProjectionPlan:
 
     source: Path
     results: xr.Dataset
+    opened_here: bool  # the results were opened for the projection (and are closed after it)
     fitted: Fitted
     opened: OpenedField
     field: xr.DataArray
@@ -472,18 +490,39 @@ def _new_field(spec: RunSpec, opened: OpenedField, results: xr.Dataset, notes: l
     return aggregate(select(opened, spec.select), how, months, notes)
 
 
-def _plan_projection(results: str | Path, spec: RunSpec) -> ProjectionPlan:
-    """Open the results and the new field, check that one applies to the other, and plan the blocks:
-    every check a projection makes before it reads the field's values."""
-    source = results_path(results)
-    trained = open_results(source)
+IN_MEMORY_RESULTS = Path("(results in memory)")  # how results that are no file are named in messages
+
+
+def given_results(results: str | Path | xr.Dataset) -> tuple[Path, xr.Dataset, bool]:
+    """The results file of a folder or path opened and checked, or results given as a Dataset checked:
+    their source (the file, or :data:`IN_MEMORY_RESULTS`), the Dataset, and whether it was opened here
+    (and is the caller's to close)."""
+    if isinstance(results, (str, os.PathLike)):
+        source = results_path(results)
+        return source, open_results(source), True
+    encoding = getattr(results, "encoding", None) or {}
+    source = Path(encoding["source"]) if encoding.get("source") else IN_MEMORY_RESULTS
+    check_results(results, source)
+    return source, results, False
+
+
+def _named(source: Path) -> str:
+    """The absolute path of a results file, for the provenance of what is made from it."""
+    return str(source if source == IN_MEMORY_RESULTS else source.resolve())
+
+
+def _plan_projection(results: str | Path | xr.Dataset, spec: RunSpec, data: xr.DataArray | None = None
+                     ) -> ProjectionPlan:
+    """Open the results and the new field (or take ``data``), check that one applies to the other, and plan
+    the blocks: every check a projection makes before it reads the field's values."""
+    source, trained, mine = given_results(results)
     try:
         fitted = fitted_preparation(trained)
         how, months, max_missing = _training(trained)
         if how != "none" and spec.select.months != months:
             raise UserError(f"select.months: the modes in {source} were computed from {how} means of "
                             f"{months_text(months)} ({months}); select the same months")
-        opened = open_field(spec.input, spec.select)
+        opened = opened_field(spec, data)
         notes = list(opened.notes)
         field = _new_field(spec, opened, trained, notes)
         check_same_grid(field, trained, source)
@@ -492,9 +531,10 @@ def _plan_projection(results: str | Path, spec: RunSpec) -> ProjectionPlan:
         room = capacity(spec.compute)
         rows, blocks = plan_projection(field.shape, trained, fitted, room.memory, room.in_use, room.workers)
     except BaseException:
-        trained.close()
+        if mine:
+            trained.close()
         raise
-    return ProjectionPlan(source, trained, fitted, opened, field, keys, rows, blocks, room, max_missing, notes)
+    return ProjectionPlan(source, trained, mine, fitted, opened, field, keys, rows, blocks, room, max_missing, notes)
 
 
 def _steps_text(fitted: Fitted) -> str:
@@ -510,7 +550,8 @@ def check_projection(results: str | Path, spec: RunSpec) -> list[str]:
         where = check_output_dir(spec, PROJECTION_FILE)
         check_batch_commands(spec.compute)
         plan = _plan_projection(results, spec)
-    plan.results.close()
+    if plan.opened_here:
+        plan.results.close()
     field = plan.field
     grid = f"{field.sizes['lat']} x {field.sizes['lon']}" + (" (curvilinear)" if GRID_LAT in field.coords else "")
     lines = projection_plan_lines(spec.input.variable, plan.opened.files, field["time"].values, grid,
@@ -519,10 +560,13 @@ def check_projection(results: str | Path, spec: RunSpec) -> list[str]:
                                                    *warned]]
 
 
-def project(results: str | Path, spec: RunSpec, say: Callable[[str], None] = lambda line: None,
-            progress: bool = False) -> RunSummary:
-    """``climodes project``: the field of ``spec`` (its input and select) projected onto the modes of
-    ``results``, prepared with the preparation fitted there; writes ``<output.dir>/projection.nc``.
+def project(results: str | Path | xr.Dataset, spec: RunSpec, say: Callable[[str], None] = lambda line: None,
+            progress: bool = False, data: xr.DataArray | None = None, write: bool = True,
+            command: str | None = None) -> RunSummary:
+    """``climodes project``: the field of ``spec`` (its input and select, or ``data`` in place of its input)
+    projected onto the modes of ``results`` (a folder, its ``modes.nc`` or their Dataset), prepared with the
+    preparation fitted there; writes ``<output.dir>/projection.nc`` unless not to ``write``.  ``command``
+    is what made it, for the history (default: ``climodes project RESULTS CONFIG``).
 
     The output folder is claimed, staged and put in place as a run's results folder is (never a
     training run's folder); the field is read once, in blocks of latitude rows within
@@ -530,11 +574,12 @@ def project(results: str | Path, spec: RunSpec, say: Callable[[str], None] = lam
     """
     started = time.monotonic()
     out = Path(spec.output.dir)
-    with results_folder(spec, say, PROJECTION_FILE) as stage:
+    with results_folder(spec, say, PROJECTION_FILE) if write else contextlib.nullcontext() as stage:
         warned: list[str] = []
         with library_warnings(warned):
-            plan = _plan_projection(results, spec)
-        with contextlib.closing(plan.results) as trained:
+            plan = _plan_projection(results, spec, data)
+        with contextlib.closing(plan.results) if plan.opened_here else contextlib.nullcontext(plan.results) \
+                as trained:
             with library_warnings(warned):
                 opened = rechunked(plan.opened, {"time": -1, "lat": plan.rows, "lon": -1})
                 field = _new_field(spec, opened, trained, [])
@@ -545,28 +590,32 @@ def project(results: str | Path, spec: RunSpec, say: Callable[[str], None] = lam
             check_points(fraction, trained, field, plan.max_missing, plan.source)
             used = trained["point_status"].values.reshape(-1) == 2
             filled = int(round(float(np.sum(fraction[used])) * field.sizes["time"]))
-            notes = [ignored_sections_note(spec.source, plan.source), *plan.notes, *warned]
+            ignored = [ignored_sections_note(spec.source, plan.source)] if data is None else []
+            notes = [*ignored, *plan.notes, *warned]
             if filled:
                 notes.append(f"set {filled} missing values at {int(np.sum(fraction[used] > 0))} points to zero anomaly")
             extra = dict(method=f"projection onto the EOFs of {plan.source} ({plan.blocks})", notes=notes,
                          compute=session.description, elapsed=time.monotonic() - started,
                          points=f"{int(used.sum())} grid points of the modes; {filled} missing values set to zero "
                                 "anomaly",
-                         command=history("project", results, spec.source))
+                         command=command or history("project", plan.source if isinstance(results, xr.Dataset)
+                                                    else results, spec.source))
             ds = projection_dataset(projection_variables(trained, products, squares, field["time"]), opened, spec,
-                                    extra, time_bounds(field), plan.source.resolve(), trained)
+                                    extra, time_bounds(field), _named(plan.source), trained)
         for line in notes:
             say(f"note: {line}")
         headline = projection_headline(spec.input.variable, len(opened.files), field.sizes["time"], ds.sizes["mode"],
                                        plan.source, out)
         table = projection_table(ds)
         try:
-            write_netcdf(ds, stage / PROJECTION_FILE, opened.time_encoding)
-            (stage / "projection.log").write_text(
-                run_log(headline, table, [f"compute: {session.description}"], notes, spec.to_yaml()), encoding="utf-8")
+            if stage is not None:
+                write_netcdf(ds, stage / PROJECTION_FILE, opened.time_encoding)
+                (stage / "projection.log").write_text(
+                    run_log(headline, table, [f"compute: {session.description}"], notes, spec.to_yaml()),
+                    encoding="utf-8")
         except OSError as err:
             raise _cannot_write(spec, err) from None
-    return RunSummary(out, headline, table, notes)
+    return RunSummary(out, headline, table, notes, ds)
 
 
 def _time_encoding(results: xr.Dataset) -> dict:
@@ -583,11 +632,8 @@ def reconstruct(results: str | Path, modes: str, out: str | Path, anomalies: boo
     if out.suffix != ".nc":
         raise UserError(f"-o {out}: give a NetCDF file name ending in .nc")
     with open_results(source) as trained:
-        which = chosen_modes(modes, trained["mode"].values)
-        memory = (stored_config(trained).get("compute") or {}).get("memory", ComputeSection.memory)
-        data = reconstruction(trained, which, anomalies, run_memory(ComputeSection(memory=memory)))
         command = history("reconstruct", results, "--modes", modes, "-o", out, *(["--anomalies"] * anomalies))
-        ds = reconstruction_dataset(trained, data, which, anomalies, source.resolve(), command)
+        ds, which = rebuilt(trained, source, modes, anomalies, command)
         try:
             with dask.config.set(scheduler="synchronous"):  # one block at a time
                 write_file_atomically(out, lambda path: write_netcdf(ds, path, _time_encoding(trained),
@@ -595,6 +641,15 @@ def reconstruct(results: str | Path, modes: str, out: str | Path, anomalies: boo
         except OSError as err:
             raise UserError(f"-o {out}: cannot write it ({err.strerror or err}); nothing was written") from None
         return reconstruction_line(ds, modes_text(which), anomalies, out)
+
+
+def rebuilt(trained: xr.Dataset, source: Path, modes: str, anomalies: bool, command: str) -> tuple[xr.Dataset, list[int]]:
+    """The reconstruction from the ``modes`` (``1-3``, ``1,4``) of the results ``trained`` read from ``source``,
+    as a lazy CF dataset (``command`` goes to its history), and the mode numbers chosen."""
+    which = chosen_modes(modes, trained["mode"].values)
+    memory = (stored_config(trained).get("compute") or {}).get("memory", ComputeSection.memory)
+    data = reconstruction(trained, which, anomalies, run_memory(ComputeSection(memory=memory)))
+    return reconstruction_dataset(trained, data, which, anomalies, _named(source), command), which
 
 
 def table(results: str | Path, out: str | Path, overwrite: bool = False) -> str:

@@ -42,14 +42,30 @@ def open_results(path: str | Path) -> xr.Dataset:
     except Exception as err:  # any backend's error: the file is not readable NetCDF
         reason = str(err).splitlines()[0] if str(err) else type(err).__name__
         raise UserError(f"{target}: cannot be read as NetCDF ({reason})") from None
+    try:
+        check_results(ds, target)
+    except UserError:
+        ds.close()
+        raise
+    return ds
+
+
+def check_results(ds: xr.Dataset, where: str | Path) -> None:
+    """Refuse ``ds`` (named ``where`` in messages) unless it holds the variables of a climodes results file.
+
+    Raises
+    ------
+    UserError
+        If a variable is missing, has other dimensions, or another program made the file.
+    """
+    if not isinstance(ds, xr.Dataset):
+        raise UserError(f"expected climodes results: a results folder, its {RESULTS_FILE} or the Dataset of a run; "
+                        f"got {type(ds).__name__}")
     missing = [name for name in _SHAPES if name not in ds]
     if missing or not str(ds.attrs.get("source", "")).startswith("climodes"):
-        ds.close()
         what = f"no {', '.join(missing)}" if missing else f"made by {ds.attrs.get('source', 'another program')!r}"
-        raise UserError(f"{target}: not a climodes results file ({what}); give a folder written by climodes run")
+        raise UserError(f"{where}: not a climodes results file ({what}); give a folder written by climodes run")
     for name, ndim in _SHAPES.items():
         if ds[name].ndim != ndim or ds[name].dims[0] != "mode":
-            ds.close()
-            raise UserError(f"{target}: {name} has dimensions {ds[name].dims}, not mode first and {ndim} in all; "
+            raise UserError(f"{where}: {name} has dimensions {ds[name].dims}, not mode first and {ndim} in all; "
                             "the file was changed after climodes wrote it; run climodes again")
-    return ds
