@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import ast
+import json
 import os
 import re
 import shutil
@@ -241,6 +242,8 @@ def test_nothing_is_written_unless_asked(tmp_path, small_field, monkeypatch):
     assert set(before) <= set(_listing(tmp_path))
     climodes.analyse(field, modes={"count": 2}, write=True)
     assert {p.split("/")[0] for p in set(_listing(tmp_path)) - set(before)} == {"out", "results"}
+    manifests = {json.loads((tmp_path / d / ".climodes-results.json").read_text())["config"] for d in ("out", "results")}
+    assert manifests == {str(config), "(a config given from Python)"}  # never a file that does not exist
 
 
 def test_a_lazy_dataarray_is_analysed_as_a_loaded_one(small_field):

@@ -316,7 +316,8 @@ _AT_FDCWD = -100
 def _run_identity(config: Path) -> dict:
     """Who is writing: the run id, host, pid, start time, config and version carried by its claim and mark."""
     return {"kind": _KIND, "run_id": secrets.token_hex(8), "host": socket.gethostname(), "pid": os.getpid(),
-            "started": _now(), "config": str(config), "climodes": __version__}
+            "started": _now(), "config": str(config) if config.is_file() else "(a config given from Python)",
+            "climodes": __version__}
 
 
 def _now() -> str:
