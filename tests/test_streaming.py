@@ -242,9 +242,15 @@ def test_a_budget_too_small_is_a_clear_error():
         plan_solver((3650, 361, 720), 10, "exact", int(2e9), 2)
 
 
+@pytest.mark.parametrize("held", [True, False])
 @pytest.mark.parametrize("method, passes", [("exact", 1), ("gram", 2), ("randomized", None)])
-def test_reads_per_solver(tmp_path, cli, values_read, method, passes):
-    """Count the values read from the files: one pass per pass of the algorithm, no more."""
+def test_reads_per_solver(tmp_path, cli, values_read, monkeypatch, method, passes, held):
+    """Count the values read from the files: once when the field fits compute.memory (``held``), else
+    one pass per pass of the algorithm (these files are stored contiguously: read in rows), no more."""
+    if not held:
+        from climodes.storage import plan_reading
+
+        monkeypatch.setattr("climodes.pipeline.plan_reading", lambda *args, **kw: plan_reading(*args[:4], 0, True))
     lat = np.linspace(-60, 60, 25)
     lon = np.arange(0, 360, 10.0)
     paths = []
@@ -261,7 +267,7 @@ def test_reads_per_solver(tmp_path, cli, values_read, method, passes):
     if passes is None:  # the randomized solver says how many passes it needed to converge
         passes = int(re.search(r"converged in (\d) passes", ds.attrs["climodes_method"]).group(1))
         assert 2 <= passes <= 2 + POWER_ITERATIONS
-    assert values_read["values"] == passes * 144 * lat.size * lon.size
+    assert values_read["values"] == (1 if held else passes) * 144 * lat.size * lon.size
     assert ds.attrs["climodes_method"].startswith(method)
     assert "chosen because" in ds.attrs["climodes_method"]
 

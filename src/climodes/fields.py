@@ -29,6 +29,7 @@ from climodes.config import InputSection, SelectSection
 from climodes.dates import in_period
 from climodes.errors import UserError
 from climodes.grid import GRID_LAT, GRID_LON, GRID_X, GRID_Y
+from climodes.storage import Storage, storage_of
 
 _LAT_UNITS = {"degrees_north", "degree_north", "degree_n", "degrees_n", "degreen", "degreesn"}
 _LON_UNITS = {"degrees_east", "degree_east", "degree_e", "degrees_e", "degreee", "degreese"}
@@ -63,6 +64,7 @@ class OpenedField:
     grid: tuple[str, str] | None = None  # the files' names of 2-D latitude and longitude (curvilinear grids)
     grid_mapping: xr.DataArray | None = None  # the files' CF grid-mapping variable (curvilinear grids)
     opening_notes: list[str] = field(default_factory=list)  # what opening the files changed, to say every time
+    storages: list[Storage] = field(default_factory=list)  # how each file stores the field, in time order
     notes: list[str] = field(default_factory=list)
 
 
@@ -414,7 +416,7 @@ def _grid_mapping(da: xr.DataArray, ds: xr.Dataset) -> xr.DataArray | None:
 
 def _check_agreement(first: tuple, other: tuple, variable: str) -> None:
     """Refuse files whose calendars or units differ from those of the first file (both named)."""
-    (path_a, a, encoding_a), (path_b, b, encoding_b) = first, other
+    (path_a, a, encoding_a, _), (path_b, b, encoding_b, _) = first, other
     calendar_a, calendar_b = _calendar(encoding_a), _calendar(encoding_b)
     kind_a, kind_b = a["time"].dtype.kind, b["time"].dtype.kind  # "M": numpy dates, "O": cftime dates
     # standard and proleptic_gregorian differ only before 1582-10-15, and xarray gives dates in numpy's
@@ -452,6 +454,7 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
     for path in paths:
         da, ds = _open_one(path, spec.variable)
         axes, grid = find_axes(da, path)
+        storage = storage_of(da, axes)
         if names and axes != names:
             raise UserError(f"{path}: axes are named {axes}, but {paths[0]} names them {names}; make them agree")
         names = axes
@@ -475,10 +478,10 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
             where = next(i for i in range(1, steps.size) if not steps[i] > steps[i - 1])
             raise UserError(f"{path}: time step {where} ({str(steps[where])[:19]}) repeats or goes back in time; "
                             "remove the duplicate or sort the steps")
-        pieces.append((path, da, ds[axes["time"]].encoding))
+        pieces.append((path, da, ds[axes["time"]].encoding, storage))
         _check_agreement(pieces[0], pieces[-1], spec.variable)
     pieces.sort(key=lambda p: p[1]["time"].values[0])
-    for (path_a, a, _), (path_b, b, _) in zip(pieces, pieces[1:]):
+    for (path_a, a, _, _), (path_b, b, _, _) in zip(pieces, pieces[1:]):
         for axis in ("lat", "lon", GRID_LAT, GRID_LON):
             if axis not in a.coords:
                 continue
@@ -490,7 +493,7 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
     files = [InputFile(str(Path(p).resolve()), os.stat(p).st_size, os.stat(p).st_mtime) for p in paths]
     encoding = {k: v for k, v in pieces[0][2].items() if k in ("units", "calendar", "dtype")}
     opened = OpenedField(xr.DataArray(), files, names, encoding, pieces=[p[1] for p in pieces], grid=grid_names,
-                         grid_mapping=grid_mapping, opening_notes=notes)
+                         grid_mapping=grid_mapping, opening_notes=notes, storages=[p[3] for p in pieces])
     opened.restamped = any(moved)
     return rechunked(opened, spec.chunks)
 
