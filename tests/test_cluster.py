@@ -182,7 +182,7 @@ def test_the_job_asks_for_what_the_plan_needs(tmp_path, cli, fresh_process):
     assert code == 0 and "--mem=512M" in out and "exact solver" in out
     folder = tmp_path / "big"
     folder.mkdir()
-    big = write_config(folder, many_files(folder, steps=2000, nlat=32, nlon=64, files=2),
+    big = write_config(folder, many_files(folder, steps=2400, nlat=32, nlon=64, files=2),
                        modes={"count": 3, "method": "gram"}, compute={"workers": 2, "memory": "1GB"})
     code, out, err = cli("submit", "--dry-run", "--system", "slurm", big)
     assert code == 0, err

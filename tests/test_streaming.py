@@ -242,6 +242,28 @@ def test_a_budget_too_small_is_a_clear_error():
         plan_solver((3650, 361, 720), 10, "exact", int(2e9), 2)
 
 
+def test_the_gram_plan_is_the_gram_matrix_and_a_few_blocks():
+    """3650 daily steps x 1 degree (0.95 GB in float32): its Gram matrix is 0.11 GB; the plan holds a few of
+    them (the sum, one product per worker, the eigendecomposition's) and blocks, within 1.5 GB."""
+    plan = plan_solver((3650, 181, 360), 6, "gram", int(1.5e9), 2, in_use=int(0.15e9))
+    assert plan.method == "gram" and plan.memory <= 1.5e9
+    gram = 3650**2 * 8
+    assert plan.memory - 0.15e9 <= 2 * (5 * gram + 2 * 28 * 3650 * plan.lat_rows * 360) / 0.7
+
+
+def test_the_gram_matrix_added_in_place_is_the_product():
+    """BLAS dsyrk into the upper triangle, then the lower one copied: numpy's ``a @ a.T`` (the reference)."""
+    from climodes.blocks import add_gram, symmetric
+
+    rng = np.random.default_rng(1)
+    blocks = [rng.standard_normal((1100, width)) for width in (7, 300, 0)]
+    gram = np.zeros((1100, 1100), order="F")
+    for block in blocks:
+        add_gram(gram, block)
+    expected = sum(block @ block.T for block in blocks)
+    np.testing.assert_allclose(symmetric(gram), expected, rtol=1e-12, atol=1e-10)
+
+
 @pytest.mark.parametrize("held", [True, False])
 @pytest.mark.parametrize("method, passes", [("exact", 1), ("gram", 2), ("randomized", None)])
 def test_reads_per_solver(tmp_path, cli, values_read, monkeypatch, method, passes, held):
