@@ -1,4 +1,4 @@
-"""Open a field lazily from one or many NetCDF files, and select from it.
+"""Open a field lazily from one or many NetCDF files (or Zarr stores), and select from it.
 
 The field comes back as a dask-backed :class:`xarray.DataArray` with dimensions
 renamed to ``(time, lat, lon)`` in that order, whatever the files call them or
@@ -68,8 +68,25 @@ class OpenedField:
     notes: list[str] = field(default_factory=list)
 
 
+def is_zarr(path: str) -> bool:
+    """Whether ``path`` names a Zarr store (a folder whose name ends in ``.zarr``)."""
+    return str(path).rstrip("/").endswith(".zarr")
+
+
+def _engine(path: str) -> str:
+    return "zarr" if is_zarr(path) else "netcdf4"
+
+
+def _size_of(path: str) -> int:
+    """Bytes of a file, or of every file in a Zarr store."""
+    if not os.path.isdir(path):
+        return os.stat(path).st_size
+    return sum(os.stat(os.path.join(folder, name)).st_size for folder, _, names in os.walk(path) for name in names)
+
+
 def expand_paths(patterns: list[str]) -> list[str]:
-    """Expand glob patterns into a sorted, duplicate-free list of existing files.
+    """Expand glob patterns into a sorted, duplicate-free list of existing files (or Zarr stores: folders
+    named ``*.zarr``).
 
     Raises
     ------
@@ -82,7 +99,7 @@ def expand_paths(patterns: list[str]) -> list[str]:
             matches = sorted(glob.glob(pattern))
             if not matches:
                 raise UserError(f"input.paths: {pattern!r} matches no file; check the folder and the pattern")
-        elif os.path.isfile(pattern):
+        elif os.path.isfile(pattern) or (is_zarr(pattern) and os.path.isdir(pattern)):
             matches = [pattern]
         else:
             raise UserError(f"input.paths: {pattern}: no such file; check the path (relative paths are read "
@@ -244,7 +261,7 @@ def pick_extra_dims(da: xr.DataArray, axes: dict[str, str], choice: SelectSectio
 def _refuse_undecodable_times(path: str) -> None:
     """If ``path`` failed to open because a time variable's units cannot be turned into dates, say which."""
     try:
-        raw = xr.open_dataset(path, engine="netcdf4", decode_times=False, decode_timedelta=False)
+        raw = xr.open_dataset(path, engine=_engine(path), decode_times=False, decode_timedelta=False)
     except Exception:  # not a time problem: the caller reports the file as unreadable
         return
     with raw:
@@ -263,10 +280,13 @@ def _refuse_undecodable_times(path: str) -> None:
 
 def _open_one(path: str, variable: str) -> tuple[xr.DataArray, xr.Dataset]:
     try:
-        ds = xr.open_dataset(path, engine="netcdf4", decode_timedelta=False)
-    except Exception as err:  # netCDF4, h5py and xarray each raise their own types
+        ds = xr.open_dataset(path, engine=_engine(path), decode_timedelta=False)
+    except Exception as err:  # netCDF4, h5py, zarr and xarray each raise their own types
         _refuse_undecodable_times(path)
         reason = str(err).splitlines()[0] if str(err) else type(err).__name__
+        if is_zarr(path):
+            raise UserError(f"{path}: cannot be read as a Zarr store ({reason}); check that the store is "
+                            "complete") from None
         raise UserError(f"{path}: cannot be read as NetCDF ({reason}); check that the file is complete") from None
     if variable not in ds.data_vars:
         names = ", ".join(sorted(map(str, ds.data_vars))) or "none"
@@ -490,7 +510,7 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
                                 "regrid the files to one grid")
         if b["time"].values[0] <= a["time"].values[-1]:
             raise UserError(f"{path_b}: its time steps overlap those of {path_a}; remove the duplicate steps")
-    files = [InputFile(str(Path(p).resolve()), os.stat(p).st_size, os.stat(p).st_mtime) for p in paths]
+    files = [InputFile(str(Path(p).resolve()), _size_of(p), os.stat(p).st_mtime) for p in paths]
     encoding = {k: v for k, v in pieces[0][2].items() if k in ("units", "calendar", "dtype")}
     opened = OpenedField(xr.DataArray(), files, names, encoding, pieces=[p[1] for p in pieces], grid=grid_names,
                          grid_mapping=grid_mapping, opening_notes=notes, storages=[p[3] for p in pieces])
