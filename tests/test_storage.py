@@ -195,3 +195,31 @@ def test_a_broken_zarr_store_is_one_line(tmp_path, cli):
     code, out, err = cli("run", config)
     assert code == 2 and err.count("\n") == 1 and "broken.zarr: cannot be read as a Zarr store" in err
     assert sorted(p.name for p in store.iterdir()) == ["junk.txt"]  # the input is not changed
+
+
+def test_the_scratch_copy_gives_back_what_was_stored(tmp_path):
+    """Time blocks in, any block of rows (and any slice) out: the same values as the numpy array (the
+    reference), the blocks of rows stored one after another."""
+    from climodes.storage import ScratchArray
+
+    field = np.random.default_rng(2).standard_normal((50, 11, 7)).astype(np.float32)
+    scratch = ScratchArray(tmp_path / "copy", field.shape, field.dtype, rows=3)
+    for start in range(0, 50, 12):
+        scratch[start:start + 12] = field[start:start + 12]
+    assert (tmp_path / "copy").stat().st_size == field.nbytes
+    for key in [(slice(None), slice(3, 6), slice(None)), (slice(None), slice(9, 11), slice(None)),
+                (slice(5, 17), slice(2, 10), slice(1, 4)), (slice(0, 0), slice(0, 0), slice(0, 0))]:
+        np.testing.assert_array_equal(scratch[key], field[key])
+
+
+def test_the_files_chunk_cache_is_bounded(files):
+    """Each open file keeps at most CHUNK_CACHE bytes of decompressed chunks (netCDF4.get_chunk_cache, the
+    library's own report), not netCDF-C's default of 64 MiB."""
+    from climodes.config import InputSection
+    from climodes.fields import open_field
+    from climodes.storage import CHUNK_CACHE
+
+    netCDF4.set_chunk_cache(64 * 2**20)
+    opened = open_field(InputSection(paths=[str(p) for p in files["steps"]], variable="tas"))
+    assert netCDF4.get_chunk_cache()[0] == CHUNK_CACHE
+    assert [s.chunks for s in opened.storages] == [(1, 25, 36)] * 2

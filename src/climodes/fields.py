@@ -29,7 +29,7 @@ from climodes.config import InputSection, SelectSection
 from climodes.dates import in_period
 from climodes.errors import UserError
 from climodes.grid import GRID_LAT, GRID_LON, GRID_X, GRID_Y
-from climodes.storage import Storage, storage_of
+from climodes.storage import Storage, limit_chunk_cache, storage_of
 
 _LAT_UNITS = {"degrees_north", "degree_north", "degree_n", "degrees_n", "degreen", "degreesn"}
 _LON_UNITS = {"degrees_east", "degree_east", "degree_e", "degrees_e", "degreee", "degreese"}
@@ -468,6 +468,7 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
     cuts it otherwise.
     """
     paths = expand_paths(spec.paths)
+    limit_chunk_cache()
     pieces, moved, notes = [], [], []
     names: dict[str, str] = {}
     grid_names, grid_mapping = None, None

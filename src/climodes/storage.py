@@ -27,6 +27,7 @@ import numpy as np
 import xarray as xr
 
 ROWS, TIME, MEMORY = "rows", "time", "memory"
+CHUNK_CACHE = 16 * 2**20  # bytes of decompressed chunks the HDF5 library keeps per open file (its default: 64 MiB)
 WHOLE_MAP = 0.5  # a chunk holding at least this share of a map counts as holding whole maps
 _FILTERS = ("zlib", "szip", "zstd", "bzip2", "blosc", "compressor", "compressors", "filters")
 
@@ -70,6 +71,17 @@ def storage_of(da: xr.DataArray, axes: dict[str, str]) -> Storage:
     by_dim = dict(zip(da.dims, (int(s) for s in sizes)))
     chunks = tuple(by_dim.get(axes[axis], 1) for axis in ("time", "lat", "lon"))
     return Storage(chunks, compressed, grid)
+
+
+def limit_chunk_cache() -> None:
+    """Keep at most :data:`CHUNK_CACHE` bytes of decompressed chunks per NetCDF file opened from now on in
+    this process.  The files stay open for the whole run, each with its cache, so the library's default
+    (64 MiB a file) would hold 0.3 GB for five files, outside any plan; the plan counts this much a file."""
+    import netCDF4
+
+    size, elements, preemption = netCDF4.get_chunk_cache()
+    if size != CHUNK_CACHE:
+        netCDF4.set_chunk_cache(CHUNK_CACHE, elements, preemption)
 
 
 @dataclass(frozen=True)
@@ -121,22 +133,50 @@ def plan_reading(storages: list[Storage], shape: tuple[int, int, int], itemsize:
 
 
 class ScratchArray:
-    """A ``.npy`` file on disk as an array dask can read blocks from and store blocks into.
+    """A scratch file holding a ``(time, lat, lon)`` field as consecutive blocks of ``rows`` latitude rows,
+    each ``(time, rows, lon)`` in C order, as an array dask can read blocks from and store time blocks into.
 
-    Each access opens the file as a memory map, so the object pickles small and works in any worker
-    process that sees the folder.
+    A block of rows is then one contiguous read, and a block of time steps one contiguous write per block
+    of rows; plain file reads and writes, no memory map, so the process's resident memory holds what it
+    reads and no more.  The object pickles small and works in any worker process that sees the folder.
     """
 
-    def __init__(self, path: Path, shape: tuple[int, ...], dtype):
-        self.path, self.shape, self.dtype, self.ndim = path, tuple(shape), np.dtype(dtype), len(shape)
+    def __init__(self, path: Path, shape: tuple[int, int, int], dtype, rows: int):
+        self.path, self.shape, self.dtype, self.ndim, self.rows = path, tuple(shape), np.dtype(dtype), 3, rows
+        with open(path, "wb") as f:
+            f.truncate(int(np.prod(shape)) * self.dtype.itemsize)
+
+    def _blocks(self, first: int, last: int) -> Iterator[tuple[int, int, int]]:
+        """The blocks of rows meeting rows ``first`` to ``last`` (excluded): each one's first and last row
+        and its offset in bytes."""
+        steps, nlat, nlon = self.shape
+        for start in range(first // self.rows * self.rows, last, self.rows):
+            yield start, min(start + self.rows, nlat), start * steps * nlon * self.dtype.itemsize
 
     def __getitem__(self, key) -> np.ndarray:
-        return np.array(np.load(self.path, mmap_mode="r")[key])
+        key = (key if isinstance(key, tuple) else (key,)) + (slice(None),) * 3
+        (t0, t1, _), (r0, r1, _), _ = (k.indices(n) for k, n in zip(key[:3], self.shape))
+        steps, _, nlon = self.shape
+        pieces = []
+        with open(self.path, "rb") as f:
+            for start, stop, offset in self._blocks(r0, r1):
+                width = stop - start
+                f.seek(offset + t0 * width * nlon * self.dtype.itemsize)
+                count = max(t1 - t0, 0) * width * nlon
+                block = np.fromfile(f, dtype=self.dtype, count=count).reshape(max(t1 - t0, 0), width, nlon)
+                pieces.append(block[:, max(r0 - start, 0):min(r1, stop) - start])
+        out = np.concatenate(pieces, axis=1) if pieces else np.empty((max(t1 - t0, 0), 0, nlon), self.dtype)
+        return out[(slice(None), slice(None), key[2])]
 
     def __setitem__(self, key, values) -> None:
-        target = np.load(self.path, mmap_mode="r+")
-        target[key] = values
-        target.flush()
+        """Write whole maps of some steps: ``key`` a slice of time steps."""
+        t0, _, _ = (key[0] if isinstance(key, tuple) else key).indices(self.shape[0])
+        nlon = self.shape[2]
+        values = np.asarray(values, dtype=self.dtype)
+        with open(self.path, "r+b") as f:
+            for start, stop, offset in self._blocks(0, self.shape[1]):
+                f.seek(offset + t0 * (stop - start) * nlon * self.dtype.itemsize)
+                np.ascontiguousarray(values[:, start:stop]).tofile(f)
 
 
 def _put(target, where: slice, block: np.ndarray) -> None:
@@ -147,18 +187,17 @@ def _put(target, where: slice, block: np.ndarray) -> None:
 def staged(field: xr.DataArray, reading: Reading, rows: int, scratch: Path,
            progress: Callable[[str], ContextManager]) -> Iterator[xr.DataArray]:
     """``field`` (lazy, cut in time blocks of whole chunks) read once into memory or into a scratch file
-    in ``scratch``, per ``reading``, and given back chunked in blocks of ``rows`` latitude rows with every
-    time step; the scratch file is removed when the block ends.  ``progress`` is called around the read."""
+    in ``scratch`` (:class:`ScratchArray`), per ``reading``, and given back chunked in blocks of ``rows``
+    latitude rows with every time step; the scratch file is removed when the block ends.  ``progress`` is called around the read."""
     if reading.order == ROWS:
         yield field
         return
-    path = scratch / ".field-scratch.npy"
+    path = scratch / ".field-scratch"
     try:
         if reading.order == MEMORY:
             target = np.empty(field.shape, dtype=field.dtype)
         else:
-            np.lib.format.open_memmap(path, mode="w+", dtype=field.dtype, shape=field.shape).flush()
-            target = ScratchArray(path, field.shape, field.dtype)
+            target = ScratchArray(path, field.shape, field.dtype, rows)
         data = field.data.rechunk({1: -1, 2: -1})
         starts = np.cumsum((0,) + data.chunks[0])
         writes = [dask.delayed(_put, pure=False)(target, slice(a, b), block)
