@@ -212,14 +212,30 @@ def test_the_scratch_copy_gives_back_what_was_stored(tmp_path):
         np.testing.assert_array_equal(scratch[key], field[key])
 
 
-def test_the_files_chunk_cache_is_bounded(files):
-    """Each open file keeps at most CHUNK_CACHE bytes of decompressed chunks (netCDF4.get_chunk_cache, the
-    library's own report), not netCDF-C's default of 64 MiB."""
-    from climodes.config import InputSection
-    from climodes.fields import open_field
-    from climodes.storage import CHUNK_CACHE
+def test_the_copy_is_read_with_a_small_chunk_cache_and_the_files_closed_after(tmp_path, files):
+    """While the files are read once, netCDF4 (its own get_chunk_cache) reports the small cache; after, the
+    library's setting is back, the files are closed, and the copy holds the values the files hold."""
+    import contextlib
 
-    netCDF4.set_chunk_cache(64 * 2**20)
+    from climodes.config import InputSection
+    from climodes.fields import open_field, rechunked
+    from climodes.storage import READ_CACHE, staged
+
+    before = netCDF4.get_chunk_cache()
     opened = open_field(InputSection(paths=[str(p) for p in files["steps"]], variable="tas"))
-    assert netCDF4.get_chunk_cache()[0] == CHUNK_CACHE
-    assert [s.chunks for s in opened.storages] == [(1, 25, 36)] * 2
+    field = rechunked(opened, {"time": 12, "lat": -1, "lon": -1}).data
+    seen = []
+
+    @contextlib.contextmanager
+    def progress(label):
+        seen.append(netCDF4.get_chunk_cache()[0])
+        yield
+
+    closed = []
+    with staged(field, Reading(TIME, "as a test asks", 12), 5, tmp_path, progress,
+                lambda: closed.append(opened.close_files())) as copy:
+        assert seen == [READ_CACHE] and len(closed) == 2
+        assert netCDF4.get_chunk_cache() == before
+        assert copy.chunks[1] == (5,) * 5
+        np.testing.assert_array_equal(copy.values, field.values)
+    assert list(tmp_path.iterdir()) == []  # the scratch file is gone

@@ -31,7 +31,6 @@ import numpy as np
 import xarray as xr
 
 from climodes.prepare import TimeSteps, centre
-from climodes.storage import limit_chunk_cache
 from climodes.weights import usable_points
 
 
@@ -195,7 +194,6 @@ class FieldBlock:
         self.data = data
 
     def read(self) -> np.ndarray:
-        limit_chunk_cache()  # in a worker process, before it opens the files
         return np.asarray(self.data.compute(scheduler="synchronous"))
 
 

@@ -29,7 +29,7 @@ from climodes.config import InputSection, SelectSection
 from climodes.dates import in_period
 from climodes.errors import UserError
 from climodes.grid import GRID_LAT, GRID_LON, GRID_X, GRID_Y
-from climodes.storage import Storage, limit_chunk_cache, storage_of
+from climodes.storage import Storage, storage_of
 
 _LAT_UNITS = {"degrees_north", "degree_north", "degree_n", "degrees_n", "degreen", "degreesn"}
 _LON_UNITS = {"degrees_east", "degree_east", "degree_e", "degrees_e", "degreee", "degreese"}
@@ -65,6 +65,13 @@ class OpenedField:
     grid_mapping: xr.DataArray | None = None  # the files' CF grid-mapping variable (curvilinear grids)
     opening_notes: list[str] = field(default_factory=list)  # what opening the files changed, to say every time
     storages: list[Storage] = field(default_factory=list)  # how each file stores the field, in time order
+    datasets: list[xr.Dataset] = field(default_factory=list)  # the files as opened (closing one frees its caches;
+    # it opens again when read)
+
+    def close_files(self) -> None:
+        """Close the files (their chunk caches go with them); a later read opens them again."""
+        for ds in self.datasets:
+            ds.close()
     notes: list[str] = field(default_factory=list)
 
 
@@ -468,12 +475,12 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
     cuts it otherwise.
     """
     paths = expand_paths(spec.paths)
-    limit_chunk_cache()
-    pieces, moved, notes = [], [], []
+    pieces, moved, notes, datasets = [], [], [], []
     names: dict[str, str] = {}
     grid_names, grid_mapping = None, None
     for path in paths:
         da, ds = _open_one(path, spec.variable)
+        datasets.append(ds)
         axes, grid = find_axes(da, path)
         storage = storage_of(da, axes)
         if names and axes != names:
@@ -514,7 +521,8 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
     files = [InputFile(str(Path(p).resolve()), _size_of(p), os.stat(p).st_mtime) for p in paths]
     encoding = {k: v for k, v in pieces[0][2].items() if k in ("units", "calendar", "dtype")}
     opened = OpenedField(xr.DataArray(), files, names, encoding, pieces=[p[1] for p in pieces], grid=grid_names,
-                         grid_mapping=grid_mapping, opening_notes=notes, storages=[p[3] for p in pieces])
+                         grid_mapping=grid_mapping, opening_notes=notes, storages=[p[3] for p in pieces],
+                         datasets=datasets)
     opened.restamped = any(moved)
     return rechunked(opened, spec.chunks)
 

@@ -10,7 +10,6 @@ refuses too.
 from __future__ import annotations
 
 import contextlib
-import dataclasses
 import time
 import warnings
 from dataclasses import dataclass, field
@@ -102,7 +101,7 @@ from climodes.reuse import (
 from climodes.rotation import rotated_variables
 from climodes.significance import NoiseTest, fit_red_noise, noise_variables, red_noise_test
 from climodes.solvers import POWER_ITERATIONS, Decomposition, SolverPlan, plan_solver, solve
-from climodes.storage import CHUNK_CACHE, ROWS, TIME, Reading, plan_reading, scratch_room, staged
+from climodes.storage import ROWS, TIME, Reading, plan_reading, scratch_room, staged
 from climodes.weights import field_weights
 
 # warnings meant for programmers, not for someone running climodes: deprecations and dask's chunking
@@ -175,7 +174,6 @@ def _plan(spec: RunSpec) -> Planned:
     opened = open_field(spec.input, spec.select)
     field, along_time, notes = _prepared(spec, opened)
     room = capacity(spec.compute)
-    room = dataclasses.replace(room, in_use=room.in_use + len(opened.files) * CHUNK_CACHE)  # filled as it reads
     plan = plan_solver(field.shape, spec.modes.count, spec.modes.method, room.memory, room.workers,
                        in_use=room.in_use, fitted_per_point=along_time.values_per_point)
     steps, points = field.sizes["time"], field.sizes["lat"] * field.sizes["lon"]
@@ -246,7 +244,7 @@ def _solve(spec: RunSpec, planned: Planned, progress: bool, scratch: Path):
     limit = walltime(spec.compute, plan.method, field.shape, spec.modes.count, field.dtype.itemsize,
                      planned.room.workers)
     with running(spec.compute, progress, limit, spec.source.parent) as session:
-        with staged(field, reading, plan.lat_rows or -1, scratch, session.during) as field:
+        with staged(field, reading, plan.lat_rows or -1, scratch, session.during, planned.opened.close_files) as field:
             modes, result, counts = solve(field, planned.weights, spec.modes.count, spec.prepare.max_missing, plan,
                                           spec.modes.seed, session.during, along_time)
         tested = _red_noise(spec, result, planned.weights, field.sizes["time"], session.during)

@@ -27,7 +27,7 @@ import numpy as np
 import xarray as xr
 
 ROWS, TIME, MEMORY = "rows", "time", "memory"
-CHUNK_CACHE = 16 * 2**20  # bytes of decompressed chunks the HDF5 library keeps per open file (its default: 64 MiB)
+READ_CACHE = 4 * 2**20  # bytes of decompressed chunks each file keeps while read once (netCDF-C's default: 64 MiB)
 WHOLE_MAP = 0.5  # a chunk holding at least this share of a map counts as holding whole maps
 _FILTERS = ("zlib", "szip", "zstd", "bzip2", "blosc", "compressor", "compressors", "filters")
 
@@ -73,15 +73,17 @@ def storage_of(da: xr.DataArray, axes: dict[str, str]) -> Storage:
     return Storage(chunks, compressed, grid)
 
 
-def limit_chunk_cache() -> None:
-    """Keep at most :data:`CHUNK_CACHE` bytes of decompressed chunks per NetCDF file opened from now on in
-    this process.  The files stay open for the whole run, each with its cache, so the library's default
-    (64 MiB a file) would hold 0.3 GB for five files, outside any plan; the plan counts this much a file."""
+@contextlib.contextmanager
+def _chunk_cache(size: int) -> Iterator[None]:
+    """NetCDF files opened meanwhile keep at most ``size`` bytes of decompressed chunks each."""
     import netCDF4
 
-    size, elements, preemption = netCDF4.get_chunk_cache()
-    if size != CHUNK_CACHE:
-        netCDF4.set_chunk_cache(CHUNK_CACHE, elements, preemption)
+    before = netCDF4.get_chunk_cache()
+    netCDF4.set_chunk_cache(size, before[1], before[2])
+    try:
+        yield
+    finally:
+        netCDF4.set_chunk_cache(*before)
 
 
 @dataclass(frozen=True)
@@ -185,10 +187,15 @@ def _put(target, where: slice, block: np.ndarray) -> None:
 
 @contextlib.contextmanager
 def staged(field: xr.DataArray, reading: Reading, rows: int, scratch: Path,
-           progress: Callable[[str], ContextManager]) -> Iterator[xr.DataArray]:
+           progress: Callable[[str], ContextManager], close_files: Callable[[], None]) -> Iterator[xr.DataArray]:
     """``field`` (lazy, cut in time blocks of whole chunks) read once into memory or into a scratch file
     in ``scratch`` (:class:`ScratchArray`), per ``reading``, and given back chunked in blocks of ``rows``
-    latitude rows with every time step; the scratch file is removed when the block ends.  ``progress`` is called around the read."""
+    latitude rows with every time step; the scratch file is removed when the block ends.  ``progress`` is
+    called around the read.
+
+    Each chunk is read once, so the files are read with a small chunk cache (:data:`READ_CACHE`):
+    ``close_files`` closes them before (they open again as they are read) and after the read, which
+    frees their caches (the library's default, 64 MiB a file, would stay held for the whole run)."""
     if reading.order == ROWS:
         yield field
         return
@@ -202,8 +209,10 @@ def staged(field: xr.DataArray, reading: Reading, rows: int, scratch: Path,
         starts = np.cumsum((0,) + data.chunks[0])
         writes = [dask.delayed(_put, pure=False)(target, slice(a, b), block)
                   for a, b, block in zip(starts[:-1], starts[1:], data.to_delayed().ravel())]
-        with progress("reading the field once, in the files' own order"):
+        close_files()
+        with _chunk_cache(READ_CACHE), progress("reading the field once, in the files' own order"):
             dask.compute(*writes)
+        close_files()
         yield field.copy(data=dask.array.from_array(target, chunks=(-1, rows, -1), name=False, asarray=False))
     finally:
         path.unlink(missing_ok=True)
