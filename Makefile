@@ -26,3 +26,4 @@ clean:
 
 bench: $(STAMP)
 	$(BIN)/python benchmarks/run.py
+	$(BIN)/python benchmarks/layouts.py

@@ -54,8 +54,12 @@ def land(lat: np.ndarray, lon: np.ndarray) -> np.ndarray:
     return (np.floor(cols * step / 20) + np.floor(rows * step / 15)) % 3 == 0
 
 
-def make_field(name: str, steps: int, step_deg: float, files: int, seed: int = 0, sea: bool = False) -> list[Path]:
-    """Write (once) ``files`` NetCDF files of a ``steps`` x grid field; return their paths."""
+def make_field(name: str, steps: int, step_deg: float, files: int, seed: int = 0, sea: bool = False,
+               chunks: tuple[int, int, int] | None = None, compressed: bool = False) -> list[Path]:
+    """Write (once) ``files`` NetCDF files of a ``steps`` x grid field; return their paths.
+
+    ``chunks`` (time, lat, lon; -1 for the whole axis) stores the field in chunks, zlib level 4 with the
+    shuffle filter when ``compressed``; by default it is stored contiguously, uncompressed."""
     folder = DATA / name
     paths = [folder / f"{name}_{i:02d}.nc" for i in range(files)]
     if all(p.exists() for p in paths):
@@ -80,7 +84,13 @@ def make_field(name: str, steps: int, step_deg: float, files: int, seed: int = 0
                 v = nc.createVariable(axis, "f8", (axis,))
                 v.units, v.standard_name = units, {"lat": "latitude", "lon": "longitude"}[axis]
                 v[:] = values
-            field = nc.createVariable("tas", "f4", ("time", "lat", "lon"))
+            if chunks is None:
+                layout = {"contiguous": True}
+            else:
+                whole = (last - first, lat.size, lon.size)
+                layout = {"chunksizes": tuple(min(n, c if c > 0 else n) for c, n in zip(chunks, whole)),
+                          "zlib": compressed, "complevel": 4 if compressed else 0, "shuffle": compressed}
+            field = nc.createVariable("tas", "f4", ("time", "lat", "lon"), **layout)
             field.units = "K"
             for start in range(first, last, 100):
                 stop = min(last, start + 100)

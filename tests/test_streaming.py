@@ -242,9 +242,37 @@ def test_a_budget_too_small_is_a_clear_error():
         plan_solver((3650, 361, 720), 10, "exact", int(2e9), 2)
 
 
+def test_the_gram_plan_is_the_gram_matrix_and_a_few_blocks():
+    """3650 daily steps x 1 degree (0.95 GB in float32): its Gram matrix is 0.11 GB; the plan holds a few of
+    them (the sum, one product per worker, the eigendecomposition's) and blocks, within 1.5 GB."""
+    plan = plan_solver((3650, 181, 360), 6, "gram", int(1.5e9), 2, in_use=int(0.15e9))
+    assert plan.method == "gram" and plan.memory <= 1.5e9
+    gram = 3650**2 * 8
+    assert plan.memory - 0.15e9 <= 2 * (5 * gram + 2 * 28 * 3650 * plan.lat_rows * 360) / 0.7
+
+
+def test_the_gram_matrix_added_in_place_is_the_product():
+    """BLAS dsyrk into the upper triangle, then the lower one copied: numpy's ``a @ a.T`` (the reference)."""
+    from climodes.blocks import add_gram, symmetric
+
+    rng = np.random.default_rng(1)
+    blocks = [rng.standard_normal((1100, width)) for width in (7, 300, 0)]
+    gram = np.zeros((1100, 1100), order="F")
+    for block in blocks:
+        add_gram(gram, block)
+    expected = sum(block @ block.T for block in blocks)
+    np.testing.assert_allclose(symmetric(gram), expected, rtol=1e-12, atol=1e-10)
+
+
+@pytest.mark.parametrize("held", [True, False])
 @pytest.mark.parametrize("method, passes", [("exact", 1), ("gram", 2), ("randomized", None)])
-def test_reads_per_solver(tmp_path, cli, values_read, method, passes):
-    """Count the values read from the files: one pass per pass of the algorithm, no more."""
+def test_reads_per_solver(tmp_path, cli, values_read, monkeypatch, method, passes, held):
+    """Count the values read from the files: once when the field fits compute.memory (``held``), else
+    one pass per pass of the algorithm (these files are stored contiguously: read in rows), no more."""
+    if not held:
+        from climodes.storage import plan_reading
+
+        monkeypatch.setattr("climodes.pipeline.plan_reading", lambda *args, **kw: plan_reading(*args[:4], 0, True))
     lat = np.linspace(-60, 60, 25)
     lon = np.arange(0, 360, 10.0)
     paths = []
@@ -261,7 +289,7 @@ def test_reads_per_solver(tmp_path, cli, values_read, method, passes):
     if passes is None:  # the randomized solver says how many passes it needed to converge
         passes = int(re.search(r"converged in (\d) passes", ds.attrs["climodes_method"]).group(1))
         assert 2 <= passes <= 2 + POWER_ITERATIONS
-    assert values_read["values"] == passes * 144 * lat.size * lon.size
+    assert values_read["values"] == (1 if held else passes) * 144 * lat.size * lon.size
     assert ds.attrs["climodes_method"].startswith(method)
     assert "chosen because" in ds.attrs["climodes_method"]
 

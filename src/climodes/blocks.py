@@ -101,10 +101,11 @@ def _cheap_path(block: np.ndarray, which: np.ndarray, dtype) -> np.ndarray:
 FIT_VALUES = 2**21  # values of a block fitted at a time on the cheap path: the steps' working copies stay small
 
 
-def _fitted(block: np.ndarray, which: np.ndarray, steps: TimeSteps) -> tuple[dict, np.ndarray]:
+def _fitted(block: np.ndarray, which: np.ndarray, steps: TimeSteps, weights: np.ndarray,
+            gram: np.ndarray) -> tuple[dict, np.ndarray]:
     """The preparation fitted on the ``which`` points of a block as read (in float64), and the
-    :func:`series_moments` of their prepared series, a few columns at a time; their anomalies are not
-    kept (the cheap path makes them from the small products)."""
+    :func:`series_moments` of their prepared series, a few columns at a time; their weighted anomalies
+    are added to ``gram`` (see :func:`add_gram`) as they are made, and not kept."""
     points = _columns(block, which)
     fitted = steps.blank(points.shape[1])
     moments = np.empty((points.shape[1], 2))
@@ -116,7 +117,29 @@ def _fitted(block: np.ndarray, which: np.ndarray, steps: TimeSteps) -> tuple[dic
         for name, values in quantities.items():
             fitted[name][..., columns] = values
         moments[columns] = series_moments(anomaly)
+        anomaly *= weights[columns]
+        add_gram(gram, anomaly)
     return fitted, moments
+
+
+def add_gram(gram: np.ndarray, block: np.ndarray) -> None:
+    """Add ``block @ block.T`` of a C-ordered float64 ``(time, point)`` block to the upper triangle of the
+    Fortran-ordered ``gram`` in place (BLAS ``dsyrk``): no temporary time x time matrix.  The lower triangle
+    is filled once, by :func:`symmetric`, when every block has been added."""
+    if block.shape[1]:
+        import scipy.linalg.blas
+
+        scipy.linalg.blas.dsyrk(1.0, np.ascontiguousarray(block).T, beta=1.0, c=gram, trans=1, overwrite_c=True)
+
+
+def symmetric(gram: np.ndarray, width: int = 512) -> np.ndarray:
+    """``gram`` with its lower triangle copied from its upper one, in place, ``width`` columns at a time."""
+    for start in range(width, gram.shape[0], width):
+        gram[start:start + width, :start] = gram[:start, start:start + width].T
+    for start in range(0, gram.shape[0], width):
+        band = slice(start, start + width)
+        gram[band, band] = np.triu(gram[band, band]) + np.triu(gram[band, band], 1).T
+    return gram
 
 
 def _squares(block: np.ndarray) -> np.ndarray:
@@ -188,22 +211,23 @@ def _product(points: np.ndarray, other: np.ndarray):
 
 
 def gram_part(values, weights, max_missing, steps):
-    """The block's ``X X^T``: from the cheap points (L still to apply) and the full-path ones, float64; and
-    the block's missing fractions and fitted quantities."""
+    """The block's ``X X^T`` (upper triangle, see :func:`add_gram`), every point prepared on the block (the
+    complete ones a few columns at a time), in float64; and the block's missing fractions, fitted
+    quantities and :func:`series_moments`."""
     block = flat(values)
     cheap = _complete(block, steps)
     fraction = np.zeros(block.shape[1])
     fitted = steps.blank(block.shape[1])
     moments = np.empty((block.shape[1], 2))
-    part, moments[cheap] = _fitted(block, cheap, steps)
+    gram = np.zeros((block.shape[0], block.shape[0]), order="F")
+    part, moments[cheap] = _fitted(block, cheap, steps, weights[cheap], gram)
     _place(fitted, cheap, part)
-    read = _cheap_path(block, cheap, np.float64)
-    read *= weights[cheap]
     full, fraction[~cheap], part = full_path(block, ~cheap, steps, max_missing, np.float64)
     _place(fitted, ~cheap, part)
     moments[~cheap] = series_moments(full)
     full *= weights[~cheap]
-    return _product(read, read.T), _product(full, full.T), [(fraction, fitted, moments)]
+    add_gram(gram, _columns(full, fraction[~cheap] < 1))  # points missing at every step add nothing
+    return gram, [(fraction, fitted, moments)]
 
 
 def range_part(values, weights, max_missing, omega, steps):
@@ -296,6 +320,21 @@ def joined(pieces: list[tuple[np.ndarray, dict, np.ndarray]]) -> tuple[np.ndarra
             fitted[name][..., start:start + width] = values
         start += width
     return fraction, fitted, moments
+
+
+def _added_in_place(total: tuple, part: tuple) -> tuple:
+    np.add(total[0], part[0], out=total[0])
+    return (total[0], *(a + b for a, b in zip(total[1:], part[1:])))
+
+
+def chained_sum(parts: list):
+    """The sum of ``(matrix, list, ...)`` parts as one chain, each part added in place to the sum of those
+    before it, in order (the lists joined in block order): while the workers make the next parts, one
+    sum is held, not the partial sums of a tree."""
+    total = parts[0]
+    for part in parts[1:]:
+        total = dask.delayed(_added_in_place)(total, part)
+    return total
 
 
 def tree_sum(parts: list):

@@ -1,4 +1,4 @@
-"""Open a field lazily from one or many NetCDF files, and select from it.
+"""Open a field lazily from one or many NetCDF files (or Zarr stores), and select from it.
 
 The field comes back as a dask-backed :class:`xarray.DataArray` with dimensions
 renamed to ``(time, lat, lon)`` in that order, whatever the files call them or
@@ -29,6 +29,7 @@ from climodes.config import InputSection, SelectSection
 from climodes.dates import in_period
 from climodes.errors import UserError
 from climodes.grid import GRID_LAT, GRID_LON, GRID_X, GRID_Y
+from climodes.storage import Storage, storage_of
 
 _LAT_UNITS = {"degrees_north", "degree_north", "degree_n", "degrees_n", "degreen", "degreesn"}
 _LON_UNITS = {"degrees_east", "degree_east", "degree_e", "degrees_e", "degreee", "degreese"}
@@ -63,11 +64,36 @@ class OpenedField:
     grid: tuple[str, str] | None = None  # the files' names of 2-D latitude and longitude (curvilinear grids)
     grid_mapping: xr.DataArray | None = None  # the files' CF grid-mapping variable (curvilinear grids)
     opening_notes: list[str] = field(default_factory=list)  # what opening the files changed, to say every time
+    storages: list[Storage] = field(default_factory=list)  # how each file stores the field, in time order
+    datasets: list[xr.Dataset] = field(default_factory=list)  # the files as opened (closing one frees its caches;
+    # it opens again when read)
+
+    def close_files(self) -> None:
+        """Close the files (their chunk caches go with them); a later read opens them again."""
+        for ds in self.datasets:
+            ds.close()
     notes: list[str] = field(default_factory=list)
 
 
+def is_zarr(path: str) -> bool:
+    """Whether ``path`` names a Zarr store (a folder whose name ends in ``.zarr``)."""
+    return str(path).rstrip("/").endswith(".zarr")
+
+
+def _engine(path: str) -> str:
+    return "zarr" if is_zarr(path) else "netcdf4"
+
+
+def _size_of(path: str) -> int:
+    """Bytes of a file, or of every file in a Zarr store."""
+    if not os.path.isdir(path):
+        return os.stat(path).st_size
+    return sum(os.stat(os.path.join(folder, name)).st_size for folder, _, names in os.walk(path) for name in names)
+
+
 def expand_paths(patterns: list[str]) -> list[str]:
-    """Expand glob patterns into a sorted, duplicate-free list of existing files.
+    """Expand glob patterns into a sorted, duplicate-free list of existing files (or Zarr stores: folders
+    named ``*.zarr``).
 
     Raises
     ------
@@ -80,7 +106,7 @@ def expand_paths(patterns: list[str]) -> list[str]:
             matches = sorted(glob.glob(pattern))
             if not matches:
                 raise UserError(f"input.paths: {pattern!r} matches no file; check the folder and the pattern")
-        elif os.path.isfile(pattern):
+        elif os.path.isfile(pattern) or (is_zarr(pattern) and os.path.isdir(pattern)):
             matches = [pattern]
         else:
             raise UserError(f"input.paths: {pattern}: no such file; check the path (relative paths are read "
@@ -242,7 +268,7 @@ def pick_extra_dims(da: xr.DataArray, axes: dict[str, str], choice: SelectSectio
 def _refuse_undecodable_times(path: str) -> None:
     """If ``path`` failed to open because a time variable's units cannot be turned into dates, say which."""
     try:
-        raw = xr.open_dataset(path, engine="netcdf4", decode_times=False, decode_timedelta=False)
+        raw = xr.open_dataset(path, engine=_engine(path), decode_times=False, decode_timedelta=False)
     except Exception:  # not a time problem: the caller reports the file as unreadable
         return
     with raw:
@@ -261,10 +287,13 @@ def _refuse_undecodable_times(path: str) -> None:
 
 def _open_one(path: str, variable: str) -> tuple[xr.DataArray, xr.Dataset]:
     try:
-        ds = xr.open_dataset(path, engine="netcdf4", decode_timedelta=False)
-    except Exception as err:  # netCDF4, h5py and xarray each raise their own types
+        ds = xr.open_dataset(path, engine=_engine(path), decode_timedelta=False)
+    except Exception as err:  # netCDF4, h5py, zarr and xarray each raise their own types
         _refuse_undecodable_times(path)
         reason = str(err).splitlines()[0] if str(err) else type(err).__name__
+        if is_zarr(path):
+            raise UserError(f"{path}: cannot be read as a Zarr store ({reason}); check that the store is "
+                            "complete") from None
         raise UserError(f"{path}: cannot be read as NetCDF ({reason}); check that the file is complete") from None
     if variable not in ds.data_vars:
         names = ", ".join(sorted(map(str, ds.data_vars))) or "none"
@@ -418,7 +447,7 @@ def _grid_mapping(da: xr.DataArray, ds: xr.Dataset) -> xr.DataArray | None:
 
 def _check_agreement(first: tuple, other: tuple, variable: str) -> None:
     """Refuse files whose calendars or units differ from those of the first file (both named)."""
-    (path_a, a, encoding_a), (path_b, b, encoding_b) = first, other
+    (path_a, a, encoding_a, _), (path_b, b, encoding_b, _) = first, other
     calendar_a, calendar_b = _calendar(encoding_a), _calendar(encoding_b)
     kind_a, kind_b = a["time"].dtype.kind, b["time"].dtype.kind  # "M": numpy dates, "O": cftime dates
     # standard and proleptic_gregorian differ only before 1582-10-15, and xarray gives dates in numpy's
@@ -481,12 +510,14 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
     cuts it otherwise.
     """
     paths = expand_paths(spec.paths)
-    pieces, moved, notes = [], [], []
+    pieces, moved, notes, datasets = [], [], [], []
     names: dict[str, str] = {}
     grid_names, grid_mapping = None, None
     for path in paths:
         da, ds = _open_one(path, spec.variable)
+        datasets.append(ds)
         axes, grid = find_axes(da, path)
+        storage = storage_of(da, axes)
         if names and axes != names:
             raise UserError(f"{path}: axes are named {axes}, but {paths[0]} names them {names}; make them agree")
         names = axes
@@ -497,10 +528,10 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
         if rolled and rolled not in notes:
             notes.append(rolled)
         _check_steps_in_order(da, path)
-        pieces.append((path, da, ds[axes["time"]].encoding))
+        pieces.append((path, da, ds[axes["time"]].encoding, storage))
         _check_agreement(pieces[0], pieces[-1], spec.variable)
     pieces.sort(key=lambda p: p[1]["time"].values[0])
-    for (path_a, a, _), (path_b, b, _) in zip(pieces, pieces[1:]):
+    for (path_a, a, _, _), (path_b, b, _, _) in zip(pieces, pieces[1:]):
         for axis in ("lat", "lon", GRID_LAT, GRID_LON):
             if axis not in a.coords:
                 continue
@@ -509,10 +540,11 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
                                 "regrid the files to one grid")
         if b["time"].values[0] <= a["time"].values[-1]:
             raise UserError(f"{path_b}: its time steps overlap those of {path_a}; remove the duplicate steps")
-    files = [InputFile(str(Path(p).resolve()), os.stat(p).st_size, os.stat(p).st_mtime) for p in paths]
+    files = [InputFile(str(Path(p).resolve()), _size_of(p), os.stat(p).st_mtime) for p in paths]
     encoding = {k: v for k, v in pieces[0][2].items() if k in ("units", "calendar", "dtype")}
     opened = OpenedField(xr.DataArray(), files, names, encoding, pieces=[p[1] for p in pieces], grid=grid_names,
-                         grid_mapping=grid_mapping, opening_notes=notes)
+                         grid_mapping=grid_mapping, opening_notes=notes, storages=[p[3] for p in pieces],
+                         datasets=datasets)
     opened.restamped = any(moved)
     return rechunked(opened, spec.chunks)
 

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import contextlib
 import os
+import tempfile
 import time
 import warnings
 from dataclasses import dataclass, field
@@ -101,7 +102,8 @@ from climodes.reuse import (
 )
 from climodes.rotation import rotated_variables
 from climodes.significance import NoiseTest, fit_red_noise, noise_variables, red_noise_test
-from climodes.solvers import Decomposition, SolverPlan, plan_solver, solve
+from climodes.solvers import POWER_ITERATIONS, Decomposition, SolverPlan, plan_solver, solve
+from climodes.storage import ROWS, TIME, Reading, plan_reading, scratch_room, staged
 from climodes.weights import field_weights
 
 # warnings meant for programmers, not for someone running climodes: deprecations and dask's chunking
@@ -135,6 +137,7 @@ class Planned:
     plan: SolverPlan
     room: Capacity
     notes: list[str]
+    reading: Reading
 
 
 def _for_users(message: warnings.WarningMessage) -> bool:
@@ -192,7 +195,16 @@ def _plan(spec: RunSpec, data: xr.DataArray | None = None) -> Planned:
     if "geotiff" in spec.output.formats:
         check_geotiff_grid(field)
     weights = field_weights(field, spec.prepare.weighting)
-    return Planned(opened, field, along_time, weights, plan, room, notes)
+    reading = plan_reading(opened.storages, field.shape, field.dtype.itemsize, plan.lat_rows or field.sizes["lat"],
+                           room.memory - plan.memory,
+                           local=spec.compute.scheduler in ("threads", "synchronous"))
+    if not plan.lat_rows:  # the exact solver reads the field once, whole
+        reading = Reading(ROWS, "")
+    return Planned(opened, field, along_time, weights, plan, room, notes, reading)
+
+
+def _passes(method: str) -> str:
+    return {"exact": "1", "gram": "2"}.get(method, f"2 to {2 + POWER_ITERATIONS}")
 
 
 def check(spec: RunSpec) -> list[str]:
@@ -217,27 +229,42 @@ def check(spec: RunSpec) -> list[str]:
         f"steps   {times.size}, {str(times[0])[:10]} to {str(times[-1])[:10]}",
         f"grid    {grid} points",
         f"solver  {planned.plan.method} ({planned.plan.reason})",
+        *([f"order   {planned.reading.text(_passes(planned.plan.method))}"] if planned.plan.lat_rows else []),
         f"writes  {where}",
         *(f"note: {line}" for line in planned.notes + warned),
     ]
 
 
-def _solve(spec: RunSpec, planned: Planned, progress: bool):
+def _scratch_folder(stage: Path | None) -> ContextManager[str | Path]:
+    """Where a scratch copy of the field may go: the results' staging folder, or, for a run that writes
+    nothing, a temporary folder removed when the run ends."""
+    return contextlib.nullcontext(stage) if stage is not None else tempfile.TemporaryDirectory(prefix="climodes-")
+
+
+def _solve(spec: RunSpec, planned: Planned, progress: bool, scratch: str | Path):
     """The decomposition of the planned field (the first pass over the data happens here), where
-    ``compute`` says; a streaming solver gets the field opened again in its blocks of latitude rows.
-    Returns the modes, the decomposition, the point counts, the compute session (where it ran) and the
-    red-noise test (None when it was not asked for)."""
-    field, along_time, plan = planned.field, planned.along_time, planned.plan
+    ``compute`` says; a streaming solver gets the field opened again in its blocks of latitude rows, or,
+    when the plan reads in the files' own order (:mod:`climodes.storage`), in blocks of whole time chunks
+    copied once into memory or a scratch file in ``scratch``.  Returns the modes, the decomposition, the
+    point counts, the compute session (where it ran), the red-noise test (None when it was not asked for)
+    and the reading order used."""
+    field, along_time, plan, reading = planned.field, planned.along_time, planned.plan, planned.reading
+    scratch = Path(scratch)
+    if reading.order == TIME and not scratch_room(scratch, field.size * field.dtype.itemsize):
+        reading = Reading(ROWS, f"no room for a scratch copy of the field in {scratch}")
     if plan.lat_rows:
-        opened = rechunked(planned.opened, {"time": -1, "lat": plan.lat_rows, "lon": -1})
+        blocks = ({"time": -1, "lat": plan.lat_rows, "lon": -1} if reading.order == ROWS
+                  else {"time": reading.time_steps, "lat": -1, "lon": -1})
+        opened = rechunked(planned.opened, blocks)
         field, along_time, _ = _prepared(spec, opened)
     limit = walltime(spec.compute, plan.method, field.shape, spec.modes.count, field.dtype.itemsize,
                      planned.room.workers)
     with running(spec.compute, progress, limit, spec.source.parent) as session:
-        modes, result, counts = solve(field, planned.weights, spec.modes.count, spec.prepare.max_missing, plan,
-                                      spec.modes.seed, session.during, along_time)
+        with staged(field, reading, plan.lat_rows or -1, scratch, session.during, planned.opened.close_files) as field:
+            modes, result, counts = solve(field, planned.weights, spec.modes.count, spec.prepare.max_missing, plan,
+                                          spec.modes.seed, session.during, along_time)
         tested = _red_noise(spec, result, planned.weights, field.sizes["time"], session.during)
-    return modes, result, counts, session, tested
+    return modes, result, counts, session, tested, reading
 
 
 def _red_noise(spec: RunSpec, result: Decomposition, weights: xr.DataArray, steps: int,
@@ -297,9 +324,9 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
     out = Path(spec.output.dir)
     with results_folder(spec, say) if write else contextlib.nullcontext() as stage:
         warned: list[str] = []
-        with library_warnings(warned):
+        with library_warnings(warned), _scratch_folder(stage) as scratch:
             planned = _plan(spec, data)
-            modes, result, counts, session, tested = _solve(spec, planned, progress)
+            modes, result, counts, session, tested, reading = _solve(spec, planned, progress, scratch)
         notes = planned.notes + counts.notes + result.notes + warned
         kept = modes.sizes["mode"]
         steps = planned.field.sizes["time"]
@@ -321,7 +348,8 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
                     f"file(s), {steps} time steps x {counts.used} points ({result.method.split(':')[0]} solver) "
                     f"-> {out}")
         table = variance_table(results)
-        where = [f"solver: {planned.plan.method} ({planned.plan.reason})", f"compute: {session.description}",
+        order = [f"read order: {reading.text(_passes(planned.plan.method))}"] if planned.plan.lat_rows else []
+        where = [f"solver: {planned.plan.method} ({planned.plan.reason})", *order, f"compute: {session.description}",
                  *(f"moved: {line}" for line in session.moved)]
         late: list[str] = []
         if stage is not None:

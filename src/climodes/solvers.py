@@ -17,8 +17,8 @@ Three solvers, one result:
 
 - ``exact``: LAPACK SVD (gesdd) of the whole matrix in memory, for small problems.
 - ``gram``: the (time x time) cross-product ``X X^T`` summed block by block
-  over grid points in float64, eigendecomposed, then the maps in a second pass:
-  two passes over the data, memory ``O(n^2 + a block)``.
+  over grid points in float64 (added in place, one sum held), eigendecomposed, then the maps in a
+  second pass: two passes over the data, memory ``O(n^2 + a block)``.
 - ``randomized``: a randomized range finder with oversampling and power
   iterations (Halko, Martinsson and Tropp 2011, SIAM Review 53(2), 217-288,
   algorithms 4.4 and 5.1, numbers from memory), for both dimensions large:
@@ -46,6 +46,7 @@ import numpy as np
 import xarray as xr
 
 from climodes.blocks import (
+    chained_sum,
     field_blocks,
     series_moments,
     flat,
@@ -59,6 +60,7 @@ from climodes.blocks import (
     regression_part,
     row_slices,
     step_squares,
+    symmetric,
     time_operator,
     time_operator_transposed,
     tree_sum,
@@ -155,7 +157,9 @@ def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: in
     results_bytes = 3 * points * count * 8 + points * fitted_per_point * (4 if method == "randomized" else 8)
     exact_bytes = 3 * steps * points * 8 + steps * min(steps, points) * 8
     held = workers + 3 + int(np.ceil(np.log2(max(nlat, 2))))  # partial sums alive in the pairwise tree, at most
-    gram_bytes = held * steps * steps * 8 + results_bytes
+    # time x time matrices: the chain's sum, each worker's block product, and the eigendecomposition's copy
+    # and vectors (see climodes.blocks.chained_sum)
+    gram_bytes = (workers + 3) * steps * steps * 8 + results_bytes
     rank = min(count + OVERSAMPLING, steps, points)
     randomized_bytes = 3 * points * rank * 8 + 2 * held * steps * rank * 8 + results_bytes
     shape_text = f"{steps} steps x {points} points ({_size(steps * points * 4)} in float32)"
@@ -292,14 +296,12 @@ def _gram(field, weights, count, max_missing, progress, steps):
     blocks, rows = field_blocks(field), row_slices(field)
     parts = [dask.delayed(quietly(gram_part))(b, weights[r], max_missing, steps) for b, r in zip(blocks, rows)]
     with progress("pass 1 of 2: time x time cross-products"):
-        read_gram, full_gram, pieces = dask.compute(tree_sum(parts))[0]
+        gram, pieces = dask.compute(chained_sum(parts))[0]
+    gram = symmetric(gram)
     fraction, fitted, moments = joined(pieces)
-    _refuse_infinities(not (np.isfinite(read_gram).all() and np.isfinite(full_gram).all()))
+    _refuse_infinities(not np.isfinite(gram).all())
     _check_points(fraction, max_missing, count)
     cheap, gappy = path_points(fraction, max_missing, steps)
-    gram = full_gram
-    if cheap.any():
-        gram = gram + time_operator(steps, time_operator(steps, read_gram).T)  # L G L^T: G is symmetric
     values, vectors = _leading_eigenpairs(gram, min(count + 1, n + 1))  # + 1: the next one, for North's rule
     pcs = vectors[:, :count] * np.sqrt(n)
     pcs_t = time_operator_transposed(steps, pcs) if cheap.any() else pcs

@@ -1,0 +1,140 @@
+"""climodes on the same daily field stored in the layouts archives use, against one plain read of each.
+
+For each layout: the time of one plain sequential read of the files in their own chunk order (netCDF4 or
+zarr, no climodes), measured in this run after a first read that fills the page cache; the start-up of
+climodes (``climodes check`` of the same config: imports, opening, planning); ``climodes run`` (randomized
+solver, day-of-year anomalies, 6 modes) at each memory budget, and the Gram solver at one; the read order
+it chose, the reads of the files and the passes it made, its time against the target (1.5 x reads x one
+read + start-up), and the peak resident memory of its process tree against ``compute.memory``.
+
+Layouts: uncompressed chunks of (30, lat, lon); zlib 4 + shuffle chunks of (1, lat, lon) (typical model
+output); zlib 4 + shuffle chunks of (365, 23, 45); a Zarr copy of the second (its own default compressor,
+chunks of (30, lat, lon)).
+
+Usage: python benchmarks/layouts.py   (default: 1460 daily steps x 1 degree, 0.38 GB, a few minutes on
+       2 cores; CLIMODES_BENCH_SIZE=full: the 3650 x 1 degree field of 0.95 GB in 5 files)
+"""
+
+from __future__ import annotations
+
+import os
+import re
+import shutil
+import sys
+import tempfile
+import textwrap
+import time
+import warnings
+from pathlib import Path
+
+import netCDF4
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).parent))
+from fields import DATA, make_field  # noqa: E402
+from run import CLIMODES, measured  # noqa: E402
+
+FULL = os.environ.get("CLIMODES_BENCH_SIZE") == "full"
+STEPS, DEGREES, FILES = (3650, 1.0, 5) if FULL else (1460, 1.0, 4)
+BUDGETS = ("1.5GB", "600MB") if FULL else ("1GB", "500MB")
+GRAM_BUDGET = "1.5GB" if FULL else "1GB"
+LAYOUTS = {  # name: (chunks, compressed)
+    "uncompressed (30, lat, lon)": ((30, -1, -1), False),
+    "zlib4+shuffle (1, lat, lon)": ((1, -1, -1), True),
+    "zlib4+shuffle (365, 23, 45)": ((365, 23, 45), True),
+}
+
+
+def _files(label: str) -> list[Path]:
+    chunks, compressed = LAYOUTS[label]
+    name = f"layout_{STEPS}_{DEGREES:g}_{'z' if compressed else 'u'}{'x'.join(map(str, chunks))}"
+    return make_field(name, STEPS, DEGREES, FILES, chunks=chunks, compressed=compressed)
+
+
+def _zarr_copy(paths: list[Path]) -> Path:
+    import xarray as xr
+
+    store = DATA / f"layout_{STEPS}_{DEGREES:g}.zarr"
+    if not store.exists():
+        with xr.open_mfdataset(paths, combine="by_coords") as ds, warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            ds.chunk({"time": 30, "lat": -1, "lon": -1}).to_zarr(store, mode="w")
+    return store
+
+
+def plain_read(paths: list[Path]) -> float:
+    """Seconds for one sequential read of every value, whole chunks along time at a time."""
+    start = time.perf_counter()
+    for path in paths:
+        if str(path).endswith(".zarr"):
+            import zarr
+
+            array = zarr.open_group(str(path), mode="r")["tas"]
+            step = array.chunks[0]
+            for t in range(0, array.shape[0], step):
+                array[t:t + step]
+            continue
+        with netCDF4.Dataset(path) as nc:
+            variable = nc["tas"]
+            variable.set_auto_mask(False)
+            chunking = variable.chunking()
+            step = chunking[0] if chunking != "contiguous" else 100
+            for t in range(0, variable.shape[0], step):
+                variable[t:t + step]
+    return time.perf_counter() - start
+
+
+def _config(paths: list[Path], memory: str, method: str) -> Path:
+    out = Path(tempfile.mkdtemp()) / "out"
+    config = out.parent / "run.yaml"
+    config.write_text(textwrap.dedent(f"""\
+        input: {{paths: {[str(p) for p in paths]}, variable: tas}}
+        modes: {{count: 6, method: {method}}}
+        compute: {{memory: {memory}}}
+        output: {{dir: {out}, figures: false}}
+        """))
+    return config
+
+
+def _gb(nbytes: float) -> str:
+    return f"{nbytes / 1e9:.2f} GB"
+
+
+def _bytes(text: str) -> float:
+    number, unit = re.fullmatch(r"([\d.]+)\s*([MG])B", text).groups()
+    return float(number) * (1e9 if unit == "G" else 1e6)
+
+
+def main() -> None:
+    field_bytes = STEPS * len(np.arange(-90, 90 + 1e-9, DEGREES)) * len(np.arange(0, 360, DEGREES)) * 4
+    print(f"{STEPS} daily steps, {DEGREES:g} degree grid ({_gb(field_bytes)} in float32, {FILES} files); "
+          f"6 modes, day-of-year anomalies")
+    inputs = {label: _files(label) for label in LAYOUTS}
+    inputs["zarr copy of (1, lat, lon), chunks (30, lat, lon)"] = [_zarr_copy(inputs["zlib4+shuffle (1, lat, lon)"])]
+    print("| layout | one read | start-up | method, compute.memory | read order | reads / passes | climodes run "
+          "| run / one read | target | peak memory |")
+    print("|---|---|---|---|---|---|---|---|---|---|")
+    for label, paths in inputs.items():
+        plain_read(paths)  # into the page cache
+        read = plain_read(paths)
+        startup = measured([CLIMODES, "check", str(_config(paths, BUDGETS[0], "randomized"))])[0]
+        for method, memory in [("randomized", b) for b in BUDGETS] + [("gram", GRAM_BUDGET)]:
+            config = _config(paths, memory, method)
+            seconds, peak, _ = measured([CLIMODES, "run", "--quiet", str(config)])
+            log = (config.parent / "out" / "run.log").read_text()
+            passes = re.search(r"converged in (\d) passes", log)
+            passes = int(passes.group(1)) if passes else 2
+            order = re.search(r"read order: (the files read once|blocks of latitude rows)[^\n]*?"
+                              r"(in memory|in an uncompressed scratch copy)?\n", log)
+            once = order.group(1).startswith("the files")
+            where = (order.group(2) or "scratch").replace("in an uncompressed ", "") if once else "rows"
+            reads = 1 if once else passes
+            target = 1.5 * reads * read + startup
+            print(f"| {label} | {read:.1f} s | {startup:.1f} s | {method}, {memory} | {where} | {reads} / {passes} "
+                  f"| {seconds:.1f} s | {seconds / read:.1f}x | {'met' if seconds <= target else 'not met'} "
+                  f"({target:.1f} s) | {_gb(peak)} of {_gb(_bytes(memory))} |", flush=True)
+            shutil.rmtree(config.parent)
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,223 @@
+"""How the input files store the field, and the order a run reads it in.
+
+A streaming solver passes over the field in blocks of latitude rows with every time step.  Files
+whose chunks hold whole maps of a few steps (model output: ``(1, lat, lon)``, zlib-compressed) have to
+decompress every chunk once per block and per pass that way.  So the run reads such files once in
+their own order, blocks of whole time chunks each holding whole maps, and keeps a copy in the row
+blocks the passes need: in memory when it fits ``compute.memory`` (any layout: then every pass reads
+memory), else in an uncompressed scratch file inside the results' staging folder, removed when the
+solver is done.  Files stored in spatial tiles, or contiguously, are read in row blocks as before
+(:data:`ROWS`): each of their chunks then holds a piece of few blocks.
+
+The copy holds exactly the values read, so the solvers' arithmetic, and so the results, do not depend
+on the order chosen.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import shutil
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable, ContextManager, Iterator
+
+import dask
+import dask.array
+import numpy as np
+import xarray as xr
+
+ROWS, TIME, MEMORY = "rows", "time", "memory"
+READ_CACHE = 4 * 2**20  # bytes of decompressed chunks each file keeps while read once (netCDF-C's default: 64 MiB)
+WHOLE_MAP = 0.5  # a chunk holding at least this share of a map counts as holding whole maps
+_FILTERS = ("zlib", "szip", "zstd", "bzip2", "blosc", "compressor", "compressors", "filters")
+
+
+@dataclass(frozen=True)
+class Storage:
+    """How one file stores the field: its chunk lengths along ``(time, lat, lon)`` (``None`` when stored
+    contiguously), whether a filter (compression) must run on each chunk read, and the file's map size."""
+
+    chunks: tuple[int, int, int] | None
+    compressed: bool
+    grid: tuple[int, int]
+
+    @property
+    def whole_maps(self) -> bool:
+        """Whether a chunk holds (most of) the map of each of its steps."""
+        return self.chunks is not None and self.chunks[1] * self.chunks[2] >= WHOLE_MAP * self.grid[0] * self.grid[1]
+
+    def text(self) -> str:
+        if self.chunks is None:
+            return "stored contiguously"
+        shape = " x ".join(map(str, self.chunks))
+        return f"chunks of {shape} (time x lat x lon)" + (", compressed" if self.compressed else "")
+
+
+def storage_of(da: xr.DataArray, axes: dict[str, str]) -> Storage:
+    """The storage of a variable as the file opened it (``da.encoding``, before any renaming).
+
+    NetCDF4 gives ``chunksizes`` (``None`` for contiguous storage) and a flag per filter (``zlib``,
+    ``szip``, ``zstd``, ...); Zarr gives ``chunks`` and ``compressors`` (or ``compressor``).  ``axes`` maps
+    ``time``, ``lat`` and ``lon`` to the file's dimension names.
+    """
+    encoding = da.encoding
+    sizes = encoding.get("chunksizes") or encoding.get("preferred_chunks") or encoding.get("chunks")
+    if isinstance(sizes, dict):
+        sizes = tuple(sizes.get(dim, da.sizes[dim]) for dim in da.dims)
+    grid = (da.sizes.get(axes["lat"], 1), da.sizes.get(axes["lon"], 1))
+    compressed = any(bool(encoding.get(name)) for name in _FILTERS)
+    if not sizes or encoding.get("contiguous") or len(sizes) != da.ndim:
+        return Storage(None, compressed, grid)
+    by_dim = dict(zip(da.dims, (int(s) for s in sizes)))
+    chunks = tuple(by_dim.get(axes[axis], 1) for axis in ("time", "lat", "lon"))
+    return Storage(chunks, compressed, grid)
+
+
+@contextlib.contextmanager
+def _chunk_cache(size: int) -> Iterator[None]:
+    """NetCDF files opened meanwhile keep at most ``size`` bytes of decompressed chunks each."""
+    import netCDF4
+
+    before = netCDF4.get_chunk_cache()
+    netCDF4.set_chunk_cache(size, before[1], before[2])
+    try:
+        yield
+    finally:
+        netCDF4.set_chunk_cache(*before)
+
+
+@dataclass(frozen=True)
+class Reading:
+    """The order a run reads its field in (:data:`ROWS`, :data:`TIME` or :data:`MEMORY`), why, and for the
+    last two the steps a read block holds (whole chunks of the files)."""
+
+    order: str
+    reason: str
+    time_steps: int = 0
+
+    def text(self, passes: str) -> str:
+        """A line for the log: the order, why, and how many reads of the files ``passes`` passes cost."""
+        if self.order == ROWS:
+            return f"blocks of latitude rows, {passes} passes over the files ({self.reason})"
+        held = "in memory" if self.order == MEMORY else "in an uncompressed scratch copy"
+        return (f"the files read once, in blocks of {self.time_steps} whole time steps ({self.reason}); "
+                f"the solver's {passes} passes read the field {held}")
+
+
+def plan_reading(storages: list[Storage], shape: tuple[int, int, int], itemsize: int, rows: int,
+                 room: float, local: bool) -> Reading:
+    """Choose the reading order of a field of ``shape`` stored as ``storages`` (one per file).
+
+    ``rows`` is how many latitude rows a block of the solver's plan holds (a time block holds no more
+    values, and at least one chunk of the files along time); ``room`` the bytes of
+    ``compute.memory`` its plan leaves unused; ``local`` whether the solver runs in this process (threads),
+    where a copy in memory is shared with the passes at no cost.
+
+    - :data:`MEMORY` when the field as read fits ``room`` and runs locally: one read, every pass in memory;
+    - :data:`TIME` when every file's chunks hold whole maps of fewer steps than the file has and the plan
+      has more than one row block: one read in the files' order, the passes over a scratch copy;
+    - :data:`ROWS` otherwise: the passes read the files in blocks of rows, each chunk once a pass.
+    """
+    steps, nlat, nlon = shape
+    field_bytes = steps * nlat * nlon * itemsize
+    chunked = [s for s in storages if s.chunks is not None]
+    time_chunk = max([s.chunks[0] for s in chunked] or [1])
+    row_blocks = -(-nlat // rows)
+    block = max(time_chunk, min(steps * rows // nlat, steps) // time_chunk * time_chunk)
+    if local and field_bytes <= room:
+        return Reading(MEMORY, f"the field as read, {field_bytes / 1e6:.0f} MB, fits compute.memory", block)
+    layout = "; ".join(sorted({s.text() for s in storages}))
+    if storages and all(s.whole_maps and s.chunks[0] < steps for s in storages) and row_blocks > 1:
+        return Reading(TIME, f"the files hold whole maps per chunk: {layout}", block)
+    if row_blocks <= 1:
+        return Reading(ROWS, "one block holds every row, so each chunk is read once a pass")
+    return Reading(ROWS, f"{layout}: a block of rows reads only its own chunks")
+
+
+class ScratchArray:
+    """A scratch file holding a ``(time, lat, lon)`` field as consecutive blocks of ``rows`` latitude rows,
+    each ``(time, rows, lon)`` in C order, as an array dask can read blocks from and store time blocks into.
+
+    A block of rows is then one contiguous read, and a block of time steps one contiguous write per block
+    of rows; plain file reads and writes, no memory map, so the process's resident memory holds what it
+    reads and no more.  The object pickles small and works in any worker process that sees the folder.
+    """
+
+    def __init__(self, path: Path, shape: tuple[int, int, int], dtype, rows: int):
+        self.path, self.shape, self.dtype, self.ndim, self.rows = path, tuple(shape), np.dtype(dtype), 3, rows
+        with open(path, "wb") as f:
+            f.truncate(int(np.prod(shape)) * self.dtype.itemsize)
+
+    def _blocks(self, first: int, last: int) -> Iterator[tuple[int, int, int]]:
+        """The blocks of rows meeting rows ``first`` to ``last`` (excluded): each one's first and last row
+        and its offset in bytes."""
+        steps, nlat, nlon = self.shape
+        for start in range(first // self.rows * self.rows, last, self.rows):
+            yield start, min(start + self.rows, nlat), start * steps * nlon * self.dtype.itemsize
+
+    def __getitem__(self, key) -> np.ndarray:
+        key = (key if isinstance(key, tuple) else (key,)) + (slice(None),) * 3
+        (t0, t1, _), (r0, r1, _), _ = (k.indices(n) for k, n in zip(key[:3], self.shape))
+        steps, _, nlon = self.shape
+        pieces = []
+        with open(self.path, "rb") as f:
+            for start, stop, offset in self._blocks(r0, r1):
+                width = stop - start
+                f.seek(offset + t0 * width * nlon * self.dtype.itemsize)
+                count = max(t1 - t0, 0) * width * nlon
+                block = np.fromfile(f, dtype=self.dtype, count=count).reshape(max(t1 - t0, 0), width, nlon)
+                pieces.append(block[:, max(r0 - start, 0):min(r1, stop) - start])
+        out = np.concatenate(pieces, axis=1) if pieces else np.empty((max(t1 - t0, 0), 0, nlon), self.dtype)
+        return out[(slice(None), slice(None), key[2])]
+
+    def __setitem__(self, key, values) -> None:
+        """Write whole maps of some steps: ``key`` a slice of time steps."""
+        t0, _, _ = (key[0] if isinstance(key, tuple) else key).indices(self.shape[0])
+        nlon = self.shape[2]
+        values = np.asarray(values, dtype=self.dtype)
+        with open(self.path, "r+b") as f:
+            for start, stop, offset in self._blocks(0, self.shape[1]):
+                f.seek(offset + t0 * (stop - start) * nlon * self.dtype.itemsize)
+                np.ascontiguousarray(values[:, start:stop]).tofile(f)
+
+
+def _put(target, where: slice, block: np.ndarray) -> None:
+    target[where] = block
+
+
+@contextlib.contextmanager
+def staged(field: xr.DataArray, reading: Reading, rows: int, scratch: Path,
+           progress: Callable[[str], ContextManager], close_files: Callable[[], None]) -> Iterator[xr.DataArray]:
+    """``field`` (lazy, cut in time blocks of whole chunks) read once into memory or into a scratch file
+    in ``scratch`` (:class:`ScratchArray`), per ``reading``, and given back chunked in blocks of ``rows``
+    latitude rows with every time step; the scratch file is removed when the block ends.  ``progress`` is
+    called around the read.
+
+    Each chunk is read once, so the files are read with a small chunk cache (:data:`READ_CACHE`):
+    ``close_files`` closes them before (they open again as they are read) and after the read, which
+    frees their caches (the library's default, 64 MiB a file, would stay held for the whole run)."""
+    if reading.order == ROWS:
+        yield field
+        return
+    path = scratch / ".field-scratch"
+    try:
+        if reading.order == MEMORY:
+            target = np.empty(field.shape, dtype=field.dtype)
+        else:
+            target = ScratchArray(path, field.shape, field.dtype, rows)
+        data = field.data.rechunk({1: -1, 2: -1})
+        starts = np.cumsum((0,) + data.chunks[0])
+        writes = [dask.delayed(_put, pure=False)(target, slice(a, b), block)
+                  for a, b, block in zip(starts[:-1], starts[1:], data.to_delayed().ravel())]
+        close_files()
+        with _chunk_cache(READ_CACHE), progress("reading the field once, in the files' own order"):
+            dask.compute(*writes)
+        close_files()
+        yield field.copy(data=dask.array.from_array(target, chunks=(-1, rows, -1), name=False, asarray=False))
+    finally:
+        path.unlink(missing_ok=True)
+
+
+def scratch_room(folder: Path, nbytes: int) -> bool:
+    """Whether ``folder``'s file system has room for a scratch copy of ``nbytes`` (with a 10 % margin)."""
+    return shutil.disk_usage(folder).free > 1.1 * nbytes

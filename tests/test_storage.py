@@ -1,0 +1,241 @@
+"""Reading the field in the files' own storage order: the layout found from the files, the order chosen
+from it, one read of the files whatever the solver's passes, and the same modes whichever order ran.
+
+References: the ``eofs`` package (Dawson 2016, J. Open Res. Softw. 4, e14), an independent EOF
+implementation, on the anomalies computed here with numpy; netCDF4-python's ``Variable.chunking()`` and
+``Variable.filters()`` for the layout the files were written with.
+"""
+
+import warnings
+
+import netCDF4
+import numpy as np
+import pytest
+import xarray as xr
+from eofs.standard import Eof
+
+import climodes.pipeline
+from climodes.solvers import sign_rule
+from climodes.storage import MEMORY, ROWS, TIME, Reading, Storage, plan_reading, storage_of
+from conftest import field_dataset, red_field, write_config
+
+LAYOUTS = {  # name: NetCDF encoding of the field
+    "steps": {"zlib": True, "complevel": 4, "shuffle": True, "chunksizes": (1, 25, 36)},
+    "tiles": {"zlib": True, "complevel": 4, "shuffle": True, "chunksizes": (48, 5, 9)},
+    "contiguous": {"contiguous": True},
+}
+
+
+@pytest.fixture(scope="module")
+def values():
+    values = red_field((144, 25, 36), 5).astype(np.float32)
+    values[:, 3:5, 4:9] = np.nan  # land
+    values[::7, 10, 10] = np.nan  # a gappy point, filled
+    return values
+
+
+@pytest.fixture(scope="module")
+def files(tmp_path_factory, values):
+    """The same field in each layout, in two files of 72 months each."""
+    folder = tmp_path_factory.mktemp("layouts")
+    lat, lon = np.linspace(-60, 60, 25), np.arange(0, 360, 10.0)
+    time = xr.date_range("1990-01-01", periods=144, freq="MS")
+    out = {}
+    for name, encoding in LAYOUTS.items():
+        out[name] = []
+        for part in range(2):
+            path = folder / f"{name}{part}.nc"
+            piece = slice(72 * part, 72 * (part + 1))
+            field_dataset(values[piece], lat, lon, time=time[piece]).to_netcdf(path, encoding={"tas": encoding})
+            out[name].append(path)
+    return out
+
+
+@pytest.mark.parametrize("name", list(LAYOUTS))
+def test_the_layout_is_what_netcdf4_says(files, name):
+    with xr.open_dataset(files[name][0]) as ds:
+        storage = storage_of(ds["tas"], {"time": "time", "lat": "lat", "lon": "lon"})
+    with netCDF4.Dataset(files[name][0]) as nc:  # the reference: netCDF4-python's own view of the variable
+        chunking, filters = nc["tas"].chunking(), nc["tas"].filters()
+    assert storage.chunks == (None if chunking == "contiguous" else tuple(chunking))
+    assert storage.compressed == bool(filters["zlib"])
+    assert storage.whole_maps == (name == "steps")
+
+
+STEPS = Storage((1, 25, 36), True, (25, 36))
+TILES = Storage((48, 5, 9), True, (25, 36))
+
+
+@pytest.mark.parametrize("storages, rows, room, local, order", [
+    ([STEPS], 3, 1e9, True, MEMORY),  # fits: one read into memory, whatever the layout
+    ([TILES], 3, 1e9, True, MEMORY),
+    ([STEPS], 3, 1e9, False, TIME),  # worker processes: no shared memory, a scratch copy
+    ([STEPS], 3, 0, True, TIME),  # too big for memory
+    ([STEPS, TILES], 3, 0, True, ROWS),  # one file in tiles: rows for all (common practice)
+    ([TILES], 3, 0, True, ROWS),
+    ([Storage(None, False, (25, 36))], 3, 0, True, ROWS),
+    ([STEPS], 25, 0, True, ROWS),  # one row block reads each chunk once a pass already
+])
+def test_the_order_follows_the_layout(storages, rows, room, local, order):
+    reading = plan_reading(storages, (144, 25, 36), 4, rows, room, local)
+    assert reading.order == order
+    if order != ROWS:  # blocks of whole chunks along time, holding no more values than a block of rows
+        assert reading.time_steps % max(s.chunks[0] for s in storages) == 0
+        assert reading.time_steps * 25 <= max(144 * 3, max(s.chunks[0] for s in storages) * 25)
+
+
+def _run(tmp_path, cli, monkeypatch, paths, method, order, name, prepare=None):
+    """``climodes run`` of ``paths`` with the reading order forced to ``order``."""
+    real = plan_reading
+
+    def forced(storages, shape, itemsize, rows, room, local):
+        if order == MEMORY:
+            return real(storages, shape, itemsize, rows, 1e12, True)
+        if order == ROWS:  # today's blocks of rows, whatever the layout
+            return Reading(ROWS, "as a test asks")
+        reading = real(storages, shape, itemsize, rows, 0, local)
+        assert reading.order == order, reading
+        return reading
+
+    monkeypatch.setattr(climodes.pipeline, "plan_reading", forced)
+    folder = tmp_path / f"{name}-{method}-{order}"
+    folder.mkdir()
+    config = write_config(folder, paths, modes={"count": 3, "method": method},
+                          prepare=prepare or {"detrend": "linear", "max_missing": 0.2})
+    code, _, err = cli("run", config)
+    assert code == 0, err
+    assert sorted(p.name for p in folder.iterdir()) == ["out", "run.yaml"]  # no scratch left beside
+    assert not any(p.name.startswith(".field") for p in (folder / "out").iterdir())
+    log = (folder / "out" / "run.log").read_text()
+    return xr.open_dataset(folder / "out" / "modes.nc"), log
+
+
+def _same(a: xr.Dataset, b: xr.Dataset, tolerance: float) -> None:
+    for name in ("eigenvalue", "variance_explained", "eof", "pc", "fitted_climatology", "fitted_trend_slope",
+                 "fitted_trend_intercept"):
+        if name not in b:  # no trend removed
+            continue
+        scale = np.nanmax(np.abs(b[name].values))
+        np.testing.assert_allclose(a[name].values, b[name].values, rtol=0, atol=tolerance * scale, err_msg=name)
+
+
+@pytest.mark.parametrize("method", ["gram", "randomized"])
+def test_every_order_gives_the_same_modes(tmp_path, cli, monkeypatch, values_read, files, method):
+    """Rows, time (scratch copy) and memory give the same run to 1e-8; time and memory read the files once,
+    rows once a pass."""
+    runs = {}
+    for name, order in [("steps", ROWS), ("steps", TIME), ("steps", MEMORY), ("tiles", ROWS)]:
+        values_read["values"] = 0
+        runs[name, order], log = _run(tmp_path, cli, monkeypatch, files[name], method, order, name)
+        reads = values_read["values"] / (144 * 25 * 36)
+        assert ("read order: blocks of latitude rows" in log) == (order == ROWS)
+        if order == ROWS:
+            assert reads >= 2  # a pass each
+        else:
+            assert reads == 1
+            assert "the files read once" in log and ("in memory" in log) == (order == MEMORY)
+    reference = runs["steps", ROWS]
+    for key, ds in runs.items():
+        _same(ds, reference, 1e-8)
+
+
+def test_the_order_does_not_change_the_reference_modes(tmp_path, cli, monkeypatch, files, values):
+    """The time-ordered Gram run against eofs on the anomalies made here with numpy (monthly climatology,
+    then the missing values set to zero anomaly, as README's missing-data rule says)."""
+    ds, _ = _run(tmp_path, cli, monkeypatch, files["steps"], "gram", TIME, "steps", {"max_missing": 0.2})
+    field = values.astype(np.float64).reshape(12, 12, 25, 36)  # years x months
+    with np.errstate(invalid="ignore"), pytest.warns(RuntimeWarning, match="empty slice"):  # land: all NaN
+        anomaly = (field - np.nanmean(field, axis=0)).reshape(144, 25, 36)
+    anomaly = np.where(np.isnan(anomaly) & ~np.isnan(values).all(axis=0), 0.0, anomaly)
+    anomaly -= anomaly.mean(axis=0)
+    lat = ds["lat"].values
+    weights = np.broadcast_to(np.sqrt(np.cos(np.deg2rad(lat)))[:, None], (25, 36))
+    ref = Eof(anomaly, weights=weights, center=False, ddof=1)
+    np.testing.assert_allclose(ds["variance_explained"].values, ref.varianceFraction(3), atol=1e-6)
+    maps = ref.eofsAsCovariance(neofs=3, pcscaling=1).reshape(3, -1)
+    valid = np.isfinite(maps[0])
+    lat2d, lon2d = np.meshgrid(lat, ds["lon"].values, indexing="ij")
+    signs = sign_rule(maps.T[valid], lat2d.reshape(-1)[valid], lon2d.reshape(-1)[valid])
+    scale = np.abs(maps[:, valid]).max()
+    np.testing.assert_allclose(ds["eof"].values.reshape(3, -1)[:, valid], signs[:, None] * maps[:, valid],
+                               atol=1e-6 * scale)
+
+
+# --- Zarr stores as input
+
+
+def test_a_zarr_store_gives_the_modes_of_the_netcdf_files(tmp_path, cli, files):
+    """The same field as a Zarr store with its own chunks (whole maps of 12 steps, compressed): the same run
+    to 1e-8 as the NetCDF files, its layout found from the store, its size in the provenance."""
+    store = tmp_path / "field.zarr"
+    with xr.open_mfdataset(files["steps"]) as ds, warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # zarr's note on consolidated metadata, for whoever writes the store
+        ds.chunk({"time": 12}).to_zarr(store, mode="w")
+    runs = {}
+    for name, paths in (("netcdf", files["steps"]), ("zarr", [store])):
+        folder = tmp_path / name
+        folder.mkdir()
+        config = write_config(folder, paths, modes={"count": 3, "method": "gram"}, prepare={"max_missing": 0.2})
+        code, _, err = cli("run", config)
+        assert code == 0 and "Warning" not in err, err
+        runs[name] = xr.open_dataset(folder / "out" / "modes.nc")
+    _same(runs["zarr"], runs["netcdf"], 1e-8)
+    assert "field.zarr" in runs["zarr"].attrs["climodes_input_files"]
+    with xr.open_dataset(store, engine="zarr") as ds:
+        storage = storage_of(ds["tas"], {"time": "time", "lat": "lat", "lon": "lon"})
+    assert storage.chunks == (12, 25, 36) and storage.compressed and storage.whole_maps
+
+
+def test_a_broken_zarr_store_is_one_line(tmp_path, cli):
+    """A folder named .zarr without Zarr metadata: exit 2, one line naming it (README: bad input)."""
+    store = tmp_path / "broken.zarr"
+    store.mkdir()
+    (store / "junk.txt").write_text("not zarr")
+    config = write_config(tmp_path, [store])
+    code, out, err = cli("run", config)
+    assert code == 2 and err.count("\n") == 1 and "broken.zarr: cannot be read as a Zarr store" in err
+    assert sorted(p.name for p in store.iterdir()) == ["junk.txt"]  # the input is not changed
+
+
+def test_the_scratch_copy_gives_back_what_was_stored(tmp_path):
+    """Time blocks in, any block of rows (and any slice) out: the same values as the numpy array (the
+    reference), the blocks of rows stored one after another."""
+    from climodes.storage import ScratchArray
+
+    field = np.random.default_rng(2).standard_normal((50, 11, 7)).astype(np.float32)
+    scratch = ScratchArray(tmp_path / "copy", field.shape, field.dtype, rows=3)
+    for start in range(0, 50, 12):
+        scratch[start:start + 12] = field[start:start + 12]
+    assert (tmp_path / "copy").stat().st_size == field.nbytes
+    for key in [(slice(None), slice(3, 6), slice(None)), (slice(None), slice(9, 11), slice(None)),
+                (slice(5, 17), slice(2, 10), slice(1, 4)), (slice(0, 0), slice(0, 0), slice(0, 0))]:
+        np.testing.assert_array_equal(scratch[key], field[key])
+
+
+def test_the_copy_is_read_with_a_small_chunk_cache_and_the_files_closed_after(tmp_path, files):
+    """While the files are read once, netCDF4 (its own get_chunk_cache) reports the small cache; after, the
+    library's setting is back, the files are closed, and the copy holds the values the files hold."""
+    import contextlib
+
+    from climodes.config import InputSection
+    from climodes.fields import open_field, rechunked
+    from climodes.storage import READ_CACHE, staged
+
+    before = netCDF4.get_chunk_cache()
+    opened = open_field(InputSection(paths=[str(p) for p in files["steps"]], variable="tas"))
+    field = rechunked(opened, {"time": 12, "lat": -1, "lon": -1}).data
+    seen = []
+
+    @contextlib.contextmanager
+    def progress(label):
+        seen.append(netCDF4.get_chunk_cache()[0])
+        yield
+
+    closed = []
+    with staged(field, Reading(TIME, "as a test asks", 12), 5, tmp_path, progress,
+                lambda: closed.append(opened.close_files())) as copy:
+        assert seen == [READ_CACHE] and len(closed) == 2
+        assert netCDF4.get_chunk_cache() == before
+        assert copy.chunks[1] == (5,) * 5
+        np.testing.assert_array_equal(copy.values, field.values)
+    assert list(tmp_path.iterdir()) == []  # the scratch file is gone
