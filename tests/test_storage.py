@@ -6,7 +6,9 @@ implementation, on the anomalies computed here with numpy; netCDF4-python's ``Va
 ``Variable.filters()`` for the layout the files were written with.
 """
 
+import tempfile
 import warnings
+from pathlib import Path
 
 import netCDF4
 import numpy as np
@@ -239,3 +241,23 @@ def test_the_copy_is_read_with_a_small_chunk_cache_and_the_files_closed_after(tm
         assert copy.chunks[1] == (5,) * 5
         np.testing.assert_array_equal(copy.values, field.values)
     assert list(tmp_path.iterdir()) == []  # the scratch file is gone
+
+
+def test_a_run_that_writes_nothing_copies_into_a_temporary_folder(tmp_path, cli, monkeypatch, files):
+    """``climodes.run(config)`` without ``write`` has no staging folder: the scratch copy of the time order
+    goes to a temporary folder, removed at the end, and the modes are those of the written run."""
+    written, _ = _run(tmp_path, cli, monkeypatch, files["steps"], "randomized", TIME, "steps")
+    made = []
+    real = tempfile.TemporaryDirectory
+
+    def watched(*args, **kwargs):
+        folder = real(*args, **kwargs)
+        made.append(Path(folder.name))
+        return folder
+
+    monkeypatch.setattr(tempfile, "TemporaryDirectory", watched)
+    config = tmp_path / "steps-randomized-time" / "run.yaml"
+    in_memory = climodes.run(config)
+    assert made and not any(folder.exists() for folder in made)
+    assert not (tmp_path / "steps-randomized-time" / "out" / ".field-scratch").exists()
+    _same(in_memory, written, 1e-8)
