@@ -391,6 +391,13 @@ def _ours(tmp_path, cli, name):
     return results
 
 
+def _copied(tmp_path, cli, name):
+    """A copy of the results file kept outside its folder (climodes wrote it, so --overwrite alone would
+    replace it), given as the results to read."""
+    (tmp_path / name).write_bytes((_results_run(tmp_path, cli) / "modes.nc").read_bytes())
+    return tmp_path / name
+
+
 def _theirs(tmp_path, cli, name, content=b"someone's data"):
     (tmp_path / name).write_bytes(content)
     return _results_run(tmp_path, cli)
@@ -421,6 +428,8 @@ OUTPUT_CATALOGUE = {  # case: (arguments after RESULTS, set-up, expected)
     "a table of another kind": (["-o", "t.xlsx"], _results_run,
                                 "-o t.xlsx: give a file name ending in .csv or .parquet"),
     "results that are not there": (["-o", "t.csv"], lambda t, c: t / "none", "no such results file"),
+    "the results file read": (["--modes", "1", "-o", "copy.nc", "--overwrite"], lambda t, c: _copied(t, c, "copy.nc"),
+                              "-o copy.nc: is the results file the modes are read from"),
 }
 
 

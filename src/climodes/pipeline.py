@@ -10,6 +10,7 @@ refuses too.
 from __future__ import annotations
 
 import contextlib
+import os
 import time
 import warnings
 from dataclasses import dataclass, field
@@ -579,6 +580,8 @@ def reconstruct(results: str | Path, modes: str, out: str | Path, anomalies: boo
     ``anomalies``), written as CF NetCDF to ``out`` block by block, atomically; an existing ``out`` is
     replaced only with ``overwrite`` and only if climodes wrote it.  Returns the line to print."""
     source, out = results_path(results), Path(out)
+    if source.exists() and out.exists() and os.path.samefile(source, out):
+        raise UserError(f"-o {out}: is the results file the modes are read from; give another name")
     check_output_file(out, overwrite)
     if out.suffix != ".nc":
         raise UserError(f"-o {out}: give a NetCDF file name ending in .nc")
