@@ -568,6 +568,37 @@ def test_show_refuses_what_is_not_results(tmp_path, small_field, cli, target, ex
     assert code == 2 and expected in err and len(err.strip().splitlines()) == 1 and out == ""
 
 
+EDITED_RESULTS = {  # a modes.nc changed by hand after the run: what was changed, and what the one line says
+    "mode numbers replaced": (lambda ds: ds.assign_coords(mode=["a", "b", "c"]), "its mode numbers are a, b, c"),
+    "mode numbers lost": (lambda ds: ds.drop_vars("mode"), "its mode numbers are 0, 1, 2, not 1 to 3"),
+    "time axis removed": (lambda ds: ds.drop_vars("time"), "the time axis time of pc holds no dates"),
+    "eigenvalues missing": (lambda ds: ds.assign(eigenvalue=ds["eigenvalue"] * np.nan),
+                            "eigenvalue holds missing or infinite values"),
+    "eigenvalues negative": (lambda ds: ds.assign(eigenvalue=-ds["eigenvalue"]),
+                             "eigenvalue holds values that are not positive"),
+    "a PC missing": (lambda ds: ds.assign(pc=ds["pc"].where(ds["mode"] != 2)), "pc holds missing or infinite"),
+    "a map emptied": (lambda ds: ds.assign(eof=ds["eof"].where(ds["mode"] != 3)), "the eof map of mode 3 holds no"),
+}
+
+
+@pytest.mark.parametrize("case", list(EDITED_RESULTS))
+@pytest.mark.parametrize("command", ["show", "table", "reconstruct", "figures"])
+def test_results_changed_by_hand_are_refused(tmp_path, small_field, cli, case, command):
+    """Every command that reads a results file refuses one whose values cannot be what climodes wrote
+    (before, some crashed with a traceback and others used NaN eigenvalues in silence)."""
+    assert cli("run", write_config(tmp_path, [small_field], modes={"count": 3}))[0] == 0
+    change, expected = EDITED_RESULTS[case]
+    edited = change(xr.load_dataset(tmp_path / "out" / "modes.nc"))
+    (tmp_path / "out" / "modes.nc").unlink()
+    edited.to_netcdf(tmp_path / "out" / "modes.nc")
+    extra = {"show": [], "table": ["-o", tmp_path / "t.csv"], "figures": [],
+             "reconstruct": ["--modes", "1", "-o", tmp_path / "r.nc"]}[command]
+    code, out, err = cli(command, tmp_path / "out", *extra)
+    assert code == 2 and out == "", err
+    assert len(err.strip().splitlines()) == 1 and expected in err and "changed after climodes wrote it" in err
+    assert not (tmp_path / "t.csv").exists() and not (tmp_path / "r.nc").exists()
+
+
 def test_overwrite_flag(tmp_path, small_field, cli):
     config = write_config(tmp_path, [small_field], modes={"count": 2})
     assert cli("run", config)[0] == 0
