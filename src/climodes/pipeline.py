@@ -362,6 +362,10 @@ def submit(spec: RunSpec, system: str | None, dry_run: bool, wait: bool, show: C
     job = batch_job(spec.source, spec.compute, chosen, plan.method, field.shape, spec.modes.count,
                     field.dtype.itemsize, plan.memory, overwrite=spec.output.overwrite)
     text, path = batch_script(job, spec.compute), script_path(spec.source, chosen)
+    results = Path(os.path.abspath(spec.output.dir))
+    if results == Path(os.path.abspath(path)) or Path(os.path.abspath(path)) in results.parents:
+        raise UserError(f"output.dir: {spec.output.dir} is where the batch script {path} goes; choose another "
+                        "output.dir")
     write_script(path, text)
     show(text)
     if dry_run:
