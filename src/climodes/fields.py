@@ -63,6 +63,7 @@ class OpenedField:
     grid: tuple[str, str] | None = None  # the files' names of 2-D latitude and longitude (curvilinear grids)
     grid_mapping: xr.DataArray | None = None  # the files' CF grid-mapping variable (curvilinear grids)
     opening_notes: list[str] = field(default_factory=list)  # what opening the files changed, to say every time
+    valid: list[tuple[float, float] | None] = field(default_factory=list)  # each piece's CF valid range, if any
     notes: list[str] = field(default_factory=list)
 
 
@@ -404,6 +405,37 @@ def _in_grid_order(da: xr.DataArray, names: dict[str, str], path: str) -> tuple[
     return da.isel(lon=np.roll(np.arange(lon.size), -start)), note
 
 
+def valid_range(da: xr.DataArray) -> tuple[float, float] | None:
+    """The range of valid values the field's CF attributes declare (``valid_range``, or ``valid_min`` and
+    ``valid_max``), in the field's unpacked units, or None when it declares none.
+
+    CF 1.10 section 2.5.1: values outside it are missing.  A range stored in the packed integer type of
+    a packed variable is in packed units, and is unpacked as the values are.
+
+    >>> valid_range(xr.DataArray([1.0], attrs={"valid_min": 0.0}))
+    (0.0, inf)
+    """
+    attrs = da.attrs
+    given = np.ravel(attrs["valid_range"]) if "valid_range" in attrs else None
+    if given is not None and given.size != 2:
+        return None
+    if given is None and "valid_min" not in attrs and "valid_max" not in attrs:
+        return None
+    low, high = (given if given is not None else
+                 [np.asarray(attrs.get("valid_min", -np.inf)), np.asarray(attrs.get("valid_max", np.inf))])
+    packed = da.encoding.get("dtype")
+    bounds = []
+    for value in (low, high):
+        value = np.asarray(value)
+        if not np.issubdtype(value.dtype, np.number):
+            return None
+        if packed is not None and np.dtype(packed).kind in "iu" and value.dtype.kind in "iu" and (
+                "scale_factor" in da.encoding or "add_offset" in da.encoding):
+            value = value * da.encoding.get("scale_factor", 1.0) + da.encoding.get("add_offset", 0.0)
+        bounds.append(float(value))
+    return bounds[0], bounds[1]
+
+
 def _grid_mapping(da: xr.DataArray, ds: xr.Dataset) -> xr.DataArray | None:
     """The grid-mapping variable the field names (CF ``grid_mapping``), if the file holds it."""
     name = str(da.attrs.get("grid_mapping", da.encoding.get("grid_mapping", ""))).split(":")[0].strip()
@@ -451,6 +483,11 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
     grid_names, grid_mapping = None, None
     for path in paths:
         da, ds = _open_one(path, spec.variable)
+        valid = valid_range(da)
+        if valid is not None:
+            note = (f"values of {spec.variable} outside its valid range {valid[0]:g} to {valid[1]:g} (CF valid_range, "
+                    "valid_min, valid_max) are taken as missing")
+            notes += [note] if note not in notes else []
         axes, grid = find_axes(da, path)
         if names and axes != names:
             raise UserError(f"{path}: axes are named {axes}, but {paths[0]} names them {names}; make them agree")
@@ -475,10 +512,10 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
             where = next(i for i in range(1, steps.size) if not steps[i] > steps[i - 1])
             raise UserError(f"{path}: time step {where} ({str(steps[where])[:19]}) repeats or goes back in time; "
                             "remove the duplicate or sort the steps")
-        pieces.append((path, da, ds[axes["time"]].encoding))
-        _check_agreement(pieces[0], pieces[-1], spec.variable)
+        pieces.append((path, da, ds[axes["time"]].encoding, valid))
+        _check_agreement(pieces[0][:3], pieces[-1][:3], spec.variable)
     pieces.sort(key=lambda p: p[1]["time"].values[0])
-    for (path_a, a, _), (path_b, b, _) in zip(pieces, pieces[1:]):
+    for (path_a, a, _, _), (path_b, b, _, _) in zip(pieces, pieces[1:]):
         for axis in ("lat", "lon", GRID_LAT, GRID_LON):
             if axis not in a.coords:
                 continue
@@ -490,7 +527,7 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
     files = [InputFile(str(Path(p).resolve()), os.stat(p).st_size, os.stat(p).st_mtime) for p in paths]
     encoding = {k: v for k, v in pieces[0][2].items() if k in ("units", "calendar", "dtype")}
     opened = OpenedField(xr.DataArray(), files, names, encoding, pieces=[p[1] for p in pieces], grid=grid_names,
-                         grid_mapping=grid_mapping, opening_notes=notes)
+                         grid_mapping=grid_mapping, opening_notes=notes, valid=[p[3] for p in pieces])
     opened.restamped = any(moved)
     return rechunked(opened, spec.chunks)
 
@@ -504,8 +541,9 @@ def rechunked(opened: OpenedField, chunks: dict[str, int]) -> OpenedField:
     blocks of latitude rows with every time step.
     """
     sizes = {axis: chunks.get(axis, -1) for axis in ("time", "lat", "lon")}
-    data = xr.concat([piece.chunk(sizes) for piece in opened.pieces], dim="time", coords="minimal",
-                     compat="override", join="override")
+    valid = opened.valid or [None] * len(opened.pieces)
+    data = xr.concat([_within_valid(piece.chunk(sizes), bounds) for piece, bounds in zip(opened.pieces, valid)],
+                     dim="time", coords="minimal", compat="override", join="override")
     notes = [*opened.opening_notes, *_time_gaps(data["time"].values)]
     if opened.restamped:
         notes.append("time stamps moved to the middles of the files' time bounds")
@@ -514,6 +552,13 @@ def rechunked(opened: OpenedField, chunks: dict[str, int]) -> OpenedField:
         data = data.isel(lon=slice(0, -1))
         notes.append(f"dropped longitude {lon[-1]:g}: it repeats {lon[0]:g} on a global grid")
     return dataclasses.replace(opened, data=data, notes=notes)
+
+
+def _within_valid(piece: xr.DataArray, bounds: tuple[float, float] | None) -> xr.DataArray:
+    """``piece`` with the values outside its valid range (:func:`valid_range`) missing, lazily."""
+    if bounds is None:
+        return piece
+    return piece.where((piece >= bounds[0]) & (piece <= bounds[1])).assign_attrs(piece.attrs)
 
 
 def select(opened: OpenedField, spec: SelectSection) -> xr.DataArray:
