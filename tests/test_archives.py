@@ -146,6 +146,27 @@ def test_gaps_in_time_are_allowed_and_reported(tmp_path, cli):
     assert "note: gap in time: nothing between 2000-12-16 and 2002-01-16" in err
 
 
+def test_many_gaps_are_one_note(tmp_path, cli):
+    """Steps taken irregularly (400 days drawn from 3000) leave a hundred gaps: one note counts them and
+    names the longest, instead of a line each (common practice: a summary a person reads)."""
+    days = np.sort(np.random.default_rng(0).choice(3000, 400, replace=False))
+    time = np.datetime64("1990-01-01") + days.astype("timedelta64[D]")
+    lat, lon = np.linspace(-30, 30, 4), np.arange(0, 50.0, 10)
+    path = tmp_path / "f.nc"
+    xr.Dataset({"tas": (("time", "lat", "lon"), red_field((400, 4, 5)), {"units": "K"})},
+               coords={"time": time, "lat": ("lat", lat, {"units": "degrees_north"}),
+                       "lon": ("lon", lon, {"units": "degrees_east"})}).to_netcdf(path)
+    code, _, err = cli("run", write_config(tmp_path, [path], modes={"count": 2}))
+    assert code == 0, err
+    spacing = np.diff(days)
+    gaps = spacing > 1.5 * np.median(spacing)
+    longest = int(np.argmax(np.where(gaps, spacing, 0)))
+    notes = [line for line in err.splitlines() if "gap" in line]
+    assert notes == [f"note: gaps in time: {gaps.sum()} places where steps lie more than 1.5 times the usual "
+                     f"{np.median(spacing):g} day(s) apart; the longest: nothing between {str(time[longest])[:10]} "
+                     f"and {str(time[longest + 1])[:10]}"]
+
+
 # --- what real archive files hold: read right or refused, from coordinates and attributes alone
 
 def _two(tmp_path, first: dict, second: dict):

@@ -315,15 +315,20 @@ def _stamp_at_interval_middles(da: xr.DataArray, ds: xr.Dataset, time: str) -> t
     return da.assign_coords({time: (time, middles, ds[time].attrs)}), True
 
 
-def _time_gaps(time: np.ndarray) -> list[str]:
-    """Steps more than 1.5 times the usual spacing apart, as notes (gaps are allowed)."""
+def _time_gaps(time: np.ndarray, shown: int = 3) -> list[str]:
+    """Steps more than 1.5 times the usual spacing apart, as notes (gaps are allowed): each gap, or, when
+    there are more than ``shown``, one note counting them and naming the longest."""
     if time.size < 3:
         return []
     days = np.array([(b - a) / np.timedelta64(1, "D") if isinstance(b - a, np.timedelta64)
                      else (b - a).total_seconds() / 86400 for a, b in zip(time[:-1], time[1:])])
     usual = np.median(days)
-    return [f"gap in time: nothing between {str(time[i])[:10]} and {str(time[i + 1])[:10]}"
-            for i in np.flatnonzero(days > 1.5 * usual)]
+    gaps = np.flatnonzero(days > 1.5 * usual)
+    if gaps.size > shown:
+        longest = gaps[np.argmax(days[gaps])]
+        return [f"gaps in time: {gaps.size} places where steps lie more than 1.5 times the usual {usual:g} day(s) "
+                f"apart; the longest: nothing between {str(time[longest])[:10]} and {str(time[longest + 1])[:10]}"]
+    return [f"gap in time: nothing between {str(time[i])[:10]} and {str(time[i + 1])[:10]}" for i in gaps]
 
 
 _CALENDAR_SYNONYMS = {"gregorian": "standard", "365_day": "noleap", "366_day": "all_leap"}
