@@ -500,6 +500,18 @@ def test_library_warnings_become_notes(tmp_path, cli):
     assert (code, out, err) == (0, "", "")
 
 
+def test_a_library_warning_is_one_note_however_often_it_comes(tmp_path, cli):
+    """Dates past 2262 are decoded as cftime dates, and xarray says so when the input is read and again when
+    the results are read back for the report: one note (common practice: say a thing once)."""
+    config = write_config(tmp_path, [archive_file(tmp_path / "f.nc", time_units="days since 9990-01-01", steps=48)],
+                          modes={"count": 2})
+    code, _, err = cli("run", config)
+    assert code == 0, err
+    notes = [line for line in err.splitlines() if "cftime" in line]
+    assert len(notes) == 1, err
+    assert (tmp_path / "out" / "run.log").read_text().count(notes[0]) == 1
+
+
 def test_existing_output_dir_needs_overwrite(tmp_path, small_field, cli):
     config = write_config(tmp_path, [small_field], modes={"count": 2})
     assert cli("run", config)[0] == 0

@@ -311,6 +311,7 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
         late: list[str] = []
         with library_warnings(late):
             late += _write(stage, results, spec, planned.opened)
+        late = [line for line in late if line not in notes]  # the results read back warn as the inputs did
         for line in late:
             say(f"note: {line}")
         log = run_log(headline, table, where, notes + late, spec.to_yaml())
