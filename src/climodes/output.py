@@ -945,22 +945,27 @@ def write_file_atomically(path: Path, write: Callable[[Path], None], replace: bo
 # --- single files written outside a results folder (reconstructions, tables)
 
 
+_SIGNED = re.compile(r"climodes \d+\.\d+\S*")  # "climodes 0.1.0": what climodes signs its files with
+
+
 def written_by_climodes(path: Path) -> bool:
     """Whether the file ``path`` says climodes wrote it: a NetCDF file's ``source`` attribute, the first line
-    of a CSV table, the ``source`` of a Parquet file's metadata (see :func:`table_writer`)."""
+    of a CSV table (``# climodes VERSION: ...``), the ``source`` of a Parquet file's metadata (see
+    :func:`table_writer`), each naming climodes and its version."""
     try:
         if path.suffix == ".csv":
             with open(path, encoding="utf-8") as f:
-                return f.readline().startswith("# climodes")
+                first = f.readline(1000)
+            return first.startswith("# ") and bool(_SIGNED.fullmatch(first[2:].split(":", 1)[0]))
         if path.suffix == ".parquet":
             import pyarrow.parquet
 
             metadata = pyarrow.parquet.read_schema(path).metadata or {}
-            return metadata.get(b"source", b"").startswith(b"climodes")
+            return bool(_SIGNED.fullmatch(metadata.get(b"source", b"").decode(errors="replace")))
         import netCDF4
 
         with netCDF4.Dataset(path) as nc:
-            return str(getattr(nc, "source", "")).startswith("climodes")
+            return bool(_SIGNED.fullmatch(str(getattr(nc, "source", ""))))
     except Exception:  # unreadable, not of its kind: not a file climodes wrote
         return False
 
