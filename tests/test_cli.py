@@ -539,6 +539,18 @@ def test_input_files_are_left_unchanged(tmp_path, small_field, cli):
     assert (small_field.read_bytes(), small_field.stat().st_mtime) == before
 
 
+def test_a_file_named_with_glob_characters_is_that_file(tmp_path, cli):
+    """A file called tas[1].nc is read as itself (glob would take [1] for a set of characters and match
+    nothing), and a folder that holds it is protected as any input's folder is."""
+    (tmp_path / "data").mkdir()
+    path = archive_file(tmp_path / "data" / "tas[1].nc")
+    code, _, err = cli("run", write_config(tmp_path, [path], modes={"count": 2}))
+    assert code == 0, err
+    config = write_config(tmp_path, [path], output={"dir": str(tmp_path / "data"), "overwrite": True})
+    code, _, err = cli("run", config)
+    assert code == 2 and "holds the input file" in err and path.exists()
+
+
 def test_show_summarises_a_results_folder(tmp_path, small_field, cli):
     config = write_config(tmp_path, [small_field], modes={"count": 3})
     assert cli("run", config)[0] == 0

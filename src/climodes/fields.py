@@ -70,6 +70,9 @@ class OpenedField:
 def expand_paths(patterns: list[str]) -> list[str]:
     """Expand glob patterns into a sorted, duplicate-free list of existing files.
 
+    A path that names an existing file is that file, even when its name holds glob characters
+    (``tas[1].nc``).
+
     Raises
     ------
     UserError
@@ -77,7 +80,7 @@ def expand_paths(patterns: list[str]) -> list[str]:
     """
     files: list[str] = []
     for pattern in patterns:
-        if glob.has_magic(pattern):
+        if glob.has_magic(pattern) and not os.path.isfile(pattern):  # a file named with [ ] * ? is that file
             matches = sorted(glob.glob(pattern))
             if not matches:
                 raise UserError(f"input.paths: {pattern!r} matches no file; check the folder and the pattern")

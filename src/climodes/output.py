@@ -458,7 +458,8 @@ def _run_files(spec: RunSpec) -> list[Path]:
     """The config file and every input file the run would read (patterns expanded, missing files skipped)."""
     found = [spec.source]
     for pattern in spec.input.paths:
-        found += [Path(p) for p in (sorted(glob.glob(pattern)) if glob.has_magic(pattern) else [pattern])]
+        literal = os.path.lexists(pattern) or not glob.has_magic(pattern)  # as fields.expand_paths reads it
+        found += [Path(p) for p in ([pattern] if literal else sorted(glob.glob(pattern)))]
     return found
 
 
