@@ -850,12 +850,13 @@ def results_folder(spec: RunSpec, say: Callable[[str], None] = lambda line: None
 
 
 @contextlib.contextmanager
-def results_update(folder: Path) -> Iterator[None]:
+def results_update(folder: Path) -> Iterator[list[Path]]:
     """Change a finished results folder in place (its figures drawn again), keeping its manifest true.
 
     The folder must carry its mark and hold nothing climodes did not write; it is claimed as a run
-    claims it, so no run replaces it meanwhile.  When the block ends, the manifest lists what the
-    folder holds then (the block writes only climodes' own files into it, each atomically).
+    claims it, so no run replaces it meanwhile.  The block adds the files it writes (each atomically)
+    to the list it is given; when it ends, the manifest lists those and the files listed before that
+    are still there, never a file someone else put in the folder meanwhile.
     """
     folder = Path(folder)
     mark = read_mark(folder)
@@ -867,8 +868,10 @@ def results_update(folder: Path) -> Iterator[None]:
     me = _run_identity(Path(mark.get("config", "")))
     claim = _claim(folder, me)
     try:
-        yield
-        _write_mark(folder, {**mark, "updated": _now()}, listing(folder))
+        written: list[Path] = []
+        yield written
+        ours = set(mark["files"]) | {Path(path).relative_to(folder).as_posix() for path in written}
+        _write_mark(folder, {**mark, "updated": _now()}, [name for name in listing(folder) if name in ours])
     finally:
         with _signals_held(act=True), contextlib.suppress(OSError):
             if _read_json(claim) == me:

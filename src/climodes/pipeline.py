@@ -435,8 +435,9 @@ def redraw(results: str | Path, **overrides) -> tuple[FigureOptions, list[Path]]
             reason = str(err).split(": ", 1)[-1]
             raise UserError(f"--{key.replace('_', '-')} {value}: {reason}") from None
     try:
-        with results_update(target.parent):
-            return options, publish(target.parent, options)
+        with results_update(target.parent) as written:
+            written += publish(target.parent, options)
+            return options, written
     except OSError as err:
         raise UserError(f"{target.parent}: cannot write the figures ({err.strerror or err}); nothing was "
                         "replaced; free some space or check the folder's permissions") from None
