@@ -102,6 +102,41 @@ def test_packed_integers_decode_like_floats(tmp_path, cli):
         assert np.isnan(other["eof"].values[0, 0, 0])  # the fill value is missing data, not a number
 
 
+@pytest.mark.parametrize("declared", ["valid_min", "valid_range", "packed valid_range"])
+def test_values_outside_the_valid_range_are_missing(tmp_path, cli, declared):
+    """CF 1.10 section 2.5.1: values outside valid_min / valid_max / valid_range are missing (xarray leaves
+    them as numbers); a range in a packed variable's integer type is in packed units.  A sentinel the
+    file declares invalid (-1e30, or 999 K) gives the modes of the same field with those values NaN."""
+    lat, lon = np.linspace(-40, 40, 5), np.arange(0, 360, 30.0)
+    values = 280 + red_field((48, 5, 12), 4)
+    time = xr.date_range("2000-01-01", periods=48, freq="MS")
+    ds = xr.Dataset({"tas": (("time", "lat", "lon"), values, {"units": "K"})},
+                    coords={"time": time, "lat": ("lat", lat, {"units": "degrees_north"}),
+                            "lon": ("lon", lon, {"units": "degrees_east"})})
+    invalid = ds.copy(deep=True)
+    invalid["tas"][[3, 17, 30], 2, 4] = 999.0 if declared == "packed valid_range" else -1e30
+    encoding = {}
+    if declared == "valid_min":
+        invalid["tas"].attrs["valid_min"] = 150.0
+    elif declared == "valid_range":
+        invalid["tas"].attrs["valid_range"] = np.array([150.0, 400.0])
+    else:  # packed as int16 with 0.01 K steps about 280 K: 999 K packs to 31900, outside [-2000, 2000]
+        invalid["tas"].attrs["valid_range"] = np.array([-2000, 2000], dtype=np.int16)
+        encoding = {"tas": {"dtype": "int16", "scale_factor": 0.01, "add_offset": 280.0, "_FillValue": np.int16(-32767)}}
+    reference = ds.copy(deep=True)
+    reference["tas"][[3, 17, 30], 2, 4] = np.nan
+    results = []
+    for name, made, enc in (("reference", reference, encoding), ("declared", invalid, encoding)):
+        (tmp_path / name).mkdir()
+        made.to_netcdf(tmp_path / name / "f.nc", encoding=enc)
+        code, _, err = cli("run", write_config(tmp_path / name, [tmp_path / name / "f.nc"], modes={"count": 2}))
+        assert code == 0, err
+        results.append(xr.open_dataset(tmp_path / name / "out" / "modes.nc"))
+    assert "are taken as missing" in err and "set 3 missing values at 1 points to zero anomaly" in err
+    np.testing.assert_allclose(results[1]["eigenvalue"], results[0]["eigenvalue"], rtol=1e-10)
+    np.testing.assert_allclose(results[1]["eof"], results[0]["eof"], atol=1e-10)
+
+
 def test_gaps_in_time_are_allowed_and_reported(tmp_path, cli):
     path = _monthly_file(tmp_path / "f.nc", "standard", "middle", False, months=48)
     with_gap = tmp_path / "gap.nc"
@@ -109,6 +144,27 @@ def test_gaps_in_time_are_allowed_and_reported(tmp_path, cli):
     code, _, err = cli("run", write_config(tmp_path, [with_gap], modes={"count": 2}))
     assert code == 0
     assert "note: gap in time: nothing between 2000-12-16 and 2002-01-16" in err
+
+
+def test_many_gaps_are_one_note(tmp_path, cli):
+    """Steps taken irregularly (400 days drawn from 3000) leave a hundred gaps: one note counts them and
+    names the longest, instead of a line each (common practice: a summary a person reads)."""
+    days = np.sort(np.random.default_rng(0).choice(3000, 400, replace=False))
+    time = np.datetime64("1990-01-01") + days.astype("timedelta64[D]")
+    lat, lon = np.linspace(-30, 30, 4), np.arange(0, 50.0, 10)
+    path = tmp_path / "f.nc"
+    xr.Dataset({"tas": (("time", "lat", "lon"), red_field((400, 4, 5)), {"units": "K"})},
+               coords={"time": time, "lat": ("lat", lat, {"units": "degrees_north"}),
+                       "lon": ("lon", lon, {"units": "degrees_east"})}).to_netcdf(path)
+    code, _, err = cli("run", write_config(tmp_path, [path], modes={"count": 2}))
+    assert code == 0, err
+    spacing = np.diff(days)
+    gaps = spacing > 1.5 * np.median(spacing)
+    longest = int(np.argmax(np.where(gaps, spacing, 0)))
+    notes = [line for line in err.splitlines() if "gap" in line]
+    assert notes == [f"note: gaps in time: {gaps.sum()} places where steps lie more than 1.5 times the usual "
+                     f"{np.median(spacing):g} day(s) apart; the longest: nothing between {str(time[longest])[:10]} "
+                     f"and {str(time[longest + 1])[:10]}"]
 
 
 # --- what real archive files hold: read right or refused, from coordinates and attributes alone

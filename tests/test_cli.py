@@ -500,6 +500,18 @@ def test_library_warnings_become_notes(tmp_path, cli):
     assert (code, out, err) == (0, "", "")
 
 
+def test_a_library_warning_is_one_note_however_often_it_comes(tmp_path, cli):
+    """Dates past 2262 are decoded as cftime dates, and xarray says so when the input is read and again when
+    the results are read back for the report: one note (common practice: say a thing once)."""
+    config = write_config(tmp_path, [archive_file(tmp_path / "f.nc", time_units="days since 9990-01-01", steps=48)],
+                          modes={"count": 2})
+    code, _, err = cli("run", config)
+    assert code == 0, err
+    notes = [line for line in err.splitlines() if "cftime" in line]
+    assert len(notes) == 1, err
+    assert (tmp_path / "out" / "run.log").read_text().count(notes[0]) == 1
+
+
 def test_existing_output_dir_needs_overwrite(tmp_path, small_field, cli):
     config = write_config(tmp_path, [small_field], modes={"count": 2})
     assert cli("run", config)[0] == 0
@@ -525,6 +537,18 @@ def test_input_files_are_left_unchanged(tmp_path, small_field, cli):
     before = small_field.read_bytes(), small_field.stat().st_mtime
     assert cli("run", write_config(tmp_path, [small_field], modes={"count": 2}))[0] == 0
     assert (small_field.read_bytes(), small_field.stat().st_mtime) == before
+
+
+def test_a_file_named_with_glob_characters_is_that_file(tmp_path, cli):
+    """A file called tas[1].nc is read as itself (glob would take [1] for a set of characters and match
+    nothing), and a folder that holds it is protected as any input's folder is."""
+    (tmp_path / "data").mkdir()
+    path = archive_file(tmp_path / "data" / "tas[1].nc")
+    code, _, err = cli("run", write_config(tmp_path, [path], modes={"count": 2}))
+    assert code == 0, err
+    config = write_config(tmp_path, [path], output={"dir": str(tmp_path / "data"), "overwrite": True})
+    code, _, err = cli("run", config)
+    assert code == 2 and "holds the input file" in err and path.exists()
 
 
 def test_show_summarises_a_results_folder(tmp_path, small_field, cli):
@@ -566,6 +590,37 @@ def test_show_refuses_what_is_not_results(tmp_path, small_field, cli, target, ex
     _foreign_results(tmp_path)
     code, out, err = cli("show", tmp_path / target)
     assert code == 2 and expected in err and len(err.strip().splitlines()) == 1 and out == ""
+
+
+EDITED_RESULTS = {  # a modes.nc changed by hand after the run: what was changed, and what the one line says
+    "mode numbers replaced": (lambda ds: ds.assign_coords(mode=["a", "b", "c"]), "its mode numbers are a, b, c"),
+    "mode numbers lost": (lambda ds: ds.drop_vars("mode"), "its mode numbers are 0, 1, 2, not 1 to 3"),
+    "time axis removed": (lambda ds: ds.drop_vars("time"), "the time axis time of pc holds no dates"),
+    "eigenvalues missing": (lambda ds: ds.assign(eigenvalue=ds["eigenvalue"] * np.nan),
+                            "eigenvalue holds missing or infinite values"),
+    "eigenvalues negative": (lambda ds: ds.assign(eigenvalue=-ds["eigenvalue"]),
+                             "eigenvalue holds values that are not positive"),
+    "a PC missing": (lambda ds: ds.assign(pc=ds["pc"].where(ds["mode"] != 2)), "pc holds missing or infinite"),
+    "a map emptied": (lambda ds: ds.assign(eof=ds["eof"].where(ds["mode"] != 3)), "the eof map of mode 3 holds no"),
+}
+
+
+@pytest.mark.parametrize("case", list(EDITED_RESULTS))
+@pytest.mark.parametrize("command", ["show", "table", "reconstruct", "figures"])
+def test_results_changed_by_hand_are_refused(tmp_path, small_field, cli, case, command):
+    """Every command that reads a results file refuses one whose values cannot be what climodes wrote
+    (before, some crashed with a traceback and others used NaN eigenvalues in silence)."""
+    assert cli("run", write_config(tmp_path, [small_field], modes={"count": 3}))[0] == 0
+    change, expected = EDITED_RESULTS[case]
+    edited = change(xr.load_dataset(tmp_path / "out" / "modes.nc"))
+    (tmp_path / "out" / "modes.nc").unlink()
+    edited.to_netcdf(tmp_path / "out" / "modes.nc")
+    extra = {"show": [], "table": ["-o", tmp_path / "t.csv"], "figures": [],
+             "reconstruct": ["--modes", "1", "-o", tmp_path / "r.nc"]}[command]
+    code, out, err = cli(command, tmp_path / "out", *extra)
+    assert code == 2 and out == "", err
+    assert len(err.strip().splitlines()) == 1 and expected in err and "changed after climodes wrote it" in err
+    assert not (tmp_path / "t.csv").exists() and not (tmp_path / "r.nc").exists()
 
 
 def test_overwrite_flag(tmp_path, small_field, cli):

@@ -18,6 +18,7 @@ import numpy as np
 import pandas as pd
 import pytest
 import xarray as xr
+import yaml
 
 import climodes.cluster
 from climodes.cluster import (
@@ -202,6 +203,36 @@ def test_submit_never_replaces_a_script_it_did_not_write(tmp_path, cli):
     mine.unlink()
     assert cli("submit", "--dry-run", "--system", "slurm", config)[0] == 0
     assert cli("submit", "--dry-run", "--system", "slurm", config)[0] == 0  # its own script is replaced
+
+
+@pytest.mark.parametrize("taken, expected", [
+    ("folder", "run.sbatch exists and is not a file (a folder, a link or a device)"),
+    ("link", "run.sbatch exists and is not a file (a folder, a link or a device)"),
+    ("fifo", "run.sbatch exists and is not a file (a folder, a link or a device)"),
+    ("results", "output.dir: {folder}/run.sbatch is where the batch script {folder}/run.sbatch goes"),
+    ("inside", "output.dir: {folder}/run.sbatch/out is where the batch script {folder}/run.sbatch goes"),
+])
+def test_the_script_path_taken_by_something_else(tmp_path, cli, taken, expected):
+    """The script's name is a folder, a link (to an input file), a named pipe (reading it would hang),
+    or the run's own output.dir (the script would stand where the job's results must go): one line, exit 2,
+    nothing written or changed."""
+    config = _submit_config(tmp_path)
+    script = config.with_name("run.sbatch")
+    if taken == "folder":
+        script.mkdir()
+    elif taken == "link":
+        script.symlink_to(next(config.parent.glob("*.nc")))
+    elif taken == "fifo":
+        os.mkfifo(script)
+    else:
+        body = yaml.safe_load(config.read_text())
+        body["output"]["dir"] = str(script if taken == "results" else script / "out")
+        config.write_text(yaml.safe_dump(body))
+    before = sorted((p.name, p.is_dir()) for p in config.parent.iterdir())
+    code, out, err = cli("submit", "--dry-run", "--system", "slurm", config)
+    assert code == 2 and out == "" and len(err.strip().splitlines()) == 1, err
+    assert expected.format(folder=config.parent) in err
+    assert sorted((p.name, p.is_dir()) for p in config.parent.iterdir()) == before
 
 
 @pytest.mark.parametrize("system, command", [("slurm", "sbatch"), ("pbs", "qsub")])

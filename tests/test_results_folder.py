@@ -422,3 +422,53 @@ def test_figures_drawn_again_keep_the_manifest_true(site, cli):
         code, _, err = cli(*command)
         assert code == 2 and "my_notes.txt" in err and len(err.strip().splitlines()) == 1, err
         assert (folder / "figures" / "my_notes.txt").read_text() == "mine"
+
+
+def test_a_file_put_in_while_figures_are_drawn_again_is_not_taken_for_climodes(site, cli, monkeypatch):
+    """A file the user puts into the results folder while `climodes figures` draws is not listed in the
+    manifest (listing all the folder held at the end claimed it), so a later run refuses to replace the
+    folder and the file stays."""
+    import climodes.pipeline
+
+    project, source = site
+    config = _config(project, source, dir="results")
+    assert cli("run", config)[0] == 0
+    folder = project / "results"
+    drawing = climodes.pipeline.publish
+
+    def while_drawing(where, options):
+        (where / "notes.txt").write_text("mine")  # saved there by the user meanwhile
+        return drawing(where, options)
+
+    monkeypatch.setattr(climodes.pipeline, "publish", while_drawing)
+    code, _, err = cli("figures", folder, "--draw", "maps")
+    assert code == 0, err
+    assert "notes.txt" not in read_mark(folder)["files"] and "figures/mode_01.png" in read_mark(folder)["files"]
+    code, _, err = cli("run", config)
+    assert code == 2 and "holds notes.txt, which climodes did not write" in err
+    assert (folder / "notes.txt").read_text() == "mine"
+
+
+def test_a_file_saved_into_figures_while_they_are_drawn_again_stays(site, cli, monkeypatch):
+    """The figures folder is checked when the new figures are ready, not only before drawing: a file the
+    user saved into it meanwhile stops the redraw (exit 2, one line) and stays, with the old figures."""
+    import climodes.figures
+
+    project, source = site
+    config = _config(project, source, dir="results", figures={"draw": ["maps"]})
+    assert cli("run", config)[0] == 0
+    figures = project / "results" / "figures"
+    before = snapshot(figures)
+    drawing = climodes.figures.draw_all
+
+    def while_drawing(ds, options, folder):
+        (figures / "caption.txt").write_text("mine")  # saved there by the user meanwhile
+        return drawing(ds, options, folder)
+
+    monkeypatch.setattr(climodes.figures, "draw_all", while_drawing)
+    code, out, err = cli("figures", project / "results")
+    assert code == 2 and out == "" and len(err.strip().splitlines()) == 1, err
+    assert "holds caption.txt, which climodes did not write while the figures were drawn" in err
+    assert (figures / "caption.txt").read_text() == "mine"
+    assert {k: v for k, v in snapshot(figures).items() if not k.endswith("caption.txt")} == before
+    assert not [p for p in (project / "results").iterdir() if p.name.startswith(".figures")]

@@ -391,6 +391,19 @@ def _ours(tmp_path, cli, name):
     return results
 
 
+def _copied(tmp_path, cli, name):
+    """A copy of the results file kept outside its folder (climodes wrote it, so --overwrite alone would
+    replace it), given as the results to read."""
+    (tmp_path / name).write_bytes((_results_run(tmp_path, cli) / "modes.nc").read_bytes())
+    return tmp_path / name
+
+
+def _about_climodes(tmp_path, cli, name):
+    """A NetCDF file of someone's whose source merely mentions climodes (not climodes and its version)."""
+    xr.Dataset({"x": ("t", [1.0])}, attrs={"source": "climodes-style post-processing"}).to_netcdf(tmp_path / name)
+    return _results_run(tmp_path, cli)
+
+
 def _theirs(tmp_path, cli, name, content=b"someone's data"):
     (tmp_path / name).write_bytes(content)
     return _results_run(tmp_path, cli)
@@ -418,9 +431,17 @@ OUTPUT_CATALOGUE = {  # case: (arguments after RESULTS, set-up, expected)
     "a parquet file of someone's": (["-o", "t.parquet", "--overwrite"], lambda t, c: _theirs(t, c, "t.parquet"),
                                     "-o t.parquet: exists and was not written by climodes"),
     "a table there already": (["-o", "t.csv"], lambda t, c: _ours(t, c, "t.csv"), "-o t.csv: exists already"),
+    "a table of someone's about climodes": (["-o", "t.csv", "--overwrite"],
+                                            lambda t, c: _theirs(t, c, "t.csv", b"# climodes runs, by date\nrun,date\n"),
+                                            "-o t.csv: exists and was not written by climodes"),
+    "a NetCDF file of someone's about climodes": (["--modes", "1", "-o", "r.nc", "--overwrite"],
+                                                  lambda t, c: _about_climodes(t, c, "r.nc"),
+                                                  "-o r.nc: exists and was not written by climodes"),
     "a table of another kind": (["-o", "t.xlsx"], _results_run,
                                 "-o t.xlsx: give a file name ending in .csv or .parquet"),
     "results that are not there": (["-o", "t.csv"], lambda t, c: t / "none", "no such results file"),
+    "the results file read": (["--modes", "1", "-o", "copy.nc", "--overwrite"], lambda t, c: _copied(t, c, "copy.nc"),
+                              "-o copy.nc: is the results file the modes are read from"),
 }
 
 

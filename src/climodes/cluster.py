@@ -615,6 +615,9 @@ def script_path(config: Path, system: str) -> Path:
 
 def write_script(path: Path, text: str) -> None:
     """Write the script under a temporary name and rename it into place; replace only a script of ours."""
+    if os.path.lexists(path) and (path.is_symlink() or not path.is_file()):
+        raise UserError(f"{path} exists and is not a file (a folder, a link or a device); move it away, and "
+                        "climodes will write the batch script there")
     if path.exists() and MARK not in path.read_text(errors="replace"):
         raise UserError(f"{path} exists and was not written by climodes submit; move it away, and climodes "
                         "will write the batch script there")

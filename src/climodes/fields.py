@@ -72,6 +72,7 @@ class OpenedField:
         """Close the files (their chunk caches go with them); a later read opens them again."""
         for ds in self.datasets:
             ds.close()
+    valid: list[tuple[float, float] | None] = field(default_factory=list)  # each piece's CF valid range, if any
     notes: list[str] = field(default_factory=list)
 
 
@@ -95,6 +96,9 @@ def expand_paths(patterns: list[str]) -> list[str]:
     """Expand glob patterns into a sorted, duplicate-free list of existing files (or Zarr stores: folders
     named ``*.zarr``).
 
+    A path that names an existing file is that file, even when its name holds glob characters
+    (``tas[1].nc``).
+
     Raises
     ------
     UserError
@@ -102,7 +106,7 @@ def expand_paths(patterns: list[str]) -> list[str]:
     """
     files: list[str] = []
     for pattern in patterns:
-        if glob.has_magic(pattern):
+        if glob.has_magic(pattern) and not os.path.isfile(pattern):  # a file named with [ ] * ? is that file
             matches = sorted(glob.glob(pattern))
             if not matches:
                 raise UserError(f"input.paths: {pattern!r} matches no file; check the folder and the pattern")
@@ -347,15 +351,20 @@ def _stamp_at_interval_middles(da: xr.DataArray, ds: xr.Dataset, time: str) -> t
     return da.assign_coords({time: (time, middles, ds[time].attrs)}), True
 
 
-def _time_gaps(time: np.ndarray) -> list[str]:
-    """Steps more than 1.5 times the usual spacing apart, as notes (gaps are allowed)."""
+def _time_gaps(time: np.ndarray, shown: int = 3) -> list[str]:
+    """Steps more than 1.5 times the usual spacing apart, as notes (gaps are allowed): each gap, or, when
+    there are more than ``shown``, one note counting them and naming the longest."""
     if time.size < 3:
         return []
     days = np.array([(b - a) / np.timedelta64(1, "D") if isinstance(b - a, np.timedelta64)
                      else (b - a).total_seconds() / 86400 for a, b in zip(time[:-1], time[1:])])
     usual = np.median(days)
-    return [f"gap in time: nothing between {str(time[i])[:10]} and {str(time[i + 1])[:10]}"
-            for i in np.flatnonzero(days > 1.5 * usual)]
+    gaps = np.flatnonzero(days > 1.5 * usual)
+    if gaps.size > shown:
+        longest = gaps[np.argmax(days[gaps])]
+        return [f"gaps in time: {gaps.size} places where steps lie more than 1.5 times the usual {usual:g} day(s) "
+                f"apart; the longest: nothing between {str(time[longest])[:10]} and {str(time[longest + 1])[:10]}"]
+    return [f"gap in time: nothing between {str(time[i])[:10]} and {str(time[i + 1])[:10]}" for i in gaps]
 
 
 _CALENDAR_SYNONYMS = {"gregorian": "standard", "365_day": "noleap", "366_day": "all_leap"}
@@ -437,6 +446,37 @@ def _in_grid_order(da: xr.DataArray, names: dict[str, str], path: str) -> tuple[
     return da.isel(lon=np.roll(np.arange(lon.size), -start)), note
 
 
+def valid_range(da: xr.DataArray) -> tuple[float, float] | None:
+    """The range of valid values the field's CF attributes declare (``valid_range``, or ``valid_min`` and
+    ``valid_max``), in the field's unpacked units, or None when it declares none.
+
+    CF 1.10 section 2.5.1: values outside it are missing.  A range stored in the packed integer type of
+    a packed variable is in packed units, and is unpacked as the values are.
+
+    >>> valid_range(xr.DataArray([1.0], attrs={"valid_min": 0.0}))
+    (0.0, inf)
+    """
+    attrs = da.attrs
+    given = np.ravel(attrs["valid_range"]) if "valid_range" in attrs else None
+    if given is not None and given.size != 2:
+        return None
+    if given is None and "valid_min" not in attrs and "valid_max" not in attrs:
+        return None
+    low, high = (given if given is not None else
+                 [np.asarray(attrs.get("valid_min", -np.inf)), np.asarray(attrs.get("valid_max", np.inf))])
+    packed = da.encoding.get("dtype")
+    bounds = []
+    for value in (low, high):
+        value = np.asarray(value)
+        if not np.issubdtype(value.dtype, np.number):
+            return None
+        if packed is not None and np.dtype(packed).kind in "iu" and value.dtype.kind in "iu" and (
+                "scale_factor" in da.encoding or "add_offset" in da.encoding):
+            value = value * da.encoding.get("scale_factor", 1.0) + da.encoding.get("add_offset", 0.0)
+        bounds.append(float(value))
+    return bounds[0], bounds[1]
+
+
 def _grid_mapping(da: xr.DataArray, ds: xr.Dataset) -> xr.DataArray | None:
     """The grid-mapping variable the field names (CF ``grid_mapping``), if the file holds it."""
     name = str(da.attrs.get("grid_mapping", da.encoding.get("grid_mapping", ""))).split(":")[0].strip()
@@ -516,6 +556,11 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
     for path in paths:
         da, ds = _open_one(path, spec.variable)
         datasets.append(ds)
+        valid = valid_range(da)
+        if valid is not None:
+            note = (f"values of {spec.variable} outside its valid range {valid[0]:g} to {valid[1]:g} (CF valid_range, "
+                    "valid_min, valid_max) are taken as missing")
+            notes += [note] if note not in notes else []
         axes, grid = find_axes(da, path)
         storage = storage_of(da, axes)
         if names and axes != names:
@@ -528,10 +573,10 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
         if rolled and rolled not in notes:
             notes.append(rolled)
         _check_steps_in_order(da, path)
-        pieces.append((path, da, ds[axes["time"]].encoding, storage))
-        _check_agreement(pieces[0], pieces[-1], spec.variable)
+        pieces.append((path, da, ds[axes["time"]].encoding, storage, valid))
+        _check_agreement(pieces[0][:3], pieces[-1][:3], spec.variable)
     pieces.sort(key=lambda p: p[1]["time"].values[0])
-    for (path_a, a, _, _), (path_b, b, _, _) in zip(pieces, pieces[1:]):
+    for (path_a, a, *_), (path_b, b, *_) in zip(pieces, pieces[1:]):
         for axis in ("lat", "lon", GRID_LAT, GRID_LON):
             if axis not in a.coords:
                 continue
@@ -544,7 +589,7 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
     encoding = {k: v for k, v in pieces[0][2].items() if k in ("units", "calendar", "dtype")}
     opened = OpenedField(xr.DataArray(), files, names, encoding, pieces=[p[1] for p in pieces], grid=grid_names,
                          grid_mapping=grid_mapping, opening_notes=notes, storages=[p[3] for p in pieces],
-                         datasets=datasets)
+                         datasets=datasets, valid=[p[4] for p in pieces])
     opened.restamped = any(moved)
     return rechunked(opened, spec.chunks)
 
@@ -593,8 +638,9 @@ def rechunked(opened: OpenedField, chunks: dict[str, int]) -> OpenedField:
     blocks of latitude rows with every time step.
     """
     sizes = {axis: chunks.get(axis, -1) for axis in ("time", "lat", "lon")}
-    data = xr.concat([piece.chunk(sizes) for piece in opened.pieces], dim="time", coords="minimal",
-                     compat="override", join="override")
+    valid = opened.valid or [None] * len(opened.pieces)
+    data = xr.concat([_within_valid(piece.chunk(sizes), bounds) for piece, bounds in zip(opened.pieces, valid)],
+                     dim="time", coords="minimal", compat="override", join="override")
     notes = [*opened.opening_notes, *_time_gaps(data["time"].values)]
     if opened.restamped:
         notes.append("time stamps moved to the middles of the files' time bounds")
@@ -603,6 +649,13 @@ def rechunked(opened: OpenedField, chunks: dict[str, int]) -> OpenedField:
         data = data.isel(lon=slice(0, -1))
         notes.append(f"dropped longitude {lon[-1]:g}: it repeats {lon[0]:g} on a global grid")
     return dataclasses.replace(opened, data=data, notes=notes)
+
+
+def _within_valid(piece: xr.DataArray, bounds: tuple[float, float] | None) -> xr.DataArray:
+    """``piece`` with the values outside its valid range (:func:`valid_range`) missing, lazily."""
+    if bounds is None:
+        return piece
+    return piece.where((piece >= bounds[0]) & (piece <= bounds[1])).assign_attrs(piece.attrs)
 
 
 def select(opened: OpenedField, spec: SelectSection) -> xr.DataArray:

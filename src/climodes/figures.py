@@ -19,6 +19,7 @@ Example
 
 from __future__ import annotations
 
+import contextlib
 import io
 import os
 import re
@@ -514,23 +515,37 @@ def replace_figures(ds: xr.Dataset, options: FigureOptions, folder: Path) -> tup
     A ``figures`` folder holding anything climodes does not write is left as it is, with an error.
     """
     final = folder / FIGURES_DIR
-    if final.exists():
-        foreign = [p.name for p in final.iterdir() if not (p.is_file() and _OURS.match(p.name))]
-        if foreign or not final.is_dir():
-            what = f"holds {foreign[0]}, which" if foreign else "is a file"
-            raise UserError(f"{final}: {what} climodes did not write; move it out of the way and draw again")
+    _refuse_foreign_figures(final, "")
     stage = folder / f".{FIGURES_DIR}.partial-{secrets.token_hex(4)}"
     os.mkdir(stage)  # with the user's umask, as the folder it becomes
     try:
         pictures = draw_all(ds, options, stage)
         if final.exists():
+            _refuse_foreign_figures(final, " while the figures were drawn")
             old = Path(tempfile.mkdtemp(prefix=f".{FIGURES_DIR}.old-", dir=folder))
             os.replace(final, old / FIGURES_DIR)
             os.replace(stage, final)
-            shutil.rmtree(old)
+            for name in os.listdir(old / FIGURES_DIR):  # only climodes' own figures go; anything else stays there
+                if _OURS.match(name) and os.path.isfile(old / FIGURES_DIR / name):
+                    os.unlink(old / FIGURES_DIR / name)
+            with contextlib.suppress(OSError):
+                os.rmdir(old / FIGURES_DIR)
+                os.rmdir(old)
         else:
             os.replace(stage, final)
     except BaseException:
         shutil.rmtree(stage, ignore_errors=True)
         raise
     return pictures, [final / f"{p.name}.{options.format}" for p in pictures]
+
+
+def _refuse_foreign_figures(final: Path, when: str) -> None:
+    """Refuse to replace a ``figures`` folder that holds anything climodes does not write (or is a file)."""
+    if not os.path.lexists(final):
+        return
+    if final.is_symlink() or not final.is_dir():
+        raise UserError(f"{final}: is not a folder climodes wrote; move it out of the way and draw again")
+    foreign = [p.name for p in final.iterdir() if not (p.is_file() and not p.is_symlink() and _OURS.match(p.name))]
+    if foreign:
+        raise UserError(f"{final}: holds {foreign[0]}, which climodes did not write{when}; move it out of the way and "
+                        "draw again")

@@ -458,7 +458,8 @@ def _run_files(spec: RunSpec) -> list[Path]:
     """The config file and every input file the run would read (patterns expanded, missing files skipped)."""
     found = [spec.source]
     for pattern in spec.input.paths:
-        found += [Path(p) for p in (sorted(glob.glob(pattern)) if glob.has_magic(pattern) else [pattern])]
+        literal = os.path.lexists(pattern) or not glob.has_magic(pattern)  # as fields.expand_paths reads it
+        found += [Path(p) for p in ([pattern] if literal else sorted(glob.glob(pattern)))]
     return found
 
 
@@ -849,12 +850,13 @@ def results_folder(spec: RunSpec, say: Callable[[str], None] = lambda line: None
 
 
 @contextlib.contextmanager
-def results_update(folder: Path) -> Iterator[None]:
+def results_update(folder: Path) -> Iterator[list[Path]]:
     """Change a finished results folder in place (its figures drawn again), keeping its manifest true.
 
     The folder must carry its mark and hold nothing climodes did not write; it is claimed as a run
-    claims it, so no run replaces it meanwhile.  When the block ends, the manifest lists what the
-    folder holds then (the block writes only climodes' own files into it, each atomically).
+    claims it, so no run replaces it meanwhile.  The block adds the files it writes (each atomically)
+    to the list it is given; when it ends, the manifest lists those and the files listed before that
+    are still there, never a file someone else put in the folder meanwhile.
     """
     folder = Path(folder)
     mark = read_mark(folder)
@@ -866,8 +868,10 @@ def results_update(folder: Path) -> Iterator[None]:
     me = _run_identity(Path(mark.get("config", "")))
     claim = _claim(folder, me)
     try:
-        yield
-        _write_mark(folder, {**mark, "updated": _now()}, listing(folder))
+        written: list[Path] = []
+        yield written
+        ours = set(mark["files"]) | {Path(path).relative_to(folder).as_posix() for path in written}
+        _write_mark(folder, {**mark, "updated": _now()}, [name for name in listing(folder) if name in ours])
     finally:
         with _signals_held(act=True), contextlib.suppress(OSError):
             if _read_json(claim) == me:
@@ -945,22 +949,27 @@ def write_file_atomically(path: Path, write: Callable[[Path], None], replace: bo
 # --- single files written outside a results folder (reconstructions, tables)
 
 
+_SIGNED = re.compile(r"climodes \d+\.\d+\S*")  # "climodes 0.1.0": what climodes signs its files with
+
+
 def written_by_climodes(path: Path) -> bool:
     """Whether the file ``path`` says climodes wrote it: a NetCDF file's ``source`` attribute, the first line
-    of a CSV table, the ``source`` of a Parquet file's metadata (see :func:`table_writer`)."""
+    of a CSV table (``# climodes VERSION: ...``), the ``source`` of a Parquet file's metadata (see
+    :func:`table_writer`), each naming climodes and its version."""
     try:
         if path.suffix == ".csv":
             with open(path, encoding="utf-8") as f:
-                return f.readline().startswith("# climodes")
+                first = f.readline(1000)
+            return first.startswith("# ") and bool(_SIGNED.fullmatch(first[2:].split(":", 1)[0]))
         if path.suffix == ".parquet":
             import pyarrow.parquet
 
             metadata = pyarrow.parquet.read_schema(path).metadata or {}
-            return metadata.get(b"source", b"").startswith(b"climodes")
+            return bool(_SIGNED.fullmatch(metadata.get(b"source", b"").decode(errors="replace")))
         import netCDF4
 
         with netCDF4.Dataset(path) as nc:
-            return str(getattr(nc, "source", "")).startswith("climodes")
+            return bool(_SIGNED.fullmatch(str(getattr(nc, "source", ""))))
     except Exception:  # unreadable, not of its kind: not a file climodes wrote
         return False
 

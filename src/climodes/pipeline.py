@@ -355,6 +355,7 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
         if stage is not None:
             with library_warnings(late):
                 late += _write(stage, results, spec, planned.opened)
+            late = [line for line in late if line not in notes]  # the results read back warn as the inputs did
             for line in late:
                 say(f"note: {line}")
             log = run_log(headline, table, where, notes + late, spec.to_yaml())
@@ -406,6 +407,10 @@ def submit(spec: RunSpec, system: str | None, dry_run: bool, wait: bool, show: C
     job = batch_job(spec.source, spec.compute, chosen, plan.method, field.shape, spec.modes.count,
                     field.dtype.itemsize, plan.memory, overwrite=spec.output.overwrite)
     text, path = batch_script(job, spec.compute), script_path(spec.source, chosen)
+    results = Path(os.path.abspath(spec.output.dir))
+    if results == Path(os.path.abspath(path)) or Path(os.path.abspath(path)) in results.parents:
+        raise UserError(f"output.dir: {spec.output.dir} is where the batch script {path} goes; choose another "
+                        "output.dir")
     write_script(path, text)
     show(text)
     if dry_run:
@@ -474,8 +479,9 @@ def redraw(results: str | Path, **overrides) -> tuple[FigureOptions, list[Path]]
             reason = str(err).split(": ", 1)[-1]
             raise UserError(f"--{key.replace('_', '-')} {value}: {reason}") from None
     try:
-        with results_update(target.parent):
-            return options, publish(target.parent, options)
+        with results_update(target.parent) as written:
+            written += publish(target.parent, options)
+            return options, written
     except OSError as err:
         raise UserError(f"{target.parent}: cannot write the figures ({err.strerror or err}); nothing was "
                         "replaced; free some space or check the folder's permissions") from None
@@ -656,6 +662,8 @@ def reconstruct(results: str | Path, modes: str, out: str | Path, anomalies: boo
     ``anomalies``), written as CF NetCDF to ``out`` block by block, atomically; an existing ``out`` is
     replaced only with ``overwrite`` and only if climodes wrote it.  Returns the line to print."""
     source, out = results_path(results), Path(out)
+    if source.exists() and out.exists() and os.path.samefile(source, out):
+        raise UserError(f"-o {out}: is the results file the modes are read from; give another name")
     check_output_file(out, overwrite)
     if out.suffix != ".nc":
         raise UserError(f"-o {out}: give a NetCDF file name ending in .nc")

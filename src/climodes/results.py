@@ -10,6 +10,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
+import numpy as np
 import xarray as xr
 
 from climodes.errors import UserError
@@ -69,3 +70,33 @@ def check_results(ds: xr.Dataset, where: str | Path) -> None:
         if ds[name].ndim != ndim or ds[name].dims[0] != "mode":
             raise UserError(f"{where}: {name} has dimensions {ds[name].dims}, not mode first and {ndim} in all; "
                             "the file was changed after climodes wrote it; run climodes again")
+    if damage := _damage(ds):
+        raise UserError(f"{where}: {damage}; the file was changed after climodes wrote it; run climodes again")
+
+
+def _damage(ds: xr.Dataset) -> str | None:
+    """What in a results file of the right shape cannot be what climodes wrote, if anything: mode numbers
+    other than 1..K, a PC time axis without dates, missing, infinite or non-positive eigenvalues, missing or
+    infinite shares or PC values, a map without a single value.  Reads the small variables and one map at a
+    time."""
+    mode = ds["mode"].values
+    if mode.size == 0 or mode.dtype.kind not in "iu" or not np.array_equal(mode, np.arange(1, mode.size + 1)):
+        return f"its mode numbers are {_few(mode)}, not 1 to {mode.size}"
+    time = ds["pc"].dims[1]
+    if time not in ds.coords or not (ds[time].dtype.kind == "M" or hasattr(ds[time].values.flat[0], "calendar")):
+        return f"the time axis {time} of pc holds no dates"
+    for name in ("eigenvalue", "variance_explained", "variance_explained_error", "pc"):
+        if not np.isfinite(ds[name].values).all():
+            return f"{name} holds missing or infinite values"
+    if (ds["eigenvalue"].values <= 0).any():
+        return f"eigenvalue holds values that are not positive ({_few(ds['eigenvalue'].values)})"
+    for k in range(mode.size):
+        if not ds["eof"].isel(mode=k).notnull().any():
+            return f"the eof map of mode {mode[k]} holds no value"
+    return None
+
+
+def _few(values: np.ndarray) -> str:
+    """The first few of ``values``, for a message."""
+    shown = [f"{v:.6g}" if isinstance(v, (float, np.floating)) else str(v) for v in values[:4]]
+    return ", ".join(shown) + (" ..." if values.size > 4 else "")
