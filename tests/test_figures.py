@@ -479,6 +479,9 @@ def test_figures_options_on_the_command_line(tmp_path, small_results, cli):
     assert code == 2 and "--format gif: expected one of png, svg, pdf" in err
     code, _, err = cli("figures", small_results, "--draw", "maps,charts")
     assert code == 2 and "--draw" in err and "maps, series, pairs, spectrum, residuals" in err
+    count = xr.open_dataset(small_results / "modes.nc").sizes["mode"]
+    code, _, err = cli("figures", small_results, "--local-modes", str(count + 1))
+    assert code == 2 and err.strip().endswith(f"holds {count} modes; give 1 to {count}")  # never clipped unsaid
     assert not (small_results / "figures").exists()
     code, out, err = cli("figures", small_results, "--draw", "spectrum", "--dpi", "60")
     assert code == 0 and [p.name for p in (small_results / "figures").iterdir()] == ["spectrum.png"]

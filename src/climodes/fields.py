@@ -487,7 +487,7 @@ def _grid_mapping(da: xr.DataArray, ds: xr.Dataset) -> xr.DataArray | None:
 
 def _check_agreement(first: tuple, other: tuple, variable: str) -> None:
     """Refuse files whose calendars or units differ from those of the first file (both named)."""
-    (path_a, a, encoding_a, _), (path_b, b, encoding_b, _) = first, other
+    (path_a, a, encoding_a, *_), (path_b, b, encoding_b, *_) = first, other
     calendar_a, calendar_b = _calendar(encoding_a), _calendar(encoding_b)
     kind_a, kind_b = a["time"].dtype.kind, b["time"].dtype.kind  # "M": numpy dates, "O": cftime dates
     # standard and proleptic_gregorian differ only before 1582-10-15, and xarray gives dates in numpy's
@@ -574,7 +574,7 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
             notes.append(rolled)
         _check_steps_in_order(da, path)
         pieces.append((path, da, ds[axes["time"]].encoding, storage, valid))
-        _check_agreement(pieces[0][:3], pieces[-1][:3], spec.variable)
+        _check_agreement(pieces[0], pieces[-1], spec.variable)
     pieces.sort(key=lambda p: p[1]["time"].values[0])
     for (path_a, a, *_), (path_b, b, *_) in zip(pieces, pieces[1:]):
         for axis in ("lat", "lon", GRID_LAT, GRID_LON):

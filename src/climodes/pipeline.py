@@ -468,6 +468,9 @@ def redraw(results: str | Path, **overrides) -> tuple[FigureOptions, list[Path]]
     target = results_path(results)
     with open_results(target) as ds:
         stored = (stored_config(ds).get("output") or {}).get("figures", True)
+        count = ds.sizes["mode"]
+    if (overrides.get("local_modes") or 0) > count:
+        raise UserError(f"--local-modes {overrides['local_modes']}: {target} holds {count} modes; give 1 to {count}")
     try:
         options = figure_options(stored) or FigureOptions()
     except ValueError:
