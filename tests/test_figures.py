@@ -422,6 +422,10 @@ def test_mixed_and_insignificant_modes_are_marked(small_results):
         assert ("not separated" in texts) == marked and ("not significant" in texts) == (k == 2)
         assert (_near(image, figures.CAREFUL, 20).mean() > 0.003) == marked
         plt.close(fig)
+    fig = figures.pairs_figure(ds)  # each pair names the modes that are not separated, not the pair as a whole
+    titles = [ax.get_title(loc="left") for ax in fig.axes if ax.get_title(loc="left")]
+    assert titles == ["PC 1 and PC 2 (PC 2 not separated)", "PC 2 and PC 3 (PC 2 and PC 3 not separated)"]
+    plt.close(fig)
 
 
 def test_title_names_variable_level_season_and_period(tmp_path, cli):

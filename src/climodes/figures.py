@@ -326,9 +326,10 @@ def pairs_figure(ds: xr.Dataset) -> Figure:
         ax.set_aspect("equal")
         ax.set_xlabel(f"PC {rows[i].mode}")
         ax.set_ylabel(f"PC {rows[j].mode}")
-        mixed = not (rows[i].separated and rows[j].separated)
-        ax.set_title(f"PC {rows[i].mode} and PC {rows[j].mode}" + (" (not separated)" if mixed else ""),
-                     loc="left", color=CAREFUL if mixed else "black")
+        unclear = [f"PC {row.mode}" for row in (rows[i], rows[j]) if not row.separated]
+        ax.set_title(f"PC {rows[i].mode} and PC {rows[j].mode}"
+                     + (f" ({' and '.join(unclear)} not separated)" if unclear else ""),
+                     loc="left", color=CAREFUL if unclear else "black")
     bar = fig.colorbar(cells, ax=axes, shrink=0.8, aspect=30)
     bar.set_label("time steps per hexagon" + (" (log scale)" if steps > 2000 else ""))
     _header(fig, "Leading PCs against each other", context_text(ds) + "; dashed circles: 1 and 2 standard deviations",
