@@ -306,3 +306,26 @@ def test_the_history_says_what_made_the_results(tmp_path, small_field, monkeypat
     results = climodes.analyse(field, modes={"count": 2})
     assert "climodes.analyse (Python) of DataArray 'tas'" in results.attrs["history"]
     assert "climodes.project (Python) of DataArray 'tas'" in climodes.project(results, field).attrs["history"]
+
+
+def test_what_is_not_a_field_or_results_is_named(small_field):
+    """Objects of the wrong kind, as a notebook hands them over, get one line naming what was expected and what
+    came (common practice, as scikit-learn's input checks do); numpy's integers count as numbers."""
+    field = xr.open_dataset(small_field)
+    cases = {
+        "open_results of a number": (lambda: climodes.open_results(5), "a results folder, its modes.nc or the "
+                                     "Dataset of a run; got int"),
+        "analyse of None": (lambda: climodes.analyse(None), "expected an xarray.DataArray with time, latitude and "
+                            "longitude axes; got NoneType"),
+        "analyse of a Dataset": (lambda: climodes.analyse(field), "got Dataset (pick one variable: dataset[name])"),
+        "project a Dataset": (lambda: climodes.project(climodes.analyse(field["tas"], modes={"count": 2}), field),
+                              "got Dataset (pick one variable: dataset[name])"),
+    }
+    for name, (call, expected) in cases.items():
+        with pytest.raises(climodes.UserError) as caught:
+            call()
+        assert str(caught.value).endswith(expected) and "\n" not in str(caught.value), name
+    results = climodes.analyse(field["tas"], modes={"count": np.int64(2), "seed": np.int32(3)},
+                               prepare={"max_missing": np.float32(0.25)})
+    assert results.sizes["mode"] == 2
+    xr.testing.assert_identical(climodes.reconstruct(results, np.int64(2)), climodes.reconstruct(results, 2))

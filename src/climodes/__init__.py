@@ -13,6 +13,7 @@ messages the command line prints.
 
 from __future__ import annotations
 
+import numbers
 import os
 from collections.abc import Mapping
 from importlib.metadata import PackageNotFoundError, version
@@ -171,6 +172,10 @@ def analyse(data: xr.DataArray, *, write: bool = False, **sections: Mapping[str,
     from climodes.errors import ConfigError
     from climodes.pipeline import run as run_spec
 
+    if not _is_array(data):
+        raise UserError(f"expected an xarray.DataArray with time, latitude and longitude axes; got "
+                        f"{type(data).__name__}" + (" (pick one variable: dataset[name])"
+                                                    if type(data).__name__ == "Dataset" else ""))
     given = dict(sections.get("input") or {})
     taken = [key for key in ("paths", "variable") if key in given]
     if taken:
@@ -269,6 +274,11 @@ def project(results: str | os.PathLike | xr.Dataset, other: str | os.PathLike | 
         sections = {**sections, "input": {**dict(sections.get("input") or {}), "paths": [IN_MEMORY],
                                           "variable": str(name or "field")}}
         data, spec = other, load_config(sections)
+    elif type(other).__name__ == "Dataset" or not (_is_path(other) or isinstance(other, Mapping)
+                                                    or type(other).__name__ == "RunSpec"):
+        raise UserError(f"project: expected the other field as an xarray.DataArray, or a config (a path or a "
+                        f"mapping); got {type(other).__name__}" + (" (pick one variable: dataset[name])"
+                                                                   if type(other).__name__ == "Dataset" else ""))
     elif sections:
         raise UserError(f"project: the sections {', '.join(sections)} go with a DataArray; with a config, change "
                         "the config")
@@ -362,10 +372,11 @@ def _modes_text(modes: object) -> str:
     """Mode numbers as the command line's ``--modes`` takes them: ``"1-3"`` as it is, ``2`` or ``[1, 2]``."""
     if isinstance(modes, str):
         return modes
-    numbers = [modes] if isinstance(modes, int) else list(modes) if isinstance(modes, (list, tuple, range)) else None
-    if not numbers or not all(isinstance(n, int) and not isinstance(n, bool) for n in numbers):
+    whole = lambda n: isinstance(n, numbers.Integral) and not isinstance(n, bool)  # numpy's integers too
+    listed = [modes] if whole(modes) else list(modes) if isinstance(modes, (list, tuple, range)) else None
+    if not listed or not all(whole(n) for n in listed):
         raise UserError(f"modes {modes!r}: give mode numbers such as \"1-3\", 2 or [1, 4]")
-    return ",".join(map(str, numbers))
+    return ",".join(str(int(n)) for n in listed)
 
 
 def _is_path(config: object) -> bool:

@@ -625,7 +625,19 @@ def spec_from_mapping(data: Any, folder: str | Path | None = None) -> RunSpec:
         With one ``config: key: problem`` line per problem found.
     """
     base = Path(folder if folder is not None else os.getcwd()).resolve()
-    return _validated(data, base / MAPPING_NAME, MAPPING_NAME, None, [])
+    return _validated(_plain(data), base / MAPPING_NAME, MAPPING_NAME, None, [])
+
+
+def _plain(value: Any) -> Any:
+    """``value`` with numpy's numbers and arrays (as a notebook's arithmetic gives them) turned into the
+    Python numbers and lists a YAML file would give."""
+    if isinstance(value, dict):
+        return {key: _plain(item) for key, item in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_plain(item) for item in value]
+    if type(value).__module__ == "numpy" and hasattr(value, "tolist"):
+        return value.tolist()
+    return value
 
 
 def _at(where: str, lines: dict | None, path: tuple[str, ...], fallback: tuple[str, ...] = ()) -> str:

@@ -8,6 +8,7 @@ same way everywhere.
 
 from __future__ import annotations
 
+import os
 from pathlib import Path
 
 import numpy as np
@@ -21,6 +22,9 @@ _SHAPES = {"eof": 3, "pc": 2, "eigenvalue": 1, "variance_explained": 1, "varianc
 
 def results_path(path: str | Path) -> Path:
     """The ``modes.nc`` of a results folder, or ``path`` itself when it names a file."""
+    if not isinstance(path, (str, os.PathLike)):
+        raise UserError(f"expected climodes results: a results folder, its {RESULTS_FILE} or the Dataset of a run; "
+                        f"got {type(path).__name__}")
     path = Path(path)
     return path / RESULTS_FILE if path.is_dir() else path
 
