@@ -261,3 +261,21 @@ def test_a_run_that_writes_nothing_copies_into_a_temporary_folder(tmp_path, cli,
     assert made and not any(folder.exists() for folder in made)
     assert not (tmp_path / "steps-randomized-time" / "out" / ".field-scratch").exists()
     _same(in_memory, written, 1e-8)
+
+
+def test_batch_workers_get_no_scratch_copy_in_a_local_temporary_folder(tmp_path):
+    """A run that writes nothing has no results folder that every worker can see: on batch workers (which
+    may run on other machines) no scratch copy is made, since a worker would read its own machine's empty
+    temporary folder; on this machine one goes to a temporary folder removed at the end."""
+    from dataclasses import replace
+
+    from climodes.config import ComputeSection
+
+    local = ComputeSection()
+    with climodes.pipeline._scratch_folder(None, local) as folder:
+        assert Path(folder).is_dir()
+    assert not Path(folder).exists()
+    with climodes.pipeline._scratch_folder(None, replace(local, scheduler="slurm")) as folder:
+        assert folder is None
+    with climodes.pipeline._scratch_folder(tmp_path, replace(local, scheduler="slurm")) as folder:
+        assert folder == tmp_path  # the staging folder of the results, beside output.dir

@@ -24,6 +24,7 @@ import xarray as xr
 from dask.array import PerformanceWarning
 
 from climodes.cluster import (
+    SYSTEMS,
     batch_job,
     batch_script,
     batch_system,
@@ -235,13 +236,18 @@ def check(spec: RunSpec) -> list[str]:
     ]
 
 
-def _scratch_folder(stage: Path | None) -> ContextManager[str | Path]:
+def _scratch_folder(stage: Path | None, compute: ComputeSection) -> ContextManager[str | Path | None]:
     """Where a scratch copy of the field may go: the results' staging folder, or, for a run that writes
-    nothing, a temporary folder removed when the run ends."""
-    return contextlib.nullcontext(stage) if stage is not None else tempfile.TemporaryDirectory(prefix="climodes-")
+    nothing, a temporary folder removed when the run ends; none for such a run on batch workers, which may
+    sit on other machines than this temporary folder."""
+    if stage is not None:
+        return contextlib.nullcontext(stage)
+    if compute.scheduler in SYSTEMS:
+        return contextlib.nullcontext(None)
+    return tempfile.TemporaryDirectory(prefix="climodes-")
 
 
-def _solve(spec: RunSpec, planned: Planned, progress: bool, scratch: str | Path):
+def _solve(spec: RunSpec, planned: Planned, progress: bool, scratch: str | Path | None):
     """The decomposition of the planned field (the first pass over the data happens here), where
     ``compute`` says; a streaming solver gets the field opened again in its blocks of latitude rows, or,
     when the plan reads in the files' own order (:mod:`climodes.storage`), in blocks of whole time chunks
@@ -249,8 +255,9 @@ def _solve(spec: RunSpec, planned: Planned, progress: bool, scratch: str | Path)
     point counts, the compute session (where it ran), the red-noise test (None when it was not asked for)
     and the reading order used."""
     field, along_time, plan, reading = planned.field, planned.along_time, planned.plan, planned.reading
-    scratch = Path(scratch)
-    if reading.order == TIME and not scratch_room(scratch, field.size * field.dtype.itemsize):
+    if reading.order == TIME and scratch is None:
+        reading = Reading(ROWS, "no results folder to hold a scratch copy that the batch workers can read")
+    elif reading.order == TIME and not scratch_room(Path(scratch), field.size * field.dtype.itemsize):
         reading = Reading(ROWS, f"no room for a scratch copy of the field in {scratch}")
     if plan.lat_rows:
         blocks = ({"time": -1, "lat": plan.lat_rows, "lon": -1} if reading.order == ROWS
@@ -260,7 +267,7 @@ def _solve(spec: RunSpec, planned: Planned, progress: bool, scratch: str | Path)
     limit = walltime(spec.compute, plan.method, field.shape, spec.modes.count, field.dtype.itemsize,
                      planned.room.workers)
     with running(spec.compute, progress, limit, spec.source.parent) as session:
-        with staged(field, reading, plan.lat_rows or -1, scratch, session.during, planned.opened.close_files) as field:
+        with staged(field, reading, plan.lat_rows or -1, None if scratch is None else Path(scratch), session.during, planned.opened.close_files) as field:
             modes, result, counts = solve(field, planned.weights, spec.modes.count, spec.prepare.max_missing, plan,
                                           spec.modes.seed, session.during, along_time)
         tested = _red_noise(spec, result, planned.weights, field.sizes["time"], session.during)
@@ -324,7 +331,7 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
     out = Path(spec.output.dir)
     with results_folder(spec, say) if write else contextlib.nullcontext() as stage:
         warned: list[str] = []
-        with library_warnings(warned), _scratch_folder(stage) as scratch:
+        with library_warnings(warned), _scratch_folder(stage, spec.compute) as scratch:
             planned = _plan(spec, data)
             modes, result, counts, session, tested, reading = _solve(spec, planned, progress, scratch)
         notes = planned.notes + counts.notes + result.notes + warned
