@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import contextlib
 import os
+import re
 import tempfile
 import time
 import warnings
@@ -236,6 +237,24 @@ def check(spec: RunSpec) -> list[str]:
     ]
 
 
+# How the readers of compressed files say that the bytes they were given cannot be decoded.
+_DAMAGE = re.compile(r"NetCDF: HDF error|decompress|[Cc]orrupt|checksum|[Ii]nvalid input data")
+
+
+@contextlib.contextmanager
+def damaged_files(spec: RunSpec) -> Iterator[None]:
+    """Turn a reader's failure to decode a chunk of the input (a damaged or cut-short file, found only when
+    its values are read) into one line naming the input and what to do."""
+    try:
+        yield
+    except (RuntimeError, OSError, ValueError) as err:
+        reason = str(err).splitlines()[0] if str(err) else ""
+        if not _DAMAGE.search(reason):
+            raise
+        raise UserError(f"{', '.join(spec.input.paths)}: a chunk of {spec.input.variable} cannot be decoded "
+                        f"({reason}); a file is damaged or was copied incompletely: copy it again") from None
+
+
 def _scratch_folder(stage: Path | None, compute: ComputeSection) -> ContextManager[str | Path | None]:
     """Where a scratch copy of the field may go: the results' staging folder, or, for a run that writes
     nothing, a temporary folder removed when the run ends; none for such a run on batch workers, which may
@@ -333,7 +352,8 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
         warned: list[str] = []
         with library_warnings(warned), _scratch_folder(stage, spec.compute) as scratch:
             planned = _plan(spec, data)
-            modes, result, counts, session, tested, reading = _solve(spec, planned, progress, scratch)
+            with damaged_files(spec):
+                modes, result, counts, session, tested, reading = _solve(spec, planned, progress, scratch)
         notes = planned.notes + counts.notes + result.notes + warned
         kept = modes.sizes["mode"]
         steps = planned.field.sizes["time"]
@@ -630,7 +650,9 @@ def project(results: str | Path | xr.Dataset, spec: RunSpec, say: Callable[[str]
                 limit = walltime(spec.compute, "gram", field.shape, trained.sizes["mode"], field.dtype.itemsize,
                                  plan.room.workers)
                 with running(spec.compute, progress, limit, spec.source.parent) as session:
-                    products, squares, fraction = projected(field, trained, plan.fitted, plan.keys, session.during)
+                    with damaged_files(spec):
+                        products, squares, fraction = projected(field, trained, plan.fitted, plan.keys,
+                                                                session.during)
             check_points(fraction, trained, field, plan.max_missing, plan.source)
             used = trained["point_status"].values.reshape(-1) == 2
             filled = int(round(float(np.sum(fraction[used])) * field.sizes["time"]))
