@@ -329,3 +329,14 @@ def test_what_is_not_a_field_or_results_is_named(small_field):
                                prepare={"max_missing": np.float32(0.25)})
     assert results.sizes["mode"] == 2
     xr.testing.assert_identical(climodes.reconstruct(results, np.int64(2)), climodes.reconstruct(results, 2))
+
+
+def test_notes_reach_a_notebook_through_the_climodes_logger(small_field, caplog):
+    """What the command line prints as notes comes as warnings of the ``climodes`` logger (a notebook shows
+    them) and stays in the results' ``climodes_notes`` (common practice: library messages go to logging)."""
+    field = xr.open_dataset(small_field)["tas"].load()
+    field[::7, 1, 1] = np.nan  # gaps at one point: the run notes the values it set to zero anomaly
+    with caplog.at_level("WARNING", logger="climodes"):
+        results = climodes.analyse(field, modes={"count": 2})
+    told = [record.getMessage() for record in caplog.records if record.name == "climodes"]
+    assert told and told == results.attrs["climodes_notes"].splitlines()

@@ -11,6 +11,8 @@ import numpy as np
 import pytest
 import xarray as xr
 
+import climodes
+
 from climodes.config import InputSection, SelectSection
 from climodes.errors import UserError
 from climodes.fields import open_field, select
@@ -135,6 +137,10 @@ def test_values_outside_the_valid_range_are_missing(tmp_path, cli, declared):
     assert "are taken as missing" in err and "set 3 missing values at 1 points to zero anomaly" in err
     np.testing.assert_allclose(results[1]["eigenvalue"], results[0]["eigenvalue"], rtol=1e-10)
     np.testing.assert_allclose(results[1]["eof"], results[0]["eof"], atol=1e-10)
+    with xr.open_dataset(tmp_path / "declared" / "f.nc") as opened:  # the same file given from Python
+        in_memory = climodes.analyse(opened["tas"], modes={"count": 2})
+    assert "are taken as missing" in in_memory.attrs["climodes_notes"]
+    np.testing.assert_allclose(in_memory["eigenvalue"], results[0]["eigenvalue"], rtol=1e-10)
 
 
 def test_gaps_in_time_are_allowed_and_reported(tmp_path, cli):

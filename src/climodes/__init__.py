@@ -13,6 +13,7 @@ messages the command line prints.
 
 from __future__ import annotations
 
+import logging
 import numbers
 import os
 from collections.abc import Mapping
@@ -70,7 +71,7 @@ def load_config(config: str | os.PathLike | Mapping | RunSpec, folder: str | os.
     ...     climodes.load_config({"input": {"variable": "sst"}, "modes": {"count": 0}})
     ... except climodes.UserError as err:
     ...     print("\\n".join(err.problems))
-    config: input.paths: required (NetCDF files or glob patterns, read from the config's folder)
+    config: input.paths: required (NetCDF files, Zarr stores (*.zarr) or glob patterns, read from the config's folder)
     config: modes.count: expected a whole number from 1 to 100000; got 0
     """
     from climodes.config import RunSpec, load_spec, spec_from_mapping
@@ -127,7 +128,8 @@ def run(config: str | os.PathLike | Mapping | RunSpec, write: bool = False) -> x
     from climodes.pipeline import run as run_spec
 
     spec = load_config(config)
-    return run_spec(spec, write=write, command=None if _is_path(config) else _by_python("run", spec)).results
+    return run_spec(spec, say=_tell, write=write,
+                    command=None if _is_path(config) else _by_python("run", spec)).results
 
 
 def analyse(data: xr.DataArray, *, write: bool = False, **sections: Mapping[str, Any]) -> xr.Dataset:
@@ -184,7 +186,7 @@ def analyse(data: xr.DataArray, *, write: bool = False, **sections: Mapping[str,
     name = getattr(data, "name", None)
     sections = {**sections, "input": {**given, "paths": [IN_MEMORY], "variable": str(name or "field")}}
     spec = load_config(sections)
-    return run_spec(spec, data=data, write=write, command=_by_python("analyse", spec, data)).results
+    return run_spec(spec, say=_tell, data=data, write=write, command=_by_python("analyse", spec, data)).results
 
 
 def open_results(path: str | os.PathLike) -> xr.Dataset:
@@ -285,7 +287,7 @@ def project(results: str | os.PathLike | xr.Dataset, other: str | os.PathLike | 
     else:
         spec = load_config(other)
     command = None if _is_path(other) else _by_python("project", spec, data)
-    return project_spec(results, spec, data=data, write=write, command=command).results
+    return project_spec(results, spec, say=_tell, data=data, write=write, command=command).results
 
 
 def reconstruct(results: str | os.PathLike | xr.Dataset, modes: str | int | Sequence[int],
@@ -366,6 +368,12 @@ def coefficient_table(results: str | os.PathLike | xr.Dataset) -> pd.DataFrame:
     finally:
         if mine:
             trained.close()
+
+
+def _tell(line: str) -> None:
+    """A note about the data (what the command line prints as ``note: ...``), as a warning of the
+    ``climodes`` logger, which a notebook shows; the results keep every note in ``attrs["climodes_notes"]``."""
+    logging.getLogger("climodes").warning(line.removeprefix("note: "))
 
 
 def _modes_text(modes: object) -> str:

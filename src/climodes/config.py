@@ -343,7 +343,7 @@ def _key(check: Callable[[Any], Any], doc: str, default: Any = dataclasses.MISSI
 
 @dataclass(frozen=True)
 class InputSection:
-    paths: list[str] = _key(_paths, "NetCDF files or glob patterns, read from the config's folder")
+    paths: list[str] = _key(_paths, "NetCDF files, Zarr stores (*.zarr) or glob patterns, read from the config's folder")
     variable: str = _key(_name, "name of the field's variable in the files")
     chunks: dict[str, int] = _key(_chunks, "dask chunk length per axis (time, lat, lon)", {"time": 120})
     cell_area: str | None = _key(_optional_name, "variable in the files holding cell areas (else the one CF "

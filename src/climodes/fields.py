@@ -446,6 +446,12 @@ def _in_grid_order(da: xr.DataArray, names: dict[str, str], path: str) -> tuple[
     return da.isel(lon=np.roll(np.arange(lon.size), -start)), note
 
 
+def _valid_note(variable: str, valid: tuple[float, float]) -> str:
+    return (f"values of {variable} outside its valid range {valid[0]:g} to {valid[1]:g} (CF valid_range, valid_min, "
+            "valid_max) are taken as missing and counted with the missing values below; if that range is stale and "
+            "real values lie outside it, correct or remove the attribute")
+
+
 def valid_range(da: xr.DataArray) -> tuple[float, float] | None:
     """The range of valid values the field's CF attributes declare (``valid_range``, or ``valid_min`` and
     ``valid_max``), in the field's unpacked units, or None when it declares none.
@@ -557,10 +563,8 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
         da, ds = _open_one(path, spec.variable)
         datasets.append(ds)
         valid = valid_range(da)
-        if valid is not None:
-            note = (f"values of {spec.variable} outside its valid range {valid[0]:g} to {valid[1]:g} (CF valid_range, "
-                    "valid_min, valid_max) are taken as missing")
-            notes += [note] if note not in notes else []
+        if valid is not None and _valid_note(spec.variable, valid) not in notes:
+            notes.append(_valid_note(spec.variable, valid))
         axes, grid = find_axes(da, path)
         storage = storage_of(da, axes)
         if names and axes != names:
@@ -623,8 +627,11 @@ def field_from_array(data: xr.DataArray, spec: InputSection, choice: SelectSecti
     da, restamped, rolled, mapping = _standard_piece(data, known, axes, grid, spec, choice, where)
     _check_steps_in_order(da, where)
     encoding = {k: v for k, v in data[axes["time"]].encoding.items() if k in ("units", "calendar", "dtype")}
+    valid = valid_range(data)
+    notes = [rolled] if rolled else []
+    notes += [_valid_note(spec.variable, valid)] if valid is not None else []
     opened = OpenedField(xr.DataArray(), [], axes, encoding, pieces=[da], grid=grid, grid_mapping=mapping,
-                         opening_notes=[rolled] if rolled else [])
+                         opening_notes=notes, valid=[valid])
     opened.restamped = restamped
     return rechunked(opened, spec.chunks)
 
