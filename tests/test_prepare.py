@@ -415,3 +415,20 @@ def test_the_examples_in_the_module_hold():
     import climodes.prepare
 
     assert doctest.testmod(climodes.prepare).failed == 0
+
+
+@pytest.mark.parametrize("baseline, said", [
+    (["1981", "1992"], "the data cover 3 of its 12 years (1990 to 1992)"),
+    (["1991", "1995"], "the data cover 2 of its 5 years (1991 to 1992)"),
+    (["1990", "1992"], None),
+    (["1991-01", "1991-12"], None),
+])
+def test_a_baseline_the_data_cover_only_in_part_is_noted(baseline, said):
+    """Common practice: a climatology of fewer years than the baseline named is a different climatology; the
+    run says of how many years it is, and nothing when the data cover the whole baseline."""
+    field = _monthly(np.arange(36.0))  # 1990 to 1992
+    notes: list[str] = []
+    time_steps(field, PrepareSection(anomalies="climatology", baseline=baseline), None, notes)
+    found = [note for note in notes if note.startswith("prepare.baseline")]
+    assert found == ([] if said is None else [f"prepare.baseline {baseline[0]} to {baseline[1]}: {said}, so the "
+                                              "climatology is of those years only"])

@@ -647,6 +647,16 @@ def detrend_linear(da: xr.DataArray) -> xr.DataArray:
     return climatology_step(da, "none", None).then("trend").applied(da)
 
 
+def _short_baseline(time: xr.DataArray, baseline: list[str]) -> list[str]:
+    """A note when the data cover only some of the baseline's years (the climatology is then of those)."""
+    years = np.unique(time.dt.year.values[in_period(time.values, baseline, "prepare.baseline")])
+    span = int(baseline[1].split("-")[0]) - int(baseline[0].split("-")[0]) + 1
+    if years.size >= span:
+        return []
+    return [f"prepare.baseline {baseline[0]} to {baseline[1]}: the data cover {years.size} of its {span} years "
+            f"({years[0]} to {years[-1]}), so the climatology is of those years only"]
+
+
 def standardize(da: xr.DataArray) -> xr.DataArray:
     """Divide each point by its standard deviation in time; constant points become missing."""
     return climatology_step(da, "none", None).then("scale").applied(da).assign_attrs({**da.attrs, "units": "1"})
@@ -657,6 +667,8 @@ def time_steps(da: xr.DataArray, spec: PrepareSection, months: list[int] | None,
     """The selected field's seasonal or annual means (lazy), and the steps of ``spec`` that follow them."""
     da = aggregate(da, spec.aggregate, months, notes)
     steps = climatology_step(da, spec.anomalies, spec.baseline)
+    if spec.anomalies != "none" and spec.baseline is not None:
+        notes += _short_baseline(da["time"], spec.baseline)
     if spec.detrend == "linear":
         steps = steps.then("trend")
     if spec.standardize:
