@@ -682,3 +682,14 @@ def test_a_reader_that_goes_away_is_no_error(monkeypatch, capsys):
     monkeypatch.setattr(sys, "stdout", ClosedPipe())
     assert main(["template"]) == 0
     assert capsys.readouterr().err == ""
+
+
+def test_check_names_an_input_problem_before_the_existing_results(small_field, tmp_path, cli):
+    """The loop of editing a config and running check: once results exist (overwrite off), a wrong variable
+    name is still what check reports, not only the results folder it would not replace (common practice)."""
+    config = write_config(tmp_path, [small_field], modes={"count": 2})
+    assert cli("run", config)[0] == 0
+    assert "exists already" in cli("check", config)[2]
+    wrong = write_config(tmp_path, [small_field], modes={"count": 2}, input={"variable": "tsa"})
+    code, _, err = cli("check", wrong)
+    assert code == 2 and "tsa" in err and "exists already" not in err and len(err.strip().splitlines()) == 1

@@ -219,10 +219,10 @@ def check(spec: RunSpec) -> list[str]:
         Whatever :func:`run` would raise before its first pass over the data.
     """
     warned: list[str] = []
-    with library_warnings(warned):
+    with library_warnings(warned):  # the inputs first: an existing results folder must not hide their problems
+        planned = _plan(spec)
         where = check_output_dir(spec)
         check_batch_commands(spec.compute)
-        planned = _plan(spec)
     field, files = planned.field, planned.opened.files
     times = field["time"].values
     grid = f"{field.sizes['lat']} x {field.sizes['lon']}" + (" (curvilinear)" if GRID_LAT in field.coords else "")
