@@ -579,14 +579,19 @@ def _foreign_results(tmp_path):
 @pytest.mark.parametrize("target, expected", [
     ("missing", "no such results file"),
     ("field.nc", "not a climodes results file"),
-    ("text.nc", "cannot be read as NetCDF"),
+    ("text.nc", "text.nc: cannot be read as NetCDF (not a NetCDF file); give a results folder written by climodes "
+                "run or its modes.nc"),
     ("empty.nc", "empty.nc: the file is empty"),
+    ("projected", "projected: holds a projection (projection.nc), not the modes of a run; give the results folder "
+                  "of the run it was projected onto"),
     ("foreign.nc", "not a climodes results file (made by 'a model post-processor')"),
     ("flat.nc", "flat.nc: eof has dimensions ('mode', 'x')"),
 ])
 def test_show_refuses_what_is_not_results(tmp_path, small_field, cli, target, expected):
     (tmp_path / "text.nc").write_text("not netcdf")
     (tmp_path / "empty.nc").write_bytes(b"")
+    (tmp_path / "projected").mkdir()
+    (tmp_path / "projected" / "projection.nc").write_bytes(b"")
     _foreign_results(tmp_path)
     code, out, err = cli("show", tmp_path / target)
     assert code == 2 and expected in err and len(err.strip().splitlines()) == 1 and out == ""

@@ -87,7 +87,7 @@ from climodes.report import (
     table_line,
     variance_table,
 )
-from climodes.results import check_results, open_results, results_path
+from climodes.results import PROJECTION_FILE, check_results, open_results, results_path
 from climodes.reuse import (
     check_points,
     check_same_grid,
@@ -518,8 +518,6 @@ def redraw(results: str | Path, **overrides) -> tuple[FigureOptions, list[Path]]
 
 
 # --- reusing the modes of a finished run: project, reconstruct, table
-
-PROJECTION_FILE = "projection.nc"
 
 
 @dataclass

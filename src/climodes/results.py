@@ -17,6 +17,7 @@ import xarray as xr
 from climodes.errors import UserError
 
 RESULTS_FILE = "modes.nc"
+PROJECTION_FILE = "projection.nc"  # what climodes project writes into its own results folder
 _SHAPES = {"eof": 3, "pc": 2, "eigenvalue": 1, "variance_explained": 1, "variance_explained_error": 1}
 
 
@@ -39,6 +40,9 @@ def open_results(path: str | Path) -> xr.Dataset:
     """
     target = results_path(path)
     if not target.exists():
+        if (target.parent / PROJECTION_FILE).exists():
+            raise UserError(f"{target.parent}: holds a projection ({PROJECTION_FILE}), not the modes of a run; give "
+                            f"the results folder of the run it was projected onto")
         raise UserError(f"{target}: no such results file; give a results folder or its {RESULTS_FILE}")
     if target.stat().st_size == 0:
         raise UserError(f"{target}: the file is empty; run climodes again to write it")
@@ -46,7 +50,10 @@ def open_results(path: str | Path) -> xr.Dataset:
         ds = xr.open_dataset(target, decode_timedelta=False)
     except Exception as err:  # any backend's error: the file is not readable NetCDF
         reason = str(err).splitlines()[0] if str(err) else type(err).__name__
-        raise UserError(f"{target}: cannot be read as NetCDF ({reason})") from None
+        if "backends" in reason:  # xarray found no reader: its advice on installing more does not apply here
+            reason = "not a NetCDF file"
+        raise UserError(f"{target}: cannot be read as NetCDF ({reason}); give a results folder written by "
+                        "climodes run or its modes.nc") from None
     try:
         check_results(ds, target)
     except UserError:
