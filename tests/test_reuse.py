@@ -95,6 +95,8 @@ def test_the_training_field_projects_onto_its_own_pcs(tmp_path, cli, trained, me
     code, out, err = cli("project", results, config)
     assert code == 0, err
     assert "the prepare and modes sections of" in err and "are not used" in err
+    only_modes = _project_config(tmp_path / "modes only", [path], modes={"count": 7})
+    assert "the modes section of" in cli("project", "--check", results, only_modes)[2]
     assert out.startswith("climodes: projected tas from 1 file(s), 240 time steps, onto the 3 modes of")
     projection = xr.open_dataset(tmp_path / "again" / "out" / "projection.nc")
     modes = xr.open_dataset(results / "modes.nc")
@@ -150,6 +152,7 @@ def test_projection_and_check_follow_the_config(tmp_path, cli, trained):
     assert lines[0] == f"reads    tas from 1 file(s), first {path}"
     assert lines[3].startswith("projects onto the 3 modes of") and "(climatology, trend, offset)" in lines[3]
     assert lines[5] == f"writes   {tmp_path / 'again' / 'out'} (a new folder)"
+    assert "not used" not in err  # the config has no prepare or modes section to ignore
     assert not (tmp_path / "again" / "out").exists()
     assert cli("project", "--quiet", results, config) == (0, "", "")
     code, _, err = cli("project", results, config)

@@ -449,6 +449,7 @@ class RunSpec:
     compute: ComputeSection
     output: OutputSection
     written: dict[tuple[str, str], tuple[Any, Any]] = field(default_factory=dict, compare=False)
+    given: tuple[str, ...] = field(default=(), compare=False)  # the sections the config wrote (the rest: defaults)
 
     def to_yaml(self) -> str:
         """The configuration with every default filled in, as YAML text (what ``climodes check`` prints).
@@ -683,7 +684,7 @@ def _validated(data: Any, source: Path, where: str, lines: dict | None, problems
             resolved[name] = cls(**values)
     if problems:
         raise ConfigError(_by_line(problems))
-    spec = RunSpec(source=source, **resolved)
+    spec = RunSpec(source=source, **resolved, given=tuple(name for name in SECTIONS if data.get(name)))
     _check_together(spec, lines, where, problems)
     _check_name_lengths(spec, lines, where, problems)
     if problems:

@@ -618,7 +618,7 @@ def check_projection(results: str | Path, spec: RunSpec) -> list[str]:
     grid = f"{field.sizes['lat']} x {field.sizes['lon']}" + (" (curvilinear)" if GRID_LAT in field.coords else "")
     lines = projection_plan_lines(spec.input.variable, plan.opened.files, field["time"].values, grid,
                                   plan.results.sizes["mode"], plan.source, _steps_text(plan.fitted), plan.blocks, where)
-    return lines + [f"note: {line}" for line in [ignored_sections_note(spec.source, plan.source), *plan.notes,
+    return lines + [f"note: {line}" for line in [*ignored_sections_note(spec.source, spec.given, plan.source), *plan.notes,
                                                    *warned]]
 
 
@@ -654,7 +654,7 @@ def project(results: str | Path | xr.Dataset, spec: RunSpec, say: Callable[[str]
             check_points(fraction, trained, field, plan.max_missing, plan.source)
             used = trained["point_status"].values.reshape(-1) == 2
             filled = int(round(float(np.sum(fraction[used])) * field.sizes["time"]))
-            ignored = [ignored_sections_note(spec.source, plan.source)] if data is None else []
+            ignored = ignored_sections_note(spec.source, spec.given, plan.source) if data is None else []
             notes = [*ignored, *plan.notes, *warned]
             if filled:
                 notes.append(f"set {filled} missing values at {int(np.sum(fraction[used] > 0))} points to zero anomaly")

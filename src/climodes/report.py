@@ -353,10 +353,13 @@ def modes_text(which: list[int]) -> str:
     return ", ".join(f"{r[0]}-{r[-1]}" if len(r) > 2 else ", ".join(map(str, r)) for r in runs)
 
 
-def ignored_sections_note(config: Path, results: Path) -> str:
-    """Why a projection config's ``prepare`` and ``modes`` sections change nothing."""
-    return (f"the prepare and modes sections of {config} are not used: the modes and the preparation fitted in "
-            f"{results} apply to the field")
+def ignored_sections_note(config: Path, given: tuple[str, ...], results: Path) -> list[str]:
+    """Why a projection config's ``prepare`` and ``modes`` sections change nothing, if it has any."""
+    ignored = [name for name in ("prepare", "modes") if name in given]
+    if not ignored:
+        return []
+    return [f"the {' and '.join(ignored)} section{'s' * (len(ignored) > 1)} of {config} {'are' if len(ignored) > 1 else 'is'} "
+            f"not used: the modes and the preparation fitted in {results} apply to the field"]
 
 
 def projection_plan_lines(variable: str, files: list, times: np.ndarray, grid: str, count: int, results: Path,
