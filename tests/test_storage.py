@@ -186,6 +186,11 @@ def test_a_zarr_store_gives_the_modes_of_the_netcdf_files(tmp_path, cli, files):
     with xr.open_dataset(store, engine="zarr") as ds:
         storage = storage_of(ds["tas"], {"time": "time", "lat": "lat", "lon": "lon"})
     assert storage.chunks == (12, 25, 36) and storage.compressed and storage.whole_maps
+    assert "not stored" not in err
+    chunk = sorted(p for p in (store / "tas").rglob("*") if p.is_file() and not p.name.startswith(("zarr", ".z")))
+    chunk[len(chunk) // 2].unlink()  # a store copied in part: zarr reads the chunk as its fill value
+    code, _, err = cli("run", "--overwrite", tmp_path / "zarr" / "run.yaml")
+    assert code == 0 and f"{store}: 1 of the 12 chunks of tas are not stored" in err
 
 
 def test_a_broken_zarr_store_is_one_line(tmp_path, cli):

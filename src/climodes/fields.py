@@ -307,6 +307,19 @@ def _open_one(path: str, variable: str) -> tuple[xr.DataArray, xr.Dataset]:
     return da, ds
 
 
+def _unstored_chunks_note(path: str, variable: str) -> str | None:
+    """A note when a Zarr store lacks chunk files of ``variable``: zarr reads them as its fill value, which is
+    right for chunks left out on purpose (all fill) but hides a store copied in part."""
+    import zarr
+
+    array = zarr.open_array(path, path=variable, mode="r")
+    missing = array.nchunks - array.nchunks_initialized
+    if missing <= 0:
+        return None
+    return (f"{path}: {missing} of the {array.nchunks} chunks of {variable} are not stored, and are read as the "
+            f"store's fill value {array.fill_value}; if the store was copied in part, copy it again")
+
+
 def _check_numeric(da: xr.DataArray, variable: str, where: str) -> None:
     if not np.issubdtype(da.dtype, np.number) or np.issubdtype(da.dtype, np.complexfloating):
         kind = "text" if da.dtype.kind in "USO" else str(da.dtype)
@@ -562,6 +575,8 @@ def open_field(spec: InputSection, choice: SelectSection | None = None) -> Opene
     for path in paths:
         da, ds = _open_one(path, spec.variable)
         datasets.append(ds)
+        if is_zarr(path) and (unstored := _unstored_chunks_note(path, spec.variable)):
+            notes.append(unstored)
         valid = valid_range(da)
         if valid is not None and _valid_note(spec.variable, valid) not in notes:
             notes.append(_valid_note(spec.variable, valid))
