@@ -7,7 +7,7 @@ import xarray as xr
 
 from climodes.config import InputSection, SelectSection
 from climodes.errors import UserError
-from climodes.fields import open_field, select
+from climodes.fields import lon_span, open_field, select
 from conftest import field_dataset
 
 
@@ -160,3 +160,15 @@ def test_period_and_months(tmp_path):
     opened = _open([_grid_file(tmp_path / "p.nc", np.arange(0.0, 360, 90), months=36)])
     picked = select(opened, SelectSection(period=["2001", "2002-06"], months=[12, 1, 2]))
     assert [str(t)[:7] for t in picked["time"].values] == ["2001-01", "2001-02", "2001-12", "2002-01", "2002-02"]
+
+
+@pytest.mark.parametrize("lon, said", [
+    ([140.0, 160, 180, -170, -150], "140 to 210 degrees east"),  # a box across the dateline, stored -180..180
+    ([200.0, 220, 240], "200 to 240 degrees east"),
+    ([340.0, 0, 20], "-20 to 20 degrees east"),  # a box across the prime meridian, stored 0..360
+    (list(np.arange(-180, 180, 2.5)), "the whole circle (-180 to 177.5)"),
+])
+def test_the_longitudes_a_grid_covers_are_told_from_its_widest_gap(lon, said):
+    """Hand-worked: a grid covers the arc from the end of its widest gap eastward (common practice: that is
+    how a regional box is described), so messages never call a box across the dateline "-178 to 180"."""
+    assert lon_span(np.array(lon)) == said

@@ -455,8 +455,26 @@ def _in_grid_order(da: xr.DataArray, names: dict[str, str], path: str) -> tuple[
         raise UserError(f"{path}: longitudes {names['lon']} are out of order ({lon[column - 1]:g} then "
                         f"{lon[column]:g} at column {column}); store them increasing or decreasing")
     note = (f"longitudes stored from {lon[0]:g} round to {lon[-1]:g} were put in increasing order "
-            f"({rolled[0]:g} to {rolled[-1]:g})")
+            f"({rolled[0]:g} to {rolled[-1]:g}; the grid covers {lon_span(lon)})")
     return da.isel(lon=np.roll(np.arange(lon.size), -start)), note
+
+
+def lon_span(lon: np.ndarray) -> str:
+    """The arc of the circle that longitudes cover, from the end of their widest gap, eastward: a box across
+    the dateline stored as -180..180 covers "140 to 210 degrees east", not "-178 to 180".
+
+    >>> lon_span(np.array([140.0, 160, 180, -170, -150]))
+    '140 to 210 degrees east'
+    """
+    east = np.sort(np.mod(lon, 360.0))
+    gaps = np.diff(np.append(east, east[0] + 360))
+    if east.size > 1 and gaps.max() < 1.5 * np.median(gaps):  # no gap: the whole circle
+        return f"the whole circle ({np.min(lon):g} to {np.max(lon):g})"
+    start = (int(np.argmax(gaps)) + 1) % east.size
+    first, last = east[start], east[start - 1] + (360 if start else 0)
+    if first >= 180 and last > 360:  # a box east of 180 reads better on -180..180
+        first, last = first - 360, last - 360
+    return f"{first:g} to {last:g} degrees east"
 
 
 def _valid_note(variable: str, valid: tuple[float, float]) -> str:
@@ -747,8 +765,8 @@ def _select_lon(da: xr.DataArray, west: float, east: float) -> xr.DataArray:
         inside = np.flatnonzero(offset <= width + 1e-9)
         keep = inside[np.argsort(offset[inside], kind="stable")]
     if keep.size == 0:
-        raise UserError(f"select.lon: [{west:g}, {east:g}] holds no longitude of the grid "
-                        f"({lon.min():g} to {lon.max():g}); widen the box")
+        raise UserError(f"select.lon: [{west:g}, {east:g}] holds no longitude of the grid (it covers "
+                        f"{lon_span(lon)}); widen the box")
     out = da.isel(lon=keep)
     if not np.all(np.diff(lon[keep]) > 0):
         out = out.assign_coords(lon=("lon", west + offset[keep], da["lon"].attrs))
