@@ -38,6 +38,7 @@ their small products instead of to every block (see :mod:`climodes.blocks`).
 from __future__ import annotations
 
 import contextlib
+import math
 from dataclasses import dataclass, field
 from typing import Callable, ContextManager
 
@@ -208,7 +209,9 @@ def block_size(units: int, unit_values: int, fixed: float, bytes_per_value: floa
     per_unit = workers * bytes_per_value * unit_values
     if room < per_unit:
         need = in_use + (fixed + per_unit) / 0.7
-        raise UserError(f"compute.memory: {_size(budget)} is too small for {what}; give at least {_size(need)}")
+        step = 1e7 if need >= 1e8 else 1e6  # rounded up to what _size shows, so the advice is enough
+        raise UserError(f"compute.memory: {_size(budget)} is too small for {what}; give at least "
+                        f"{_size(math.ceil(need / step) * step)} (the process holds {_size(in_use)} before it reads)")
     most = min(BLOCK_MAX_BYTES // (4 * unit_values), units // (BLOCKS_PER_WORKER * workers))
     size = max(1, int(min(room // per_unit, most)))
     return size, (fixed + per_unit * size) / 0.7
