@@ -67,13 +67,13 @@ class OpenedField:
     storages: list[Storage] = field(default_factory=list)  # how each file stores the field, in time order
     datasets: list[xr.Dataset] = field(default_factory=list)  # the files as opened (closing one frees its caches;
     # it opens again when read)
+    valid: list[tuple[float, float] | None] = field(default_factory=list)  # each piece's CF valid range, if any
+    notes: list[str] = field(default_factory=list)
 
     def close_files(self) -> None:
         """Close the files (their chunk caches go with them); a later read opens them again."""
         for ds in self.datasets:
             ds.close()
-    valid: list[tuple[float, float] | None] = field(default_factory=list)  # each piece's CF valid range, if any
-    notes: list[str] = field(default_factory=list)
 
 
 def is_zarr(path: str) -> bool:

@@ -286,7 +286,8 @@ def _solve(spec: RunSpec, planned: Planned, progress: bool, scratch: str | Path 
     limit = walltime(spec.compute, plan.method, field.shape, spec.modes.count, field.dtype.itemsize,
                      planned.room.workers)
     with running(spec.compute, progress, limit, spec.source.parent) as session:
-        with staged(field, reading, plan.lat_rows or -1, None if scratch is None else Path(scratch), session.during, planned.opened.close_files) as field:
+        copied_to = None if scratch is None else Path(scratch)
+        with staged(field, reading, plan.lat_rows or -1, copied_to, session.during, planned.opened.close_files) as field:
             modes, result, counts = solve(field, planned.weights, spec.modes.count, spec.prepare.max_missing, plan,
                                           spec.modes.seed, session.during, along_time)
         tested = _red_noise(spec, result, planned.weights, field.sizes["time"], session.during)
@@ -618,8 +619,8 @@ def check_projection(results: str | Path, spec: RunSpec) -> list[str]:
     grid = f"{field.sizes['lat']} x {field.sizes['lon']}" + (" (curvilinear)" if GRID_LAT in field.coords else "")
     lines = projection_plan_lines(spec.input.variable, plan.opened.files, field["time"].values, grid,
                                   plan.results.sizes["mode"], plan.source, _steps_text(plan.fitted), plan.blocks, where)
-    return lines + [f"note: {line}" for line in [*ignored_sections_note(spec.source, spec.given, plan.source), *plan.notes,
-                                                   *warned]]
+    notes = [*ignored_sections_note(spec.source, spec.given, plan.source), *plan.notes, *warned]
+    return lines + [f"note: {line}" for line in notes]
 
 
 def project(results: str | Path | xr.Dataset, spec: RunSpec, say: Callable[[str], None] = lambda line: None,
@@ -709,7 +710,8 @@ def reconstruct(results: str | Path, modes: str, out: str | Path, anomalies: boo
         return reconstruction_line(ds, modes_text(which), anomalies, out)
 
 
-def rebuilt(trained: xr.Dataset, source: Path, modes: str, anomalies: bool, command: str) -> tuple[xr.Dataset, list[int]]:
+def rebuilt(trained: xr.Dataset, source: Path, modes: str, anomalies: bool,
+            command: str) -> tuple[xr.Dataset, list[int]]:
     """The reconstruction from the ``modes`` (``1-3``, ``1,4``) of the results ``trained`` read from ``source``,
     as a lazy CF dataset (``command`` goes to its history), and the mode numbers chosen."""
     which = chosen_modes(modes, trained["mode"].values)

@@ -358,8 +358,9 @@ def ignored_sections_note(config: Path, given: tuple[str, ...], results: Path) -
     ignored = [name for name in ("prepare", "modes") if name in given]
     if not ignored:
         return []
-    return [f"the {' and '.join(ignored)} section{'s' * (len(ignored) > 1)} of {config} {'are' if len(ignored) > 1 else 'is'} "
-            f"not used: the modes and the preparation fitted in {results} apply to the field"]
+    noun, verb = ("sections", "are") if len(ignored) > 1 else ("section", "is")
+    return [f"the {' and '.join(ignored)} {noun} of {config} {verb} not used: the modes and the preparation fitted "
+            f"in {results} apply to the field"]
 
 
 def projection_plan_lines(variable: str, files: list, times: np.ndarray, grid: str, count: int, results: Path,

@@ -191,9 +191,9 @@ def _put(target, where: slice, block: np.ndarray) -> None:
 def staged(field: xr.DataArray, reading: Reading, rows: int, scratch: Path | None,
            progress: Callable[[str], ContextManager], close_files: Callable[[], None]) -> Iterator[xr.DataArray]:
     """``field`` (lazy, cut in time blocks of whole chunks) read once into memory or into a scratch file
-    in ``scratch`` (:class:`ScratchArray`; None only with the rows order), per ``reading``, and given back chunked in blocks of ``rows``
-    latitude rows with every time step; the scratch file is removed when the block ends.  ``progress`` is
-    called around the read.
+    in ``scratch`` (:class:`ScratchArray`; None only with the rows order), per ``reading``, and given back
+    chunked in blocks of ``rows`` latitude rows with every time step; the scratch file is removed when the
+    block ends.  ``progress`` is called around the read.
 
     Each chunk is read once, so the files are read with a small chunk cache (:data:`READ_CACHE`):
     ``close_files`` closes them before (they open again as they are read) and after the read, which
