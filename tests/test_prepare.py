@@ -432,3 +432,20 @@ def test_a_baseline_the_data_cover_only_in_part_is_noted(baseline, said):
     found = [note for note in notes if note.startswith("prepare.baseline")]
     assert found == ([] if said is None else [f"prepare.baseline {baseline[0]} to {baseline[1]}: {said}, so the "
                                               "climatology is of those years only"])
+
+
+@pytest.mark.parametrize("gap", [False, True])
+def test_centring_sets_gaps_to_zero_anomaly_in_a_new_array(gap):
+    """The missing-data rule (README, prepare.max_missing), by hand: a missing value becomes zero
+    anomaly, then each column's mean (gaps counted as zero) is removed; the input is left as it was."""
+    from climodes.prepare import centre
+
+    values = np.array([[1.0, 2.0], [3.0, np.nan if gap else 4.0], [5.0, 6.0]], dtype=np.float32)
+    before = values.copy()
+    centred, offset = centre(values)
+    second = [2.0, 0.0, 6.0] if gap else [2.0, 4.0, 6.0]
+    np.testing.assert_allclose(offset, [3.0, np.mean(second)])
+    np.testing.assert_allclose(centred, np.column_stack([[-2.0, 0.0, 2.0], np.subtract(second, np.mean(second))]),
+                               rtol=1e-6)
+    np.testing.assert_array_equal(values, before)
+    assert centred.dtype == np.float32 and not np.shares_memory(centred, values)

@@ -218,7 +218,7 @@ def write_netcdf(ds: xr.Dataset, path: Path, time_encoding: dict, time_name: str
     for name, var in ds.data_vars.items():
         encoding[name] = {"_FillValue": FILL if var.dtype.kind == "f" else None}
         if var.ndim >= 2:
-            encoding[name].update(zlib=True, complevel=4)
+            encoding[name].update(zlib=True, complevel=1)
         if var.chunks:
             encoding[name]["chunksizes"] = (1, *var.shape[1:])
     time_name = time_name or next(d for d in ds["pc"].dims if d != "mode")

@@ -295,18 +295,21 @@ def _fit_climatology(values: np.ndarray, keys: TimeKeys) -> dict[str, np.ndarray
     return {"climatology": climatology}
 
 
+KEY_WINDOW = 64  # steps whose climatology is gathered at a time when it is added or removed
+
+
 def _by_key(values: np.ndarray, climatology: np.ndarray, keys: TimeKeys, sign: int) -> np.ndarray:
     """``values`` plus ``sign`` times the climatology of each step's key.
 
-    Blocks are C-ordered ``(time, ...)``, so each key's rows are whole
-    contiguous rows: a loop over keys (12 months, or 366 calendar days) costs
-    one pass over the block.
+    Blocks are C-ordered ``(time, ...)``: a few whole rows at a time, the climatology of their keys is
+    gathered (a small copy of :data:`KEY_WINDOW` rows) and added in place, one pass over the block.
     """
     climatology = climatology.astype(values.dtype, copy=False)
+    add = np.add if sign > 0 else np.subtract
     out = np.empty_like(values)
-    for row in np.unique(keys.index):
-        steps = np.flatnonzero(keys.index == row)
-        out[steps] = values[steps] + sign * climatology[row]
+    for start in range(0, len(values), KEY_WINDOW):
+        rows = slice(start, start + KEY_WINDOW)
+        add(values[rows], climatology[keys.index[rows]], out=out[rows])
     return out
 
 
@@ -384,8 +387,13 @@ STEPS = {
 
 
 def _filled(prepared: np.ndarray) -> np.ndarray:
-    """A copy with missing values set to zero anomaly (the missing-data rule, ``prepare.max_missing``)."""
-    return np.where(np.isnan(prepared), prepared.dtype.type(0), prepared)
+    """A copy with missing values set to zero anomaly (the missing-data rule, ``prepare.max_missing``).
+
+    Most blocks have none: their minimum, one quick pass, is then not NaN, and no mask is made."""
+    filled = prepared.copy()
+    if filled.size and np.isnan(filled.min()):
+        filled[np.isnan(filled)] = 0
+    return filled
 
 
 def _less(filled: np.ndarray, offset: np.ndarray) -> np.ndarray:
