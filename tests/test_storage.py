@@ -305,3 +305,44 @@ def test_a_damaged_compressed_file_is_one_line(tmp_path, cli, values):
     assert code == 2 and out == "", err
     assert len(err.strip().splitlines()) == 1 and "cannot be decoded" in err and str(path) in err
     assert sorted(p.name for p in tmp_path.iterdir()) == ["damaged.nc", "run.yaml"]
+
+
+# --- projections read in the files' own order
+
+
+def test_a_projection_reads_each_value_once_in_the_files_order(tmp_path, cli, values_read, files):
+    """A projection takes each step on its own (PC_k(t) = sum_x w_x^2 a(t, x) eof_k(x)), so files storing
+    whole maps together (per-step chunks, contiguous) are read in blocks of whole maps along time, tiles in
+    blocks of rows: each value read once either way, and the same projection to rounding.  Projecting
+    the training field onto its own modes gives back the run's PCs (an identity of the EOF expansion,
+    common practice), whichever order read it."""
+    trained = tmp_path / "trained"
+    trained.mkdir()
+    config = write_config(trained, files["steps"], modes={"count": 3, "method": "gram"}, prepare={"max_missing": 0.2})
+    assert cli("run", config)[0] == 0
+    projections = {}
+    for name in LAYOUTS:
+        folder = tmp_path / name
+        folder.mkdir()
+        config = write_config(folder, files[name], prepare={"max_missing": 0.2})
+        values_read["values"] = 0
+        code, _, err = cli("project", trained / "out", config)
+        assert code == 0, err
+        assert values_read["values"] == 144 * 25 * 36  # each value once
+        log = (folder / "out" / "projection.log").read_text()
+        in_time = "time steps, whole maps in the files' own order" in log
+        assert in_time == (name != "tiles") and ("latitude rows" in log) == (name == "tiles")
+        with xr.open_dataset(folder / "out" / "projection.nc") as ds:
+            projections[name] = ds.load()
+    with xr.open_dataset(trained / "out" / "modes.nc") as modes:
+        pcs = modes["pc"].values
+    for name, ds in projections.items():
+        np.testing.assert_allclose(ds["pc"].values, pcs, rtol=0, atol=1e-9 * np.abs(pcs).max(), err_msg=name)
+        _same_projection(ds, projections["tiles"])
+
+
+def _same_projection(a: xr.Dataset, b: xr.Dataset) -> None:
+    for name, variable in b.data_vars.items():
+        if variable.dtype.kind == "f":
+            scale = max(np.nanmax(np.abs(variable.values)), 1e-300)
+            np.testing.assert_allclose(a[name].values, variable.values, rtol=0, atol=1e-12 * scale, err_msg=name)

@@ -359,6 +359,18 @@ def field_blocks(field: xr.DataArray) -> list:
     return list(data.to_delayed().ravel())
 
 
+def time_blocks(field: xr.DataArray) -> tuple[list, list[slice]]:
+    """The field as ``(time, lat, lon)`` blocks of whole maps, its own dask chunks along time (each within
+    one file, see :func:`climodes.fields.rechunked`), and the steps each holds; read as
+    :func:`field_blocks` reads its blocks."""
+    data = field.data.rechunk({1: -1, 2: -1})
+    starts = np.cumsum((0,) + data.chunks[0])
+    steps = [slice(int(a), int(b)) for a, b in zip(starts[:-1], starts[1:])]
+    if dask.config.get("climodes.read-blocks-in-task", False):
+        return [FieldBlock(dask.optimize(data.blocks[i])[0]) for i in range(data.numblocks[0])], steps
+    return list(data.to_delayed().ravel()), steps
+
+
 def row_slices(field: xr.DataArray) -> list[slice]:
     starts = np.cumsum((0,) + field.data.rechunk({0: -1, 2: -1}).chunks[1])
     nlon = field.sizes["lon"]

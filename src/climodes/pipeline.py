@@ -532,7 +532,7 @@ class ProjectionPlan:
     opened: OpenedField
     field: xr.DataArray
     keys: TimeKeys
-    rows: int
+    chunks: dict[str, int]  # the dask chunks the field is read in
     blocks: str
     room: Capacity
     max_missing: float
@@ -592,12 +592,14 @@ def _plan_projection(results: str | Path | xr.Dataset, spec: RunSpec, data: xr.D
         check_same_units(field, trained, spec.input.variable, source)
         keys = keys_of(field["time"], fitted)
         room = capacity(spec.compute)
-        rows, blocks = plan_projection(field.shape, trained, fitted, room.memory, room.in_use, room.workers)
+        chunks, blocks = plan_projection(field.shape, trained, fitted, room.memory, room.in_use, room.workers,
+                                         opened.storages)
     except BaseException:
         if mine:
             trained.close()
         raise
-    return ProjectionPlan(source, trained, mine, fitted, opened, field, keys, rows, blocks, room, max_missing, notes)
+    return ProjectionPlan(source, trained, mine, fitted, opened, field, keys, chunks, blocks, room, max_missing,
+                          notes)
 
 
 def _steps_text(fitted: Fitted) -> str:
@@ -632,8 +634,9 @@ def project(results: str | Path | xr.Dataset, spec: RunSpec, say: Callable[[str]
     is what made it, for the history (default: ``climodes project RESULTS CONFIG``).
 
     The output folder is claimed, staged and put in place as a run's results folder is (never a
-    training run's folder); the field is read once, in blocks of latitude rows within
-    ``compute.memory``, on the scheduler of ``compute``.
+    training run's folder); the field is read once, in blocks within ``compute.memory`` (whole maps in
+    the files' own order where they store whole maps together, else latitude rows), on the scheduler of
+    ``compute``.
     """
     started = time.monotonic()
     out = Path(spec.output.dir)
@@ -644,14 +647,14 @@ def project(results: str | Path | xr.Dataset, spec: RunSpec, say: Callable[[str]
         with contextlib.closing(plan.results) if plan.opened_here else contextlib.nullcontext(plan.results) \
                 as trained:
             with library_warnings(warned):
-                opened = rechunked(plan.opened, {"time": -1, "lat": plan.rows, "lon": -1})
+                opened = rechunked(plan.opened, plan.chunks)
                 field = _new_field(spec, opened, trained, [])
                 limit = walltime(spec.compute, "gram", field.shape, trained.sizes["mode"], field.dtype.itemsize,
                                  plan.room.workers)
                 with running(spec.compute, progress, limit, spec.source.parent) as session:
                     with damaged_files(spec):
                         products, squares, fraction = projected(field, trained, plan.fitted, plan.keys,
-                                                                session.during)
+                                                                session.during, plan.chunks["time"] != -1)
             check_points(fraction, trained, field, plan.max_missing, plan.source)
             used = trained["point_status"].values.reshape(-1) == 2
             filled = int(round(float(np.sum(fraction[used])) * field.sizes["time"]))
@@ -676,7 +679,8 @@ def project(results: str | Path | xr.Dataset, spec: RunSpec, say: Callable[[str]
             if stage is not None:
                 write_netcdf(ds, stage / PROJECTION_FILE, opened.time_encoding)
                 (stage / "projection.log").write_text(
-                    run_log(headline, table, [f"compute: {session.description}"], notes, spec.to_yaml()),
+                    run_log(headline, table, [f"read order: {plan.blocks}", f"compute: {session.description}"], notes,
+                            spec.to_yaml()),
                     encoding="utf-8")
         except OSError as err:
             raise _cannot_write(spec, err) from None

@@ -44,7 +44,7 @@ import pandas as pd
 import xarray as xr
 
 from climodes import __version__
-from climodes.blocks import field_blocks, flat, quietly, row_slices, step_squares, tree_sum
+from climodes.blocks import field_blocks, flat, quietly, row_slices, step_squares, time_blocks, tree_sum
 from climodes.cluster import resident_bytes
 from climodes.diagnostics import unexplained_fractions
 from climodes.errors import UserError
@@ -62,6 +62,7 @@ from climodes.prepare import (
 )
 from climodes.report import long_name_of, modes_text, months_text, stored_config
 from climodes.solvers import block_size
+from climodes.storage import Storage
 
 # bytes a value of a block costs: the modes' product and the preparation put back in float64, the float32 copies
 # written (measured on a 0.5 GB field: 25; with room to spare)
@@ -258,20 +259,34 @@ def check_same_units(field: xr.DataArray, results: xr.Dataset, variable: str, so
                         f"{fitted}; convert the values (not just the attribute) to the training's units")
 
 
-def project_block(values, fitted: Fitted, keys: TimeKeys, weights: np.ndarray, maps: np.ndarray):
-    """One block's part of the projection: ``A_b (w^2 eof)`` over its points ``(time, mode)``, its share of
-    each step's weighted sum of squares ``||x_t||^2`` and its points' missing fractions.
-
-    ``fitted`` holds the block's points (flat, latitude rows first); ``maps`` is ``(point, mode)`` with 0
-    where a point was not used.  The block is prepared in float64 by :func:`climodes.prepare.apply`: the
-    fitted steps, missing values set to zero anomaly, the offset removed; points the run did not use (NaN
-    quantities) count as zero.
-    """
-    block = flat(values).astype(np.float64)
-    fraction = np.isnan(block).mean(axis=0)
+def _anomalies(block: np.ndarray, fitted: Fitted, keys: TimeKeys) -> np.ndarray:
+    """A ``(time, point)`` block in float64 prepared by :func:`climodes.prepare.apply`: the fitted steps,
+    missing values set to zero anomaly, the offset removed; points the run did not use (NaN quantities)
+    count as zero."""
     anomaly = apply(block, fitted, keys)
     anomaly[:, np.isnan(fitted.quantities["offset"])] = 0.0
+    return anomaly
+
+
+def project_block(values, fitted: Fitted, keys: TimeKeys, weights: np.ndarray, maps: np.ndarray):
+    """One block of latitude rows' part of the projection: ``A_b (w^2 eof)`` over its points ``(time,
+    mode)``, its share of each step's weighted sum of squares ``||x_t||^2`` and its points' missing
+    fractions.  ``fitted`` holds the block's points (flat, latitude rows first); ``maps`` is ``(point,
+    mode)`` with 0 where a point was not used."""
+    block = flat(values).astype(np.float64)
+    fraction = np.isnan(block).mean(axis=0)
+    anomaly = _anomalies(block, fitted, keys)
     return anomaly @ (maps * weights[:, None] ** 2), step_squares(anomaly, weights), [fraction]
+
+
+def project_steps(values, fitted: Fitted, keys: TimeKeys, weights: np.ndarray, maps: np.ndarray):
+    """One block of whole maps' part of the projection: its steps' rows of ``A (w^2 eof)`` ``(time, mode)``
+    and their weighted sums of squares ``||x_t||^2`` (whole, not shares), and each point's count of
+    missing values in the block.  ``keys`` are the block's steps' own."""
+    block = flat(values).astype(np.float64)
+    missing = np.isnan(block).sum(axis=0)
+    anomaly = _anomalies(block, fitted, keys)
+    return (anomaly @ (maps * weights[:, None] ** 2), step_squares(anomaly, weights)), missing
 
 
 def _block_fit(fitted: Fitted, points: slice) -> Fitted:
@@ -280,21 +295,48 @@ def _block_fit(fitted: Fitted, points: slice) -> Fitted:
                                        for name, q in fitted.quantities.items()})
 
 
+def _maps_in_time(storages: list[Storage]) -> int:
+    """The steps of the files' chunks along time when every file stores whole maps together (chunks
+    holding whole maps, or contiguous storage: 1), else 0."""
+    if not storages or not all(s.chunks is None or s.whole_maps for s in storages):
+        return 0
+    return max(s.chunks[0] if s.chunks else 1 for s in storages)
+
+
 def plan_projection(shape: tuple[int, int, int], results: xr.Dataset, fitted: Fitted, budget: int, in_use: int,
-                    workers: int) -> tuple[int, str]:
-    """Latitude rows of a block of the new field within ``budget`` bytes, and what the plan says."""
+                    workers: int, storages: list[Storage]) -> tuple[dict[str, int], str]:
+    """The dask chunks to read the new field in within ``budget`` bytes, and what the plan says.
+
+    Files that store whole maps together (``storages``: chunks of whole maps, model output's usual
+    layout, or contiguous storage) are read in their own order, blocks of whole chunks along time: a
+    projection takes each step on its own, so each chunk is read (and decompressed) once.  Other files
+    are read in blocks of latitude rows with every step, each reading only its own tiles.
+    """
     steps, nlat, nlon = shape
     count = results.sizes["mode"]
+    fixed = sum(q.nbytes for q in fitted.quantities.values()) + 3 * nlat * nlon * count * 8
+    what = f"projecting {steps} steps x {nlat * nlon} points"
+    chunk = _maps_in_time(storages)
+    if chunk:
+        held = steps * (count + 1) * 8 + 4 * (workers + 3) * nlat * nlon * 8  # products kept, missing counts summed
+        size, _ = block_size(steps, nlat * nlon, fixed + held, PROJECT_BYTES_PER_VALUE, budget, in_use, workers, what)
+        if chunk <= size < steps:
+            size = size // chunk * chunk
+            return ({"time": size, "lat": -1, "lon": -1},
+                    f"{-(-steps // size)} block(s) of {size} time steps, whole maps in the files' own order")
     held = 4 * (workers + 3) * steps * (count + 1) * 8  # partial sums of the blocks' small products
-    fixed = sum(q.nbytes for q in fitted.quantities.values()) + 3 * nlat * nlon * count * 8 + held
-    rows, _ = block_size(nlat, steps * nlon, fixed, PROJECT_BYTES_PER_VALUE, budget, in_use, workers,
-                         f"projecting {steps} steps x {nlat * nlon} points")
-    return rows, f"{-(-nlat // rows)} block(s) of {rows} latitude rows"
+    rows, _ = block_size(nlat, steps * nlon, fixed + held, PROJECT_BYTES_PER_VALUE, budget, in_use, workers, what)
+    return {"time": -1, "lat": rows, "lon": -1}, f"{-(-nlat // rows)} block(s) of {rows} latitude rows"
+
+
+def _take(part, which: int):
+    return part[which]
 
 
 def projected(field: xr.DataArray, results: xr.Dataset, fitted: Fitted, keys: TimeKeys,
-              progress: Callable[[str], ContextManager]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Read ``field`` once, block by block, and project it onto the modes of ``results``.
+              progress: Callable[[str], ContextManager], in_time: bool) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Read ``field`` once, block by block as it is chunked: blocks of whole maps along time when
+    ``in_time``, else of latitude rows, and project it onto the modes of ``results``.
 
     Returns each step's ``sum_x a w^2 eof_k`` ``(time, mode)``, its weighted sum of squares ``||x_t||^2``
     and each grid point's missing fraction (flat, latitude rows first).
@@ -302,6 +344,17 @@ def projected(field: xr.DataArray, results: xr.Dataset, fitted: Fitted, keys: Ti
     count = results.sizes["mode"]
     maps = np.nan_to_num(np.asarray(results["eof"].values, dtype=np.float64).reshape(count, -1).T)
     weights = np.asarray(results["area_weight"].values, dtype=np.float64).reshape(-1)
+    if in_time:
+        blocks, steps = time_blocks(field)
+        whole = _block_fit(fitted, slice(None))
+        parts = [dask.delayed(quietly(project_steps))(block, whole, keys.part(at), weights, maps)
+                 for block, at in zip(blocks, steps)]
+        rows = [dask.delayed(_take)(part, 0) for part in parts]
+        missing = tree_sum([dask.delayed(_take)(part, 1) for part in parts])
+        with progress("projection: 1 pass over the field, in the files' own order"):
+            rows, missing = dask.compute(rows, missing)
+        products, squares = (np.concatenate(values) for values in zip(*rows))
+        return products, squares, missing / field.sizes["time"]
     parts = [dask.delayed(quietly(project_block))(block, _block_fit(fitted, rows), keys, weights[rows], maps[rows])
              for block, rows in zip(field_blocks(field), row_slices(field))]
     with progress("projection: 1 pass over the field"):
