@@ -66,13 +66,17 @@ def test_months_are_the_right_months(tmp_path, calendar, stamp, bounds):
         bounds and stamp != "middle")
 
 
-@pytest.mark.parametrize("calendar", ["noleap", "360_day", "all_leap"])
+@pytest.mark.parametrize("calendar", ["noleap", "360_day", "all_leap", "standard", "gregorian", "proleptic_gregorian"])
 def test_a_run_keeps_the_calendar(tmp_path, cli, calendar):
+    """The time axis keeps the file's calendar, and so does every variable that names one (the fitted
+    preparation's): one calendar in the file, as CF 4.4.1 reads it."""
     path = _monthly_file(tmp_path / "f.nc", calendar, "middle", True)
-    code, _, err = cli("run", write_config(tmp_path, [path], modes={"count": 2}))
+    code, _, err = cli("run", write_config(tmp_path, [path], modes={"count": 2}, prepare={"detrend": "linear"}))
     assert code == 0, err
     with netCDF4.Dataset(tmp_path / "out" / "modes.nc") as nc:
         assert nc["time"].calendar == calendar and nc["time"].units == "days since 2000-01-01"
+        named = {name: v.calendar for name, v in nc.variables.items() if "calendar" in v.ncattrs()}
+    assert {"fitted_climatology", "fitted_trend_slope"} <= set(named) and set(named.values()) == {calendar}
 
 
 def test_packed_integers_decode_like_floats(tmp_path, cli):

@@ -604,11 +604,17 @@ def keys_of(time: xr.DataArray, fitted: Fitted) -> TimeKeys:
     return TimeKeys(rows, days, np.ones(time.size, dtype=bool), fitted_keys.size)
 
 
+def _stated_calendar(time: xr.DataArray) -> str:
+    """The calendar of ``time`` as its file states it (dates of the ``standard`` calendar decode to numpy
+    dates, which xarray calls ``proleptic_gregorian``), else as xarray names it."""
+    return str(time.encoding.get("calendar") or time.dt.calendar)
+
+
 def _field_steps(da: xr.DataArray, rule: str, keys: np.ndarray, in_base: np.ndarray) -> TimeSteps:
     """No steps yet, with ``da``'s calendar keys under ``rule`` and its days since its first step."""
     values, index = np.unique(keys, return_inverse=True)
     origin = time_origin(da["time"])
-    preparation = Preparation((), rule, tuple(int(v) for v in values), origin, da["time"].dt.calendar)
+    preparation = Preparation((), rule, tuple(int(v) for v in values), origin, _stated_calendar(da["time"]))
     return TimeSteps(preparation, TimeKeys(index.reshape(-1), days_since(da["time"], origin), in_base, values.size))
 
 
