@@ -346,3 +346,27 @@ def _same_projection(a: xr.Dataset, b: xr.Dataset) -> None:
         if variable.dtype.kind == "f":
             scale = max(np.nanmax(np.abs(variable.values)), 1e-300)
             np.testing.assert_allclose(a[name].values, variable.values, rtol=0, atol=1e-12 * scale, err_msg=name)
+
+
+@pytest.mark.parametrize("storage, order", [
+    (Storage((24, 25, 36), True, (25, 36)), {"time": 24, "lat": -1, "lon": -1}),  # a whole chunk, not a part
+    (Storage((1, 25, 36), True, (25, 36)), None),  # several steps a block, a whole number of chunks
+    (Storage(None, False, (25, 36)), None),  # contiguous: maps stored one after the other
+    (Storage((48, 5, 9), True, (25, 36)), {"time": -1, "lon": -1}),  # tiles: rows
+])
+def test_a_projection_plans_blocks_of_whole_chunks_along_time(storage, order):
+    """Blocks of whole maps hold whole chunks of the files along time, even where keeping 4 blocks a
+    worker would cut a chunk (each chunk is then decompressed once, not once per part); tiles go by rows."""
+    from climodes.prepare import Fitted, Preparation
+    from climodes.reuse import plan_projection
+
+    results = xr.Dataset(coords={"mode": [1, 2, 3]})
+    fitted = Fitted(Preparation(), {"offset": np.zeros((25, 36))})
+    chunks, text = plan_projection((144, 25, 36), results, fitted, int(1e9), int(2e8), 2, [storage])
+    if order is None:
+        assert chunks["time"] % (storage.chunks[0] if storage.chunks else 1) == 0 and 0 < chunks["time"] < 144
+        assert text.endswith("whole maps in the files' own order")
+    elif order["time"] == -1:
+        assert chunks["time"] == -1 and 0 < chunks["lat"] < 25 and text.endswith("latitude rows")
+    else:
+        assert chunks == order

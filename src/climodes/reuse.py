@@ -319,9 +319,10 @@ def plan_projection(shape: tuple[int, int, int], results: xr.Dataset, fitted: Fi
     chunk = _maps_in_time(storages)
     if chunk:
         held = steps * (count + 1) * 8 + 4 * (workers + 3) * nlat * nlon * 8  # products kept, missing counts summed
-        size, _ = block_size(steps, nlat * nlon, fixed + held, PROJECT_BYTES_PER_VALUE, budget, in_use, workers, what)
-        if chunk <= size < steps:
-            size = size // chunk * chunk
+        size, _ = block_size(steps, nlat * nlon, fixed + held, PROJECT_BYTES_PER_VALUE, budget, in_use, workers, what,
+                             at_least=chunk)
+        if chunk <= size:
+            size = max(chunk, min(size, steps) // chunk * chunk)
             return ({"time": size, "lat": -1, "lon": -1},
                     f"{-(-steps // size)} block(s) of {size} time steps, whole maps in the files' own order")
     held = 4 * (workers + 3) * steps * (count + 1) * 8  # partial sums of the blocks' small products

@@ -190,14 +190,15 @@ def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: in
 
 
 def block_size(units: int, unit_values: int, fixed: float, bytes_per_value: float, budget: int, in_use: int,
-               workers: int, what: str) -> tuple[int, float]:
+               workers: int, what: str, at_least: int = 1) -> tuple[int, float]:
     """How many of ``units`` (latitude rows, time steps) of ``unit_values`` values each one block may hold.
 
     ``workers`` blocks are in flight at once, each costing ``bytes_per_value`` a value (the values read and
     their working copies), beside ``fixed`` bytes held for the whole work and the ``in_use`` the process
     holds already, all within 70 % of ``budget`` (the rest for what the libraries allocate beside).  A
     block reads at most :data:`BLOCK_MAX_BYTES` of float32, and each worker gets :data:`BLOCKS_PER_WORKER`
-    blocks where there are that many units.  Returns the units a block holds and the bytes the work needs
+    blocks where there are that many units, but holds ``at_least`` units where the budget has room for
+    them (a whole chunk of the files).  Returns the units a block holds and the bytes the work needs
     beside ``in_use``.
 
     Raises
@@ -213,7 +214,7 @@ def block_size(units: int, unit_values: int, fixed: float, bytes_per_value: floa
         raise UserError(f"compute.memory: {_size(budget)} is too small for {what}; give at least "
                         f"{_size(math.ceil(need / step) * step)} (the process holds {_size(in_use)} before it reads)")
     most = min(BLOCK_MAX_BYTES // (4 * unit_values), units // (BLOCKS_PER_WORKER * workers))
-    size = max(1, int(min(room // per_unit, most)))
+    size = max(1, int(min(room // per_unit, max(most, at_least))))
     return size, (fixed + per_unit * size) / 0.7
 
 
