@@ -242,7 +242,7 @@ def _shared_chunks(spec: RunSpec, field: xr.DataArray, storages: list[Storage], 
         return plan, replace(reading, reason=f"{reading.reason}; no room in compute.memory to keep the chunks that "
                                              "blocks share, so each block decompresses them again")
     size = cache(shared.lat_rows)
-    return shared, replace(reading, cache=size, reason=f"{reading.reason}; each file keeps {size / 1e6:.0f} MB of "
+    return shared, replace(reading, cache=size, reason=f"{reading.reason}; each file keeps {size / 1e6:.1f} MB of "
                                                        "decompressed chunks for the blocks that share them")
 
 
