@@ -362,3 +362,34 @@ def test_a_damaged_compressed_file_is_one_line(tmp_path, cli, values):
     assert code == 2 and out == "", err
     assert len(err.strip().splitlines()) == 1 and "cannot be decoded" in err and str(path) in err
     assert sorted(p.name for p in tmp_path.iterdir()) == ["damaged.nc", "run.yaml"]
+
+
+@pytest.mark.slow
+def test_a_tiled_compressed_field_is_read_in_rows_within_its_memory(tmp_path):
+    """A field of 0.52 GB (float32) in 4 compressed files of chunks 125 x 4 x 90 against compute.memory of
+    450MB: read in blocks of rows, the files' chunk caches are planned with the blocks, and the peak resident
+    memory of the run stays within it (getrusage of a child, which counts what the operating system gave
+    it; the library's default cache, 64 MiB a file, would take 0.27 GB beside the plan)."""
+    import subprocess
+    import sys
+
+    steps, lat, lon = 1000, np.linspace(-89.5, 89.5, 180), np.arange(0, 360, 0.5)
+    rng = np.random.default_rng(0)
+    paths = []
+    for part in range(4):
+        values = (280 + rng.standard_normal((steps // 4, lat.size, lon.size), dtype=np.float32)).astype(np.float32)
+        time = xr.date_range(f"{1900 + 25 * part}-01-01", periods=steps // 4, freq="MS")
+        paths.append(tmp_path / f"tiles{part}.nc")
+        field_dataset(values, lat, lon, time=time).to_netcdf(
+            paths[-1], encoding={"tas": {"zlib": True, "complevel": 1, "chunksizes": (125, 4, 90)}})
+        del values
+    config = write_config(tmp_path, paths, modes={"count": 3, "method": "randomized"}, compute={"memory": "450MB"})
+    peak = ("import resource, subprocess, sys; done = subprocess.run(sys.argv[1:]); "
+            "print(done.returncode, resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss * 1024)")
+    done = subprocess.run([sys.executable, "-c", peak, sys.executable, "-m", "climodes", "run", "--quiet", str(config)],
+                          capture_output=True, text=True, timeout=900)
+    code, used = map(int, done.stdout.split()[-2:])
+    assert code == 0, done.stderr
+    log = (tmp_path / "out" / "run.log").read_text()
+    assert "read order: blocks of latitude rows" in log and "MB of decompressed chunks" in log
+    assert used <= 450e6, used / 1e6
