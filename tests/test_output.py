@@ -239,3 +239,28 @@ def test_only_the_steps_that_ran_are_stored(tmp_path, small_field, cli):
         "comment"]
     np.testing.assert_allclose(ds["area_weight"].values ** 2, np.cos(np.deg2rad(ds["lat"].values))[:, None]
                                * np.ones(ds.sizes["lon"]), rtol=1e-12)  # sqrt(cos(lat)) (coslat weighting)
+
+
+def test_a_big_stack_of_maps_is_written_without_a_copy_of_it(tmp_path):
+    """A 64 MB (key, lat, lon) variable held in memory, like the fitted climatology of a big grid, is written
+    map by map: the arrays made while writing (Python's tracemalloc, which numpy reports its arrays to) stay
+    below a quarter of it, and netCDF4 reads back the values given, one map to a chunk."""
+    import tracemalloc
+
+    from climodes.output import write_netcdf
+
+    values = np.random.default_rng(0).standard_normal((250, 160, 400)).astype(np.float32)
+    values[:, :3] = np.nan
+    ds = xr.Dataset({"pc": (("mode", "time"), np.zeros((1, 250))), "stack": (("time", "lat", "lon"), values)},
+                    coords={"time": np.arange(250.0), "lat": np.linspace(-80, 80, 160), "lon": np.arange(400.0)})
+    tracemalloc.start()
+    try:
+        write_netcdf(ds, tmp_path / "big.nc", {})
+        made = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    assert made < values.nbytes / 4, made / 1e6
+    with netCDF4.Dataset(tmp_path / "big.nc") as nc:
+        assert nc["stack"].chunking() == [1, 160, 400]
+        np.testing.assert_array_equal(nc["stack"][:].filled(np.nan), values)
+    assert ds["stack"].chunks is None  # the caller's dataset is not changed

@@ -6,6 +6,7 @@ implementation, on the anomalies computed here with numpy; netCDF4-python's ``Va
 ``Variable.filters()`` for the layout the files were written with.
 """
 
+import re
 import tempfile
 import warnings
 from pathlib import Path
@@ -84,6 +85,62 @@ def test_the_order_follows_the_layout(storages, rows, room, local, order):
     if order != ROWS:  # blocks of whole chunks along time, holding no more values than a block of rows
         assert reading.time_steps % max(s.chunks[0] for s in storages) == 0
         assert reading.time_steps * 25 <= max(144 * 3, max(s.chunks[0] for s in storages) * 25)
+
+
+def test_blocks_of_rows_keep_the_bands_of_chunks_they_cross(files):
+    """The chunk cache a file needs in rows order: the bands of chunks (all of a file's chunks holding some
+    latitude row) that the blocks in flight cross, found from the layout netCDF4 reports (chunks of 48 x 5 x
+    9 on 72 steps x 25 x 36: a band is 2 chunks along time x 4 along longitude); arithmetic of the chunk
+    grid, common practice."""
+    from climodes.storage import cache_held, row_cache
+
+    with xr.open_dataset(files["tiles"][0]) as ds:
+        tiles = storage_of(ds["tas"], {"time": "time", "lat": "lat", "lon": "lon"})
+    band = 2 * 4 * 48 * 5 * 9 * 4
+    assert tiles.cached and tiles.steps == 72 and tiles.band_bytes(4) == band
+    assert row_cache([tiles], 3, 25, 1, 4) == 2 * band  # 3 rows cross at most 2 bands of 5
+    assert row_cache([tiles], 3, 25, 2, 4) == 2 * band  # 6 rows in flight: 2 bands at most
+    assert row_cache([tiles], 4, 25, 2, 4) == 3 * band  # 8 rows: 3
+    assert row_cache([tiles], 20, 25, 2, 4) == 5 * band  # the file has 5 bands
+    assert row_cache([tiles], 25, 25, 2, 4) == 0  # one block holds every row: nothing shared
+    for other, size in (("steps", 72 * 25 * 36 * 4), ("contiguous", 0)):  # whole maps: each block meets every
+        with xr.open_dataset(files[other][0]) as ds:  # chunk of the file; contiguous: nothing to decompress
+            assert row_cache([storage_of(ds["tas"], {"time": "time", "lat": "lat", "lon": "lon"})], 3, 25, 2, 4) == size
+    assert row_cache([Storage((48, 5, 9), True, (25, 36), 72, cached=False)], 3, 25, 2, 4) == 0  # Zarr: no cache
+    assert cache_held([tiles, tiles, Storage(None, False, (25, 36), 72, True)], 10) == 20
+
+
+@pytest.mark.parametrize("room", [True, False])
+def test_rows_read_tiles_through_the_planned_chunk_cache(tmp_path, cli, monkeypatch, files, room):
+    """In rows order the tiled files are read with the chunk cache the plan made room for (netCDF4's own
+    get_chunk_cache while the solver runs), and the log says so; with no room for it in the plan, a small
+    one (4 MiB), and the log says the blocks decompress the chunks they share again.  The library's setting
+    is back after the run."""
+    from climodes.storage import READ_CACHE, row_cache
+
+    if room:  # these small files' bands fit in the small cache already
+        monkeypatch.setattr(climodes.pipeline, "READ_CACHE", 2**10)
+    else:
+        monkeypatch.setattr(climodes.pipeline, "row_cache", lambda *args: int(1e15))
+    seen, real = [], climodes.pipeline.solve
+
+    def solve(*args, **kwargs):
+        seen.append(netCDF4.get_chunk_cache()[0])
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(climodes.pipeline, "solve", solve)
+    before = netCDF4.get_chunk_cache()
+    _, log = _run(tmp_path, cli, monkeypatch, files["tiles"], "randomized", ROWS, f"tiles{room}")
+    assert netCDF4.get_chunk_cache() == before
+    if not room:
+        assert seen == [READ_CACHE] and "no room in compute.memory to keep the chunks that blocks share" in log
+        return
+    rows = int(re.search(r"block\(s\) of (\d+) latitude rows", log).group(1))
+    workers = int(re.search(r"threads: (\d+) worker thread", log).group(1))
+    with xr.open_dataset(files["tiles"][0]) as ds:
+        tiles = storage_of(ds["tas"], {"time": "time", "lat": "lat", "lon": "lon"})
+    size = row_cache([tiles, tiles], rows, 25, workers, 4)
+    assert rows < 25 and seen == [size] and f"each file keeps {size / 1e6:.1f} MB of decompressed chunks" in log
 
 
 def _run(tmp_path, cli, monkeypatch, paths, method, order, name, prepare=None):
@@ -370,3 +427,34 @@ def test_a_projection_plans_blocks_of_whole_chunks_along_time(storage, order):
         assert chunks["time"] == -1 and 0 < chunks["lat"] < 25 and text.endswith("latitude rows")
     else:
         assert chunks == order
+
+
+@pytest.mark.slow
+def test_a_tiled_compressed_field_is_read_in_rows_within_its_memory(tmp_path):
+    """A field of 0.52 GB (float32) in 4 compressed files of chunks 125 x 4 x 90 against compute.memory of
+    450MB: read in blocks of rows, the files' chunk caches are planned with the blocks, and the peak resident
+    memory of the run stays within it (getrusage of a child, which counts what the operating system gave
+    it; the library's default cache, 64 MiB a file, would take 0.27 GB beside the plan)."""
+    import subprocess
+    import sys
+
+    steps, lat, lon = 1000, np.linspace(-89.5, 89.5, 180), np.arange(0, 360, 0.5)
+    rng = np.random.default_rng(0)
+    paths = []
+    for part in range(4):
+        values = (280 + rng.standard_normal((steps // 4, lat.size, lon.size), dtype=np.float32)).astype(np.float32)
+        time = xr.date_range(f"{1900 + 25 * part}-01-01", periods=steps // 4, freq="MS")
+        paths.append(tmp_path / f"tiles{part}.nc")
+        field_dataset(values, lat, lon, time=time).to_netcdf(
+            paths[-1], encoding={"tas": {"zlib": True, "complevel": 1, "chunksizes": (125, 4, 90)}})
+        del values
+    config = write_config(tmp_path, paths, modes={"count": 3, "method": "randomized"}, compute={"memory": "450MB"})
+    peak = ("import resource, subprocess, sys; done = subprocess.run(sys.argv[1:]); "
+            "print(done.returncode, resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss * 1024)")
+    done = subprocess.run([sys.executable, "-c", peak, sys.executable, "-m", "climodes", "run", "--quiet", str(config)],
+                          capture_output=True, text=True, timeout=900)
+    code, used = map(int, done.stdout.split()[-2:])
+    assert code == 0, done.stderr
+    log = (tmp_path / "out" / "run.log").read_text()
+    assert "read order: blocks of latitude rows" in log and "MB of decompressed chunks" in log
+    assert used <= 450e6, used / 1e6

@@ -6,6 +6,7 @@ Halko, Martinsson and Tropp (2011, SIAM Review 53(2)) for what a randomized rang
 iterations achieves on a matrix with a decaying spectrum.
 """
 
+import platform
 import re
 
 import dask
@@ -236,6 +237,34 @@ def test_resident_bytes_is_what_the_system_counts():
 
     now = resident_bytes()
     assert 10e6 < now <= 1.05 * resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+
+
+@pytest.mark.skipif(platform.libc_ver()[0] != "glibc", reason="the mmap threshold is glibc's")
+def test_freed_blocks_go_back_to_the_system():
+    """A freed block of 16 MiB leaves the resident set, even after a bigger one was freed, which raises
+    glibc's own threshold for mapping blocks on their own above it (glibc's mallopt(3) manual page,
+    M_MMAP_THRESHOLD: "dynamic mmap threshold"), without :func:`return_freed_memory` to fix it."""
+    from climodes.cluster import resident_bytes, return_freed_memory
+
+    return_freed_memory()
+    np.ones(24 * 2**20 // 8)  # made and freed at once
+    before = resident_bytes()
+    block = np.ones(16 * 2**20 // 8)
+    del block
+    assert resident_bytes() - before < 2**20
+
+
+def test_the_plan_counts_the_readers_chunk_caches():
+    """What the readers' chunk caches hold takes the place of blocks in the plan, and is in what it needs:
+    our own contract (README, compute.memory), on the plan's arithmetic (70 % of the budget beside what the
+    process holds, 16 bytes a value of each worker's block for the randomized solver)."""
+    shape, budget, in_use, cache = (3650, 181, 360), int(1.5e9), int(2e8), int(2.4e8)
+    bare = plan_solver(shape, 6, "randomized", budget, 2, in_use=in_use)
+    cached = plan_solver(shape, 6, "randomized", budget, 2, in_use=in_use, read_cache=lambda rows: cache)
+    assert cached.lat_rows < bare.lat_rows and cached.memory <= budget
+    assert cached.memory - in_use >= (cache + 2 * 16 * 3650 * 360 * cached.lat_rows) / 0.7
+    with pytest.raises(UserError, match="compute.memory: 0.60 GB is too small"):
+        plan_solver(shape, 6, "randomized", int(6e8), 2, in_use=in_use, read_cache=lambda rows: cache)
 
 
 def test_a_budget_too_small_is_a_clear_error():

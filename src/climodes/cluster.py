@@ -20,6 +20,7 @@ allocation's cores, and the run plans for no more memory than the allocation hol
 from __future__ import annotations
 
 import contextlib
+import ctypes
 import logging
 import math
 import os
@@ -49,6 +50,24 @@ WORKER_ENVIRONMENT = {"DASK_DISTRIBUTED__WORKER__MEMORY__TARGET": "False",
                       "DASK_DISTRIBUTED__WORKER__MEMORY__SPILL": "False",
                       "DASK_DISTRIBUTED__WORKER__MEMORY__PAUSE": "False"}
 QUIET_LOGGERS = ("distributed", "dask_jobqueue", "tornado", "asyncio")
+MMAP_THRESHOLD = 2**20  # bytes from which each allocation is mapped on its own, and unmapped when freed
+
+
+def return_freed_memory() -> None:
+    """Have the C library give each freed block of :data:`MMAP_THRESHOLD` bytes or more back to the system.
+
+    glibc maps large blocks on their own at first, but raises that threshold (up to 32 MiB) each time
+    it unmaps one, so blocks of a pass's size then come from its heaps and stay resident when freed:
+    measured on a 0.95 GB field, 0.15 to 0.25 GB held beyond what the run used, which no plan can
+    count.  A fixed threshold (``mallopt(M_MMAP_THRESHOLD)``) keeps them mapped on their own.  Nothing
+    happens where the C library has no ``mallopt`` (it is glibc's).  Dask workers do the same when they
+    join (:func:`_workers_return_freed_memory`).
+    """
+    try:
+        mallopt = ctypes.CDLL(None).mallopt
+    except (OSError, AttributeError):
+        return
+    mallopt(-3, MMAP_THRESHOLD)  # -3: M_MMAP_THRESHOLD in glibc's malloc.h
 
 
 def resident_bytes() -> int:
@@ -208,34 +227,36 @@ def _local_passes(progress: bool, workers: int) -> Callable[[str], ContextManage
     return during
 
 
-WORKER_ENVIRON = {"OMP_NUM_THREADS": 1, "MKL_NUM_THREADS": 1, "OPENBLAS_NUM_THREADS": 1}
-"""The environment of a local cluster's workers: one BLAS thread each, as dask sets it, but without the
-``MALLOC_TRIM_THRESHOLD_`` dask sets besides: any fixed threshold turns off glibc's adaptive one, so
-every buffer of more than 128 kB (each decompressed chunk of a file) is mapped and unmapped anew; with
-it, reading per-step compressed maps in a worker took 1.6 times as long as in a thread (measured)."""
+def _workers_return_freed_memory():
+    """A worker plugin: each worker gives freed blocks back to the system as this process does
+    (:func:`return_freed_memory`, set when it joins), and what its heap freed at the end of each task
+    (glibc's ``malloc_trim``), so a worker holds what it keeps, not the peak of its last task.
 
-
-def _freed_after_each_task():
-    """A worker plugin: when a task ends, the memory its buffers freed goes back to the system
-    (glibc's ``malloc_trim``), so a worker holds what it keeps, not the peak of its last task."""
+    The fixed threshold also speeds the reading: dask starts its workers with ``MALLOC_TRIM_THRESHOLD_``
+    set, which fixes glibc's threshold at 128 kB, so every decompressed chunk above that (260 kB for one
+    map of a 1-degree grid) was mapped and unmapped anew: reading per-step compressed maps took 1.6-1.8
+    times as long in a worker as in a thread (measured; 1 MiB: as long).
+    """
     import ctypes
 
     from distributed import WorkerPlugin
 
-    class FreedAfterEachTask(WorkerPlugin):
+    class ReturnFreedMemory(WorkerPlugin):
         def setup(self, worker) -> None:
-            self.trim = ctypes.CDLL("libc.so.6").malloc_trim
+            return_freed_memory()
+            self.trim = getattr(ctypes.CDLL(None), "malloc_trim", lambda pad: 0)
 
         def transition(self, key, start: str, finish: str, **kwargs) -> None:
             if start == "executing":
                 self.trim(0)
 
-    return FreedAfterEachTask()
+    return ReturnFreedMemory()
 
 
 @contextlib.contextmanager
 def running(spec: ComputeSection, progress: bool, walltime: str, folder: Path) -> Iterator[Session]:
-    """Run the enclosed passes where ``spec`` says; the workers started for them end with the block.
+    """Run the enclosed passes where ``spec`` says; the workers started for them end with the block.  From
+    here on, this process gives large freed blocks back to the system (:func:`return_freed_memory`).
 
     Parameters
     ----------
@@ -249,6 +270,7 @@ def running(spec: ComputeSection, progress: bool, walltime: str, folder: Path) -
         Where worker jobs write their logs, in a hidden folder removed at the end (it must be
         seen from the nodes: the config's folder).
     """
+    return_freed_memory()
     host = socket.gethostname()
     allocation = batch_allocation()
     inside = f", in {allocation.text()}" if allocation else ""
@@ -265,12 +287,10 @@ def running(spec: ComputeSection, progress: bool, walltime: str, folder: Path) -
         stack.enter_context(dask.config.set({"distributed.scheduler.no-workers-timeout": f"{spec.worker_wait}s"}))
         if spec.scheduler == "processes":
             workers = worker_count(spec)
-            stack.enter_context(dask.config.set({"distributed.nanny.pre-spawn-environ": WORKER_ENVIRON}))
             cluster = stack.enter_context(LocalCluster(
                 n_workers=workers, threads_per_worker=1, processes=True, host="127.0.0.1", dashboard_address=None,
                 memory_limit=0, silence_logs=logging.CRITICAL))
             client = stack.enter_context(Client(cluster, set_as_default=False))
-            client.register_plugin(_freed_after_each_task())
             where = f"processes: a local dask cluster of {workers} worker processes on {host}{inside}"
         elif spec.address:
             client = stack.enter_context(_joined(spec))
@@ -284,6 +304,7 @@ def running(spec: ComputeSection, progress: bool, walltime: str, folder: Path) -
             cluster = stack.enter_context(_batch_cluster(spec, walltime, logs))
             client = stack.enter_context(Client(cluster, set_as_default=False))
             where = _wait_for_jobs(spec, client, cluster, host)
+        client.register_plugin(_workers_return_freed_memory())
         session = Session(where, lambda label: contextlib.nullcontext())
         session.during = _distributed_passes(client, session, progress)
         with dask.config.set({"climodes.read-blocks-in-task": True}):

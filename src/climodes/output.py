@@ -30,6 +30,7 @@ import threading
 from pathlib import Path
 from typing import Callable, Iterator
 
+import dask.array
 import numpy as np
 import xarray as xr
 
@@ -40,6 +41,7 @@ from climodes.fields import OpenedField
 from climodes.grid import GRID_LAT, GRID_LON, GRID_X, GRID_Y
 
 FILL = 9.969209968386869e36  # the netCDF default fill for doubles
+WHOLE_WRITE = 2**24  # bytes of an in-memory stack of maps written in one piece; bigger ones are written map by map
 
 
 def _squared_units(units: str | None) -> dict:
@@ -206,14 +208,32 @@ def provenance(spec: RunSpec, opened: OpenedField, extra: dict) -> dict:
     }
 
 
+class _Uncopied:
+    """An in-memory array that ``dask.array.from_array`` reads pieces of without copying it whole first
+    (it copies whatever has a ``copy`` method)."""
+
+    def __init__(self, values: np.ndarray):
+        self.values, self.shape, self.dtype, self.ndim = values, values.shape, values.dtype, values.ndim
+
+    def __getitem__(self, key) -> np.ndarray:
+        return self.values[key]
+
+
 def write_netcdf(ds: xr.Dataset, path: Path, time_encoding: dict, time_name: str | None = None) -> None:
     """Write ``ds`` as NetCDF-4 with CF-friendly encodings (no fill values on coordinates); ``time_name``
     (by default the time axis of ``pc``) gets ``time_encoding``.
 
-    A dask-backed variable is written chunk by chunk, each map of it a NetCDF chunk of its own.  SIGINT
-    and SIGTERM wait until the file is closed: an interruption inside xarray's writer can leave its file
-    lock taken, and the close that follows would then wait for ever.
+    A dask-backed variable is written chunk by chunk, each map of it a NetCDF chunk of its own; so is an
+    in-memory stack of maps of more than :data:`WHOLE_WRITE` bytes (the fitted climatology of a big grid),
+    which written whole would be copied by the encoding and the library's conversions on the way (measured:
+    1.5 times its size more).  SIGINT and SIGTERM wait until the file is closed: an interruption inside
+    xarray's writer can leave its file lock taken, and the close that follows would then wait for ever.
     """
+    ds = ds.copy()
+    for name, var in ds.data_vars.items():
+        if var.chunks is None and var.ndim >= 3 and var.nbytes > WHOLE_WRITE:
+            maps = dask.array.from_array(_Uncopied(var.values), chunks=(1, *var.shape[1:]), asarray=False)
+            ds[name] = var.copy(data=maps)
     encoding = {name: {"_FillValue": None} for name in ds.coords}
     for name, var in ds.data_vars.items():
         encoding[name] = {"_FillValue": FILL if var.dtype.kind == "f" else None}

@@ -15,7 +15,7 @@ import re
 import tempfile
 import time
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Callable, ContextManager, Iterator
 
@@ -105,7 +105,18 @@ from climodes.reuse import (
 from climodes.rotation import rotated_variables
 from climodes.significance import NoiseTest, fit_red_noise, noise_variables, red_noise_test
 from climodes.solvers import POWER_ITERATIONS, Decomposition, SolverPlan, plan_solver, solve
-from climodes.storage import ROWS, TIME, Reading, plan_reading, scratch_room, staged
+from climodes.storage import (
+    READ_CACHE,
+    ROWS,
+    TIME,
+    Reading,
+    Storage,
+    cache_held,
+    plan_reading,
+    row_cache,
+    scratch_room,
+    staged,
+)
 from climodes.weights import field_weights
 
 # warnings meant for programmers, not for someone running climodes: deprecations and dask's chunking
@@ -185,8 +196,10 @@ def _plan(spec: RunSpec, data: xr.DataArray | None = None) -> Planned:
     opened = opened_field(spec, data)
     field, along_time, notes = _prepared(spec, opened)
     room = capacity(spec.compute)
+    small = cache_held(opened.storages, READ_CACHE)
     plan = plan_solver(field.shape, spec.modes.count, spec.modes.method, room.memory, room.workers,
-                       in_use=room.in_use, fitted_per_point=along_time.values_per_point)
+                       in_use=room.in_use, fitted_per_point=along_time.values_per_point,
+                       read_cache=lambda rows: small)
     steps, points = field.sizes["time"], field.sizes["lat"] * field.sizes["lon"]
     if spec.modes.count > points:
         raise UserError(f"modes.count: {spec.modes.count} modes asked for, but the selected grid has only {points} "
@@ -202,7 +215,35 @@ def _plan(spec: RunSpec, data: xr.DataArray | None = None) -> Planned:
                            local=spec.compute.scheduler in ("threads", "synchronous"))
     if not plan.lat_rows:  # the exact solver reads the field once, whole
         reading = Reading(ROWS, "")
+    elif reading.order == ROWS and spec.compute.scheduler in ("threads", "synchronous"):
+        plan, reading = _shared_chunks(spec, field, opened.storages, plan, reading, room, along_time)
     return Planned(opened, field, along_time, weights, plan, room, notes, reading)
+
+
+def _shared_chunks(spec: RunSpec, field: xr.DataArray, storages: list[Storage], plan: SolverPlan, reading: Reading,
+                   room: Capacity, along_time: TimeSteps) -> tuple[SolverPlan, Reading]:
+    """In rows order, where blocks share chunks of the files (a compressed chunk holds more rows than a
+    block), the plan made again with room for each file to keep the chunks the blocks in flight cross (its
+    chunk cache, see :func:`climodes.storage.row_cache`), so that each chunk is decompressed once a pass; where
+    ``compute.memory`` has no room for them, the plan as it was, and the reading says that the blocks
+    decompress the chunks they share again."""
+    nlat, itemsize = field.sizes["lat"], field.dtype.itemsize
+
+    def cache(rows: int) -> int:
+        return max(READ_CACHE, row_cache(storages, rows, nlat, room.workers, itemsize))
+
+    if cache(plan.lat_rows) == READ_CACHE:
+        return plan, reading
+    try:
+        shared = plan_solver(field.shape, spec.modes.count, spec.modes.method, room.memory, room.workers,
+                             in_use=room.in_use, fitted_per_point=along_time.values_per_point,
+                             read_cache=lambda rows: cache_held(storages, cache(rows)))
+    except UserError:
+        return plan, replace(reading, reason=f"{reading.reason}; no room in compute.memory to keep the chunks that "
+                                             "blocks share, so each block decompresses them again")
+    size = cache(shared.lat_rows)
+    return shared, replace(reading, cache=size, reason=f"{reading.reason}; each file keeps {size / 1e6:.1f} MB of "
+                                                       "decompressed chunks for the blocks that share them")
 
 
 def _passes(method: str) -> str:

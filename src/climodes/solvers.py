@@ -139,7 +139,8 @@ def _size(nbytes: float) -> str:
 
 
 def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: int, workers: int,
-                in_use: int = 0, fitted_per_point: int = 1) -> SolverPlan:
+                in_use: int = 0, fitted_per_point: int = 1,
+                read_cache: Callable[[int], int] = lambda rows: 0) -> SolverPlan:
     """Choose the solver for a ``(time, lat, lon)`` field and a memory budget in bytes.
 
     ``auto`` takes ``exact`` for small matrices that fit, ``gram`` while the
@@ -148,7 +149,9 @@ def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: in
     the budget is for the whole process, so that much is not there to plan with.
     ``fitted_per_point`` is how many values the preparation fits at each point
     (:attr:`climodes.prepare.TimeSteps.values_per_point`: 367 for a daily
-    climatology), kept with the results.
+    climatology), kept with the results.  ``read_cache`` gives the bytes the readers of the files keep
+    (their chunk caches: see :func:`climodes.storage.cache_held`) while the passes read blocks of so many
+    latitude rows.
     """
     steps, nlat, nlon = shape
     points = nlat * nlon
@@ -156,7 +159,7 @@ def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: in
     # the maps, as solved, signed and written; the fitted preparation, held from the first pass on (in the
     # working precision: float32 for the randomized solver, as a field's blocks are planned in float32)
     results_bytes = 3 * points * count * 8 + points * fitted_per_point * (4 if method == "randomized" else 8)
-    exact_bytes = 3 * steps * points * 8 + steps * min(steps, points) * 8
+    exact_bytes = 3 * steps * points * 8 + steps * min(steps, points) * 8 + read_cache(nlat)
     held = workers + 3 + int(np.ceil(np.log2(max(nlat, 2))))  # partial sums alive in the pairwise tree, at most
     # time x time matrices: the chain's sum, each worker's block product, and the eigendecomposition's copy
     # and vectors (see climodes.blocks.chained_sum)
@@ -181,7 +184,7 @@ def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: in
         return SolverPlan("exact", why, memory=int(in_use + exact_bytes))
     fixed = gram_bytes if method == "gram" else randomized_bytes
     rows, need = block_size(nlat, steps * nlon, fixed, BYTES_PER_BLOCK_VALUE[method], budget_given, in_use,
-                            workers, f"the {method} solver on {shape_text}")
+                            workers, f"the {method} solver on {shape_text}", read_cache)
     blocks = -(-nlat // rows)
     why += f"; {blocks} block(s) of {rows} latitude rows within compute.memory {_size(budget_given)}"
     if method == "gram":  # and enough that auto, planning again with only this much, still takes gram
@@ -190,12 +193,14 @@ def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: in
 
 
 def block_size(units: int, unit_values: int, fixed: float, bytes_per_value: float, budget: int, in_use: int,
-               workers: int, what: str, at_least: int = 1) -> tuple[int, float]:
+               workers: int, what: str, held: Callable[[int], int] = lambda size: 0,
+               at_least: int = 1) -> tuple[int, float]:
     """How many of ``units`` (latitude rows, time steps) of ``unit_values`` values each one block may hold.
 
     ``workers`` blocks are in flight at once, each costing ``bytes_per_value`` a value (the values read and
-    their working copies), beside ``fixed`` bytes held for the whole work and the ``in_use`` the process
-    holds already, all within 70 % of ``budget`` (the rest for what the libraries allocate beside).  A
+    their working copies), beside ``fixed`` bytes held for the whole work, ``held(size)`` bytes held while
+    blocks of ``size`` units are read (the readers' chunk caches) and the ``in_use`` the process holds
+    already, all within 70 % of ``budget`` (the rest for what the libraries allocate beside).  A
     block reads at most :data:`BLOCK_MAX_BYTES` of float32, and each worker gets :data:`BLOCKS_PER_WORKER`
     blocks where there are that many units, but holds ``at_least`` units where the budget has room for
     them (a whole chunk of the files).  Returns the units a block holds and the bytes the work needs
@@ -208,14 +213,16 @@ def block_size(units: int, unit_values: int, fixed: float, bytes_per_value: floa
     """
     room = 0.7 * (budget - in_use) - fixed
     per_unit = workers * bytes_per_value * unit_values
-    if room < per_unit:
-        need = in_use + (fixed + per_unit) / 0.7
+    if room < per_unit + held(1):
+        need = in_use + (fixed + per_unit + held(1)) / 0.7
         step = 1e7 if need >= 1e8 else 1e6  # rounded up to what _size shows, so the advice is enough
         raise UserError(f"compute.memory: {_size(budget)} is too small for {what}; give at least "
                         f"{_size(math.ceil(need / step) * step)} (the process holds {_size(in_use)} before it reads)")
     most = min(BLOCK_MAX_BYTES // (4 * unit_values), units // (BLOCKS_PER_WORKER * workers))
     size = max(1, int(min(room // per_unit, max(most, at_least))))
-    return size, (fixed + per_unit * size) / 0.7
+    while size > 1 and per_unit * size + held(size) > room:
+        size -= 1
+    return size, (fixed + per_unit * size + held(size)) / 0.7
 
 
 # --- the solvers

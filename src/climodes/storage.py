@@ -7,7 +7,9 @@ their own order, blocks of whole time chunks each holding whole maps, and keeps 
 blocks the passes need: in memory when it fits ``compute.memory`` (any layout: then every pass reads
 memory), else in an uncompressed scratch file inside the results' staging folder, removed when the
 solver is done.  Files stored in spatial tiles, or contiguously, are read in row blocks as before
-(:data:`ROWS`): each of their chunks then holds a piece of few blocks.
+(:data:`ROWS`): each of their chunks then holds a piece of few blocks, and each NetCDF file keeps the
+chunks the blocks in flight share in its chunk cache, sized and counted by the memory plan
+(:func:`row_cache`), or, where the plan has no room for them, decompresses them again for each block.
 
 The copy holds exactly the values read and the solvers' arithmetic is the same, so the results agree
 whichever order is chosen; to rounding, not to the bit, where a selection gives the blocks of the copy
@@ -29,7 +31,8 @@ import numpy as np
 import xarray as xr
 
 ROWS, TIME, MEMORY = "rows", "time", "memory"
-READ_CACHE = 4 * 2**20  # bytes of decompressed chunks each file keeps while read once (netCDF-C's default: 64 MiB)
+READ_CACHE = 4 * 2**20  # bytes of decompressed chunks each file keeps where no chunk is shared between blocks
+# (netCDF-C's default: 64 MiB)
 WHOLE_MAP = 0.5  # a chunk holding at least this share of a map counts as holding whole maps
 _FILTERS = ("zlib", "szip", "zstd", "bzip2", "blosc", "compressor", "compressors", "filters")
 
@@ -37,16 +40,25 @@ _FILTERS = ("zlib", "szip", "zstd", "bzip2", "blosc", "compressor", "compressors
 @dataclass(frozen=True)
 class Storage:
     """How one file stores the field: its chunk lengths along ``(time, lat, lon)`` (``None`` when stored
-    contiguously), whether a filter (compression) must run on each chunk read, and the file's map size."""
+    contiguously), whether a filter (compression) must run on each chunk read, the file's map size and
+    steps, and whether its reader keeps a chunk cache (NetCDF; Zarr keeps none)."""
 
     chunks: tuple[int, int, int] | None
     compressed: bool
     grid: tuple[int, int]
+    steps: int = 0  # the file's time steps
+    cached: bool = False  # read through the NetCDF library, which keeps decompressed chunks in a cache per file
 
     @property
     def whole_maps(self) -> bool:
         """Whether a chunk holds (most of) the map of each of its steps."""
         return self.chunks is not None and self.chunks[1] * self.chunks[2] >= WHOLE_MAP * self.grid[0] * self.grid[1]
+
+    def band_bytes(self, itemsize: int) -> int:
+        """Bytes of one band of chunks, decompressed: every chunk of the file holding some latitude row, all
+        its steps and longitudes (what a block of rows inside the band decompresses from this file)."""
+        steps, rows, lons = self.chunks
+        return -(-self.steps // steps) * steps * rows * -(-self.grid[1] // lons) * lons * itemsize
 
     def text(self) -> str:
         if self.chunks is None:
@@ -67,12 +79,38 @@ def storage_of(da: xr.DataArray, axes: dict[str, str]) -> Storage:
     if isinstance(sizes, dict):
         sizes = tuple(sizes.get(dim, da.sizes[dim]) for dim in da.dims)
     grid = (da.sizes.get(axes["lat"], 1), da.sizes.get(axes["lon"], 1))
+    steps = da.sizes.get(axes["time"], 1)
     compressed = any(bool(encoding.get(name)) for name in _FILTERS)
+    cached = "chunksizes" in encoding  # netCDF4's encoding (Zarr's says "chunks")
     if not sizes or encoding.get("contiguous") or len(sizes) != da.ndim:
-        return Storage(None, compressed, grid)
+        return Storage(None, compressed, grid, steps, cached)
     by_dim = dict(zip(da.dims, (int(s) for s in sizes)))
     chunks = tuple(by_dim.get(axes[axis], 1) for axis in ("time", "lat", "lon"))
-    return Storage(chunks, compressed, grid)
+    return Storage(chunks, compressed, grid, steps, cached)
+
+
+def row_cache(storages: list[Storage], rows: int, nlat: int, workers: int, itemsize: int) -> int:
+    """The chunk cache each NetCDF file needs (bytes) so that blocks of ``rows`` of the field's ``nlat``
+    latitude rows, ``workers`` of them read side by side, decompress each chunk once a pass: the bands of
+    chunks (:meth:`Storage.band_bytes`) that the neighbouring blocks in flight cross, wherever they start.
+
+    0 when no compressed file of the NetCDF library holds a chunk of several rows, or one block holds
+    every row: then no block shares a chunk with another.
+    """
+    if rows >= nlat:
+        return 0
+    size = 0
+    for storage in storages:
+        if storage.cached and storage.compressed and storage.chunks and storage.chunks[1] > 1:
+            height = storage.chunks[1]
+            bands = min(-(-(workers * rows - 1) // height) + 1, -(-storage.grid[0] // height))
+            size = max(size, bands * storage.band_bytes(itemsize))
+    return size
+
+
+def cache_held(storages: list[Storage], size: int) -> int:
+    """Bytes the chunk caches of ``storages``' files hold at most, each file keeping up to ``size``."""
+    return size * sum(1 for storage in storages if storage.cached and storage.chunks is not None)
 
 
 @contextlib.contextmanager
@@ -90,12 +128,14 @@ def _chunk_cache(size: int) -> Iterator[None]:
 
 @dataclass(frozen=True)
 class Reading:
-    """The order a run reads its field in (:data:`ROWS`, :data:`TIME` or :data:`MEMORY`), why, and for the
-    last two the steps a read block holds (whole chunks of the files)."""
+    """The order a run reads its field in (:data:`ROWS`, :data:`TIME` or :data:`MEMORY`), why, for the
+    last two the steps a read block holds (whole chunks of the files), and the chunk cache of each file
+    while the files are read (see :func:`row_cache`)."""
 
     order: str
     reason: str
     time_steps: int = 0
+    cache: int = READ_CACHE  # bytes of decompressed chunks each NetCDF file keeps while it is read
 
     def text(self, passes: str) -> str:
         """A line for the log: the order, why, and how many reads of the files ``passes`` passes cost."""
@@ -195,11 +235,18 @@ def staged(field: xr.DataArray, reading: Reading, rows: int, scratch: Path | Non
     chunked in blocks of ``rows`` latitude rows with every time step; the scratch file is removed when the
     block ends.  ``progress`` is called around the read.
 
-    Each chunk is read once, so the files are read with a small chunk cache (:data:`READ_CACHE`):
-    ``close_files`` closes them before (they open again as they are read) and after the read, which
-    frees their caches (the library's default, 64 MiB a file, would stay held for the whole run)."""
+    The files are read with the chunk cache of ``reading`` (in the files' order, where each chunk is read
+    once, a small one: :data:`READ_CACHE`; in rows, what the blocks that share chunks need, planned with
+    the solver's memory): ``close_files`` closes them before (they open again as they are read) and after
+    the reads, which frees their caches (the library's default, 64 MiB a file, would stay held for the
+    whole run, and uncounted)."""
     if reading.order == ROWS:
-        yield field
+        close_files()
+        try:
+            with _chunk_cache(reading.cache):
+                yield field
+        finally:
+            close_files()
         return
     path = scratch / ".field-scratch"
     try:
@@ -212,7 +259,7 @@ def staged(field: xr.DataArray, reading: Reading, rows: int, scratch: Path | Non
         writes = [dask.delayed(_put, pure=False)(target, slice(a, b), block)
                   for a, b, block in zip(starts[:-1], starts[1:], data.to_delayed().ravel())]
         close_files()
-        with _chunk_cache(READ_CACHE), progress("reading the field once, in the files' own order"):
+        with _chunk_cache(reading.cache), progress("reading the field once, in the files' own order"):
             dask.compute(*writes)
         close_files()
         yield field.copy(data=dask.array.from_array(target, chunks=(-1, rows, -1), name=False, asarray=False))
