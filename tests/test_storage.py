@@ -82,9 +82,33 @@ TILES = Storage((48, 5, 9), True, (25, 36))
 def test_the_order_follows_the_layout(storages, rows, room, local, order):
     reading = plan_reading(storages, (144, 25, 36), 4, rows, room, local)
     assert reading.order == order
+    if order == TIME:
+        assert reading.readers == 0  # as many as the scheduler's workers: a block holds no more than a row block
     if order != ROWS:  # blocks of whole chunks along time, holding no more values than a block of rows
         assert reading.time_steps % max(s.chunks[0] for s in storages) == 0
         assert reading.time_steps * 25 <= max(144 * 3, max(s.chunks[0] for s in storages) * 25)
+
+
+SLAB = 48 * 25 * 36 * 4 * 2  # a slab of TILES: every tile of 48 steps, float32, 2 itemsizes a value
+
+
+@pytest.mark.parametrize("read_room, local, workers, order, readers", [
+    (0, True, 2, ROWS, 0),  # no room for a slab: rows, each chunk decompressed by every block crossing it
+    (SLAB, True, 2, TIME, 1),  # one slab at a time fits: read one by one, in the files' order
+    (3 * SLAB, True, 2, TIME, 2),  # both workers read one
+    (SLAB, False, 2, ROWS, 0),  # worker processes read one each: both must fit
+    (2 * SLAB, False, 2, TIME, 2),
+])
+def test_tiles_are_read_once_in_slabs_where_they_fit(read_room, local, workers, order, readers):
+    """Tiles of 5 rows, blocks of 3: in rows every chunk would be decompressed by two blocks each pass, so
+    where a slab of whole chunks along time fits what the read may hold, the files are read once in
+    slabs, as many at once as fit (arithmetic of the chunk grid, common practice)."""
+    reading = plan_reading([TILES], (144, 25, 36), 4, 3, 0, local, read_room=read_room, workers=workers)
+    assert (reading.order, reading.readers) == (order, readers)
+    if order == TIME:
+        assert reading.time_steps == 48 and "tiles of more rows than a block" in reading.reason
+    uncompressed = Storage((48, 5, 9), False, (25, 36))  # read in part without decompressing: rows
+    assert plan_reading([uncompressed], (144, 25, 36), 4, 3, 0, local, read_room=9 * SLAB, workers=2).order == ROWS
 
 
 def test_blocks_of_rows_keep_the_bands_of_chunks_they_cross(files):
@@ -147,12 +171,12 @@ def _run(tmp_path, cli, monkeypatch, paths, method, order, name, prepare=None):
     """``climodes run`` of ``paths`` with the reading order forced to ``order``."""
     real = plan_reading
 
-    def forced(storages, shape, itemsize, rows, room, local):
+    def forced(storages, shape, itemsize, rows, room, local, **_):
         if order == MEMORY:
             return real(storages, shape, itemsize, rows, 1e12, True)
         if order == ROWS:  # today's blocks of rows, whatever the layout
             return Reading(ROWS, "as a test asks")
-        reading = real(storages, shape, itemsize, rows, 0, local)
+        reading = real(storages, shape, itemsize, rows, 0, local, read_room=1e12, workers=2)
         assert reading.order == order, reading
         return reading
 
@@ -183,7 +207,7 @@ def test_every_order_gives_the_same_modes(tmp_path, cli, monkeypatch, values_rea
     """Rows, time (scratch copy) and memory give the same run to 1e-8; time and memory read the files once,
     rows once a pass."""
     runs = {}
-    for name, order in [("steps", ROWS), ("steps", TIME), ("steps", MEMORY), ("tiles", ROWS)]:
+    for name, order in [("steps", ROWS), ("steps", TIME), ("steps", MEMORY), ("tiles", ROWS), ("tiles", TIME)]:
         values_read["values"] = 0
         runs[name, order], log = _run(tmp_path, cli, monkeypatch, files[name], method, order, name)
         reads = values_read["values"] / (144 * 25 * 36)

@@ -254,6 +254,21 @@ def test_freed_blocks_go_back_to_the_system():
     assert resident_bytes() - before < 2**20
 
 
+def test_the_freed_threshold_sits_above_the_files_chunks():
+    """Freed blocks from 1 MiB go back to the system, but the buffer each chunk of the files is
+    decompressed into stays below the threshold (twice the largest chunk), up to glibc's own largest
+    (32 MiB on 64-bit: mallopt(3), DEFAULT_MMAP_THRESHOLD_MAX, from memory)."""
+    from climodes.cluster import freed_threshold
+    from climodes.storage import Storage, chunk_bytes
+
+    tiles = Storage((365, 23, 45), True, (181, 360))
+    assert chunk_bytes([tiles, Storage(None, False, (181, 360))], 4) == 365 * 23 * 45 * 4
+    assert freed_threshold(chunk_bytes([tiles], 4)) == 2 * 365 * 23 * 45 * 4
+    assert freed_threshold(0) == freed_threshold(181 * 360 * 4) == 2**20
+    assert freed_threshold(chunk_bytes([Storage((1, 721, 1440), True, (721, 1440))], 8)) == 2 * 721 * 1440 * 8
+    assert freed_threshold(chunk_bytes([Storage((10, 721, 1440), True, (721, 1440))], 8)) == 2**25
+
+
 def test_the_plan_counts_the_readers_chunk_caches():
     """What the readers' chunk caches hold takes the place of blocks in the plan, and is in what it needs:
     our own contract (README, compute.memory), on the plan's arithmetic (70 % of the budget beside what the

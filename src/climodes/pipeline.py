@@ -112,6 +112,7 @@ from climodes.storage import (
     Reading,
     Storage,
     cache_held,
+    chunk_bytes,
     plan_reading,
     row_cache,
     scratch_room,
@@ -211,8 +212,8 @@ def _plan(spec: RunSpec, data: xr.DataArray | None = None) -> Planned:
         check_geotiff_grid(field)
     weights = field_weights(field, spec.prepare.weighting)
     reading = plan_reading(opened.storages, field.shape, field.dtype.itemsize, plan.lat_rows or field.sizes["lat"],
-                           room.memory - plan.memory,
-                           local=spec.compute.scheduler in ("threads", "synchronous"))
+                           room.memory - plan.memory, local=spec.compute.scheduler in ("threads", "synchronous"),
+                           read_room=0.7 * (room.memory - room.in_use), workers=room.workers)
     if not plan.lat_rows:  # the exact solver reads the field once, whole
         reading = Reading(ROWS, "")
     elif reading.order == ROWS and spec.compute.scheduler in ("threads", "synchronous"):
@@ -326,7 +327,8 @@ def _solve(spec: RunSpec, planned: Planned, progress: bool, scratch: str | Path 
         field, along_time, _ = _prepared(spec, opened)
     limit = walltime(spec.compute, plan.method, field.shape, spec.modes.count, field.dtype.itemsize,
                      planned.room.workers)
-    with running(spec.compute, progress, limit, spec.source.parent) as session:
+    with running(spec.compute, progress, limit, spec.source.parent,
+                 chunk_bytes(planned.opened.storages, planned.field.dtype.itemsize)) as session:
         copied_to = None if scratch is None else Path(scratch)
         with staged(field, reading, plan.lat_rows or -1, copied_to, session.during, planned.opened.close_files) as field:
             modes, result, counts = solve(field, planned.weights, spec.modes.count, spec.prepare.max_missing, plan,
@@ -692,7 +694,8 @@ def project(results: str | Path | xr.Dataset, spec: RunSpec, say: Callable[[str]
                 field = _new_field(spec, opened, trained, [])
                 limit = walltime(spec.compute, "gram", field.shape, trained.sizes["mode"], field.dtype.itemsize,
                                  plan.room.workers)
-                with running(spec.compute, progress, limit, spec.source.parent) as session:
+                with running(spec.compute, progress, limit, spec.source.parent,
+                             chunk_bytes(opened.storages, field.dtype.itemsize)) as session:
                     with damaged_files(spec):
                         products, squares, fraction = projected(field, trained, plan.fitted, plan.keys,
                                                                 session.during, plan.chunks["time"] != -1)

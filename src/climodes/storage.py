@@ -33,6 +33,7 @@ import xarray as xr
 ROWS, TIME, MEMORY = "rows", "time", "memory"
 READ_CACHE = 4 * 2**20  # bytes of decompressed chunks each file keeps where no chunk is shared between blocks
 # (netCDF-C's default: 64 MiB)
+SLAB_BYTES_PER_VALUE = 2  # itemsizes a value of a slab read in the files' order holds (measured: 1.2)
 WHOLE_MAP = 0.5  # a chunk holding at least this share of a map counts as holding whole maps
 _FILTERS = ("zlib", "szip", "zstd", "bzip2", "blosc", "compressor", "compressors", "filters")
 
@@ -65,6 +66,11 @@ class Storage:
             return "stored contiguously"
         shape = " x ".join(map(str, self.chunks))
         return f"chunks of {shape} (time x lat x lon)" + (", compressed" if self.compressed else "")
+
+
+def chunk_bytes(storages: list[Storage], itemsize: int) -> int:
+    """The largest chunk of the files, in bytes once decompressed (0 when all are stored contiguously)."""
+    return max([int(np.prod(s.chunks)) * itemsize for s in storages if s.chunks] or [0])
 
 
 def storage_of(da: xr.DataArray, axes: dict[str, str]) -> Storage:
@@ -136,6 +142,7 @@ class Reading:
     reason: str
     time_steps: int = 0
     cache: int = READ_CACHE  # bytes of decompressed chunks each NetCDF file keeps while it is read
+    readers: int = 0  # blocks read at once in the files' order (0: as many as the scheduler's workers)
 
     def text(self, passes: str) -> str:
         """A line for the log: the order, why, and how many reads of the files ``passes`` passes cost."""
@@ -147,17 +154,22 @@ class Reading:
 
 
 def plan_reading(storages: list[Storage], shape: tuple[int, int, int], itemsize: int, rows: int,
-                 room: float, local: bool) -> Reading:
+                 room: float, local: bool, read_room: float = 0.0, workers: int = 1) -> Reading:
     """Choose the reading order of a field of ``shape`` stored as ``storages`` (one per file).
 
     ``rows`` is how many latitude rows a block of the solver's plan holds (a time block holds no more
     values, and at least one chunk of the files along time); ``room`` the bytes of
     ``compute.memory`` its plan leaves unused; ``local`` whether the solver runs in this process (threads),
-    where a copy in memory is shared with the passes at no cost.
+    where a copy in memory is shared with the passes at no cost; ``read_room`` the bytes a read before the
+    passes may hold (the plan's share of ``compute.memory``, nothing else held yet) and ``workers`` how many
+    blocks are read at once.
 
     - :data:`MEMORY` when the field as read fits ``room`` and runs locally: one read, every pass in memory;
     - :data:`TIME` when every file's chunks hold whole maps of fewer steps than the file has and the plan
       has more than one row block: one read in the files' order, the passes over a scratch copy;
+    - :data:`TIME` too when every file is compressed in tiles holding more rows than a block, and a slab of
+      whole chunks along time (every tile of some steps, :data:`SLAB_BYTES_PER_VALUE`) fits ``read_room``:
+      read by as many ``readers`` at once as fit (on a local scheduler; elsewhere every worker reads one);
     - :data:`ROWS` otherwise: the passes read the files in blocks of rows, each chunk once a pass.
     """
     steps, nlat, nlon = shape
@@ -173,6 +185,12 @@ def plan_reading(storages: list[Storage], shape: tuple[int, int, int], itemsize:
         return Reading(TIME, f"the files hold whole maps per chunk: {layout}", block)
     if row_blocks <= 1:
         return Reading(ROWS, "one block holds every row, so each chunk is read once a pass")
+    tiles = storages and all(s.chunks is not None and s.compressed and s.chunks[1] > rows for s in storages)
+    readers = int(read_room // (time_chunk * nlat * nlon * SLAB_BYTES_PER_VALUE * itemsize))
+    if tiles and time_chunk < steps and readers >= (1 if local else workers):
+        readers = min(readers, workers)
+        return Reading(TIME, f"the files are compressed in tiles of more rows than a block: {layout}; "
+                             f"{readers} slab(s) of {time_chunk} steps read at once", time_chunk, readers=readers)
     return Reading(ROWS, f"{layout}: a block of rows reads only its own chunks")
 
 
@@ -260,7 +278,7 @@ def staged(field: xr.DataArray, reading: Reading, rows: int, scratch: Path | Non
                   for a, b, block in zip(starts[:-1], starts[1:], data.to_delayed().ravel())]
         close_files()
         with _chunk_cache(reading.cache), progress("reading the field once, in the files' own order"):
-            dask.compute(*writes)
+            dask.compute(*writes, **({"num_workers": reading.readers} if reading.readers else {}))
         close_files()
         yield field.copy(data=dask.array.from_array(target, chunks=(-1, rows, -1), name=False, asarray=False))
     finally:
