@@ -104,12 +104,22 @@ if paths[0].endswith(".zarr"):
     field, lat, time_days = group["tas"][:], group["lat"][:], group["time"][:]
 else:
     import netCDF4
-    parts, days = [], []
+    days = []
     for path in paths:
         with netCDF4.Dataset(path) as nc:
-            nc.set_auto_mask(False)
-            parts.append(nc["tas"][:]); days.append(nc["time"][:]); lat = nc["lat"][:]
-    field, time_days = np.concatenate(parts), np.concatenate(days)
+            days.append(nc["time"][:]); lat, shape = nc["lat"][:], nc["tas"].shape
+    time_days = np.concatenate(days)
+    field, first = np.empty((time_days.size, *shape[1:]), dtype=np.float32), 0
+    for path in paths:  # in the files' chunks along time: one whole-variable read is several times slower
+        with netCDF4.Dataset(path) as nc:
+            variable = nc["tas"]
+            variable.set_auto_mask(False)
+            chunking = variable.chunking()
+            step = chunking[0] if chunking != "contiguous" else 100
+            for t in range(0, variable.shape[0], step):
+                part = variable[t:t + step]
+                field[first:first + len(part)] = part
+                first += len(part)
 steps = field.shape[0]
 field = field.reshape(steps, -1)
 dates = np.datetime64("1900-01-01") + time_days.astype("timedelta64[D]")
