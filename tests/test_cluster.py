@@ -355,20 +355,24 @@ def test_progress_bars_with_a_local_cluster(tmp_path, small_field, capsys, monke
 
 
 def _worker_facts(_) -> tuple:
+    import netCDF4
     from distributed import get_worker
 
-    return os.environ.get("OPENBLAS_NUM_THREADS"), [type(plugin).__name__ for plugin in get_worker().plugins.values()]
+    return (os.environ.get("OPENBLAS_NUM_THREADS"), [type(plugin).__name__ for plugin in get_worker().plugins.values()],
+            netCDF4.get_chunk_cache()[0])
 
 
 @pytest.mark.slow
 def test_local_workers_return_freed_memory_as_this_process_does(tmp_path):
     """Each worker of the local cluster fixes glibc's mmap threshold as this process does (the plugin's
-    work is checked in this process by test_streaming.py::test_freed_blocks_go_back_to_the_system), one
-    BLAS thread each as dask sets it."""
+    work is checked in this process by test_streaming.py::test_freed_blocks_go_back_to_the_system), keeps
+    the planned chunk cache for the NetCDF files it opens (netCDF4's get_chunk_cache), not the library's
+    64 MiB, and runs one BLAS thread as dask sets it."""
     import dask
 
     spec = ComputeSection(scheduler="processes", workers=2)
-    with climodes.cluster.running(spec, False, "00:10:00", tmp_path) as session, session.during("facts"):
+    with climodes.cluster.running(spec, False, "00:10:00", tmp_path, chunk_cache=3 * 2**20) as session, \
+            session.during("facts"):
         facts = dask.compute(*[dask.delayed(_worker_facts)(i) for i in range(4)])
-    for blas, plugins in facts:
-        assert blas == "1" and "ReturnFreedMemory" in plugins
+    for blas, plugins, cache in facts:
+        assert blas == "1" and "ReturnFreedMemory" in plugins and cache == 3 * 2**20

@@ -429,6 +429,45 @@ def _same_projection(a: xr.Dataset, b: xr.Dataset) -> None:
             np.testing.assert_allclose(a[name].values, variable.values, rtol=0, atol=1e-12 * scale, err_msg=name)
 
 
+def test_a_projection_reads_with_a_small_chunk_cache_counted_in_its_plan(tmp_path, cli, monkeypatch, files):
+    """The files a projection reads keep a small chunk cache each (netCDF4's get_chunk_cache while the
+    blocks are read), which its plan counts, not the library's 64 MiB a file."""
+    import netCDF4
+
+    import climodes.reuse
+    from climodes.errors import UserError
+    from climodes.prepare import Fitted, Preparation
+    from climodes.reuse import plan_projection
+    from climodes.storage import READ_CACHE
+
+    trained = tmp_path / "trained"
+    trained.mkdir()
+    assert cli("run", write_config(trained, files["steps"], modes={"count": 3}, prepare={"max_missing": 0.2}))[0] == 0
+    seen = []
+    for name in ("project_steps", "project_block"):
+
+        def spy(*args, real=getattr(climodes.reuse, name)):
+            seen.append(netCDF4.get_chunk_cache()[0])
+            return real(*args)
+
+        monkeypatch.setattr(climodes.reuse, name, spy)
+    for layout in ("steps", "tiles"):
+        folder = tmp_path / layout
+        folder.mkdir()
+        code, _, err = cli("project", trained / "out", write_config(folder, files[layout], prepare={"max_missing": 0.2}))
+        assert code == 0, err
+    assert seen and set(seen) == {READ_CACHE}
+    assert netCDF4.get_chunk_cache()[0] != READ_CACHE  # the library's setting is back after
+    fitted = Fitted(Preparation(), {"offset": np.zeros((25, 36))})
+    results, need = xr.Dataset(coords={"mode": [1, 2, 3]}), []
+    for storages in ([], [Storage((1, 25, 36), True, (25, 36), steps=72, cached=True)] * 40):
+        with pytest.raises(UserError) as refused:
+            plan_projection((144, 25, 36), results, fitted, int(2e8), int(2e8), 2, storages)
+        need.append(refused)
+    need = [float(re.search(r"give at least ([\d.]+) GB", str(e.value)).group(1)) for e in need]
+    assert need[1] - need[0] >= 40 * READ_CACHE / 0.7 / 1e9 - 0.01  # 40 files' caches in the advice
+
+
 @pytest.mark.parametrize("storage, order", [
     (Storage((24, 25, 36), True, (25, 36)), {"time": 24, "lat": -1, "lon": -1}),  # a whole chunk, not a part
     (Storage((1, 25, 36), True, (25, 36)), None),  # several steps a block, a whole number of chunks

@@ -236,9 +236,11 @@ def _local_passes(progress: bool, workers: int) -> Callable[[str], ContextManage
     return during
 
 
-def _workers_return_freed_memory(threshold: int):
+def _workers_return_freed_memory(threshold: int, chunk_cache: int):
     """A worker plugin: each worker gives freed blocks back to the system as this process does
-    (:func:`return_freed_memory` with ``threshold``, set when it joins), and what its heap freed at the end of each task
+    (:func:`return_freed_memory` with ``threshold``, set when it joins), and what its heap freed at the end of each task;
+    the NetCDF files it opens keep ``chunk_cache`` bytes of decompressed chunks each, as planned (the
+    library's default, 64 MiB a file, is in no plan)
     (glibc's ``malloc_trim``), so a worker holds what it keeps, not the peak of its last task.
 
     The fixed threshold also speeds the reading: dask starts its workers with ``MALLOC_TRIM_THRESHOLD_``
@@ -252,7 +254,10 @@ def _workers_return_freed_memory(threshold: int):
 
     class ReturnFreedMemory(WorkerPlugin):
         def setup(self, worker) -> None:
+            import netCDF4
+
             return_freed_memory(threshold)
+            netCDF4.set_chunk_cache(chunk_cache, *netCDF4.get_chunk_cache()[1:])
             self.trim = getattr(ctypes.CDLL(None), "malloc_trim", lambda pad: 0)
 
         def transition(self, key, start: str, finish: str, **kwargs) -> None:
@@ -264,7 +269,7 @@ def _workers_return_freed_memory(threshold: int):
 
 @contextlib.contextmanager
 def running(spec: ComputeSection, progress: bool, walltime: str, folder: Path,
-            chunk_bytes: int = 0) -> Iterator[Session]:
+            chunk_bytes: int = 0, chunk_cache: int = 4 * 2**20) -> Iterator[Session]:
     """Run the enclosed passes where ``spec`` says; the workers started for them end with the block.  From
     here on, this process gives large freed blocks back to the system (:func:`return_freed_memory`).
 
@@ -281,6 +286,9 @@ def running(spec: ComputeSection, progress: bool, walltime: str, folder: Path,
         seen from the nodes: the config's folder).
     chunk_bytes
         The largest chunk of the files read, decompressed (see :func:`freed_threshold`).
+    chunk_cache
+        Bytes of decompressed chunks each NetCDF file may keep in a dask worker (in this process, the
+        reading sets its own: :func:`climodes.storage.staged`).
     """
     threshold = freed_threshold(chunk_bytes)
     return_freed_memory(threshold)
@@ -317,7 +325,7 @@ def running(spec: ComputeSection, progress: bool, walltime: str, folder: Path,
             cluster = stack.enter_context(_batch_cluster(spec, walltime, logs))
             client = stack.enter_context(Client(cluster, set_as_default=False))
             where = _wait_for_jobs(spec, client, cluster, host)
-        client.register_plugin(_workers_return_freed_memory(threshold))
+        client.register_plugin(_workers_return_freed_memory(threshold, chunk_cache))
         session = Session(where, lambda label: contextlib.nullcontext())
         session.during = _distributed_passes(client, session, progress)
         with dask.config.set({"climodes.read-blocks-in-task": True}):

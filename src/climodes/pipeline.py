@@ -113,6 +113,7 @@ from climodes.storage import (
     Storage,
     cache_held,
     chunk_bytes,
+    keeping_chunks,
     plan_reading,
     row_cache,
     scratch_room,
@@ -328,7 +329,7 @@ def _solve(spec: RunSpec, planned: Planned, progress: bool, scratch: str | Path 
     limit = walltime(spec.compute, plan.method, field.shape, spec.modes.count, field.dtype.itemsize,
                      planned.room.workers)
     with running(spec.compute, progress, limit, spec.source.parent,
-                 chunk_bytes(planned.opened.storages, planned.field.dtype.itemsize)) as session:
+                 chunk_bytes(planned.opened.storages, planned.field.dtype.itemsize), reading.cache) as session:
         copied_to = None if scratch is None else Path(scratch)
         with staged(field, reading, plan.lat_rows or -1, copied_to, session.during, planned.opened.close_files) as field:
             modes, result, counts = solve(field, planned.weights, spec.modes.count, spec.prepare.max_missing, plan,
@@ -696,9 +697,13 @@ def project(results: str | Path | xr.Dataset, spec: RunSpec, say: Callable[[str]
                                  plan.room.workers)
                 with running(spec.compute, progress, limit, spec.source.parent,
                              chunk_bytes(opened.storages, field.dtype.itemsize)) as session:
-                    with damaged_files(spec):
-                        products, squares, fraction = projected(field, trained, plan.fitted, plan.keys,
-                                                                session.during, plan.chunks["time"] != -1)
+                    with damaged_files(spec), keeping_chunks(READ_CACHE):
+                        opened.close_files()  # opened again, with the small cache, as the blocks are read
+                        try:
+                            products, squares, fraction = projected(field, trained, plan.fitted, plan.keys,
+                                                                    session.during, plan.chunks["time"] != -1)
+                        finally:
+                            opened.close_files()
             check_points(fraction, trained, field, plan.max_missing, plan.source)
             used = trained["point_status"].values.reshape(-1) == 2
             filled = int(round(float(np.sum(fraction[used])) * field.sizes["time"]))

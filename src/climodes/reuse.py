@@ -62,7 +62,7 @@ from climodes.prepare import (
 )
 from climodes.report import long_name_of, modes_text, months_text, stored_config
 from climodes.solvers import block_size
-from climodes.storage import Storage
+from climodes.storage import READ_CACHE, Storage, cache_held
 
 # bytes a value of a block costs: the modes' product and the preparation put back in float64, the float32 copies
 # written (measured on a 0.5 GB field: 25; with room to spare)
@@ -314,7 +314,8 @@ def plan_projection(shape: tuple[int, int, int], results: xr.Dataset, fitted: Fi
     """
     steps, nlat, nlon = shape
     count = results.sizes["mode"]
-    fixed = sum(q.nbytes for q in fitted.quantities.values()) + 3 * nlat * nlon * count * 8
+    fixed = (sum(q.nbytes for q in fitted.quantities.values()) + 3 * nlat * nlon * count * 8
+             + cache_held(storages, READ_CACHE))  # each file's chunk cache while it is read
     what = f"projecting {steps} steps x {nlat * nlon} points"
     chunk = _maps_in_time(storages)
     if chunk:

@@ -120,7 +120,7 @@ def cache_held(storages: list[Storage], size: int) -> int:
 
 
 @contextlib.contextmanager
-def _chunk_cache(size: int) -> Iterator[None]:
+def keeping_chunks(size: int) -> Iterator[None]:
     """NetCDF files opened meanwhile keep at most ``size`` bytes of decompressed chunks each."""
     import netCDF4
 
@@ -261,7 +261,7 @@ def staged(field: xr.DataArray, reading: Reading, rows: int, scratch: Path | Non
     if reading.order == ROWS:
         close_files()
         try:
-            with _chunk_cache(reading.cache):
+            with keeping_chunks(reading.cache):
                 yield field
         finally:
             close_files()
@@ -277,7 +277,7 @@ def staged(field: xr.DataArray, reading: Reading, rows: int, scratch: Path | Non
         writes = [dask.delayed(_put, pure=False)(target, slice(a, b), block)
                   for a, b, block in zip(starts[:-1], starts[1:], data.to_delayed().ravel())]
         close_files()
-        with _chunk_cache(reading.cache), progress("reading the field once, in the files' own order"):
+        with keeping_chunks(reading.cache), progress("reading the field once, in the files' own order"):
             dask.compute(*writes, **({"num_workers": reading.readers} if reading.readers else {}))
         close_files()
         yield field.copy(data=dask.array.from_array(target, chunks=(-1, rows, -1), name=False, asarray=False))
