@@ -252,6 +252,12 @@ def _global(tmp_path, cli):
     return _results_of(tmp_path, cli, red_field((96, lat.size, lon.size), 1), lat, lon), None
 
 
+def _north_to_south(tmp_path, cli):
+    """A global grid stored from the north pole down, as most reanalyses are (cartopy failed to cut its cells)."""
+    lat, lon = np.arange(87.5, -90, -5), np.arange(0.0, 360, 5)
+    return _results_of(tmp_path, cli, red_field((96, lat.size, lon.size), 7), lat, lon), None
+
+
 def _polar(tmp_path, cli):
     lat, lon = np.arange(-87.5, 90, 5), np.arange(-177.5, 180, 5)
     return _results_of(tmp_path, cli, red_field((96, lat.size, lon.size), 2), lat, lon,
@@ -307,7 +313,7 @@ def _curvilinear(tmp_path, cli):
     return tmp_path / "out", None
 
 
-DOMAINS = {"global": _global, "polar": _polar, "regional": _regional, "dateline": _dateline, "masked": _masked,
+DOMAINS = {"global": _global, "north_to_south": _north_to_south, "polar": _polar, "regional": _regional, "dateline": _dateline, "masked": _masked,
            "curvilinear": _curvilinear}
 EXPECTED = ["mode_01", "mode_02", "mode_03", "rotated_01", "rotated_02", "rotated_03", "pc_01", "pc_02", "pc_03",
             "pairs", "spectrum", "residuals"]

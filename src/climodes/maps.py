@@ -180,14 +180,18 @@ def draw_map(ax, ds: xr.Dataset, values: np.ndarray, levels: np.ndarray, cmap: s
              variable: str = "eof"):
     """Fill ``ax`` (a cartopy GeoAxes) with ``values`` on the grid of ``variable``; return the colour mesh.
 
-    The points not used get their own grey shades, drawn under the coastlines and gridlines.
+    The points not used get their own grey shades, drawn under the coastlines and gridlines.  Rows stored
+    north to south (most reanalyses) are drawn south to north: cartopy cannot cut the cells of a global
+    grid in that order at the map's edge (a ValueError from its polygon code, seen with cartopy 0.26).
     """
     lons, lats = grid_points(ds, variable)
+    status, unused = status_of(ds, values)
+    rows = slice(None, None, -1) if lats.shape[0] > 1 and np.nanmean(lats[0]) > np.nanmean(lats[-1]) else slice(None)
+    lons, lats, values, status = lons[rows], lats[rows], np.asarray(values)[rows], np.asarray(status)[rows]
     colours = matplotlib.colormaps[cmap].resampled(len(levels) - 1)
     norm = mcolors.BoundaryNorm(levels, colours.N)
     mesh = ax.pcolormesh(lons, lats, np.ma.masked_invalid(values), cmap=colours, norm=norm, transform=PLATE,
                          shading="nearest", rasterized=True)
-    status, unused = status_of(ds, values)
     if unused:
         codes = sorted(unused)
         shades = mcolors.ListedColormap([unused[c][0] for c in codes])
