@@ -521,3 +521,26 @@ def test_a_tiled_compressed_field_is_read_in_rows_within_its_memory(tmp_path):
     log = (tmp_path / "out" / "run.log").read_text()
     assert "read order: blocks of latitude rows" in log and "MB of decompressed chunks" in log
     assert used <= 450e6, used / 1e6
+
+
+def test_many_small_files_plan_no_more_cache_than_they_hold(tmp_path, cli):
+    """One map a file is the usual archive layout: each file's chunk cache holds at most its own values, and
+    only the files xarray keeps open at once (its file_cache_maxsize) hold any, so 300 one-step files of a
+    tiny grid are planned like one file, not 300 x 4 MiB (which asked for 1.8 GB for a 0.2 MB field)."""
+    from climodes.storage import READ_CACHE, cache_held
+
+    lat, lon = np.linspace(-40, 40, 10), np.arange(0, 200, 10.0)
+    time = xr.date_range("2000-01-01", periods=300, freq="D")
+    values = red_field((300, 10, 20), 3).astype(np.float32)
+    paths = []
+    for step in range(300):
+        paths.append(tmp_path / f"day{step:03d}.nc")
+        field_dataset(values[step:step + 1], lat, lon, time=time[step:step + 1]).to_netcdf(
+            paths[-1], encoding={"tas": {"zlib": True, "chunksizes": (1, 10, 20)}})
+    config = write_config(tmp_path, paths, modes={"count": 3}, compute={"memory": "600MB"})
+    code, out, err = cli("check", config)
+    assert code == 0, err
+    day = Storage((1, 10, 20), True, (10, 20), steps=1, cached=True)
+    assert cache_held([day] * 300, READ_CACHE) == 128 * 10 * 20 * 4  # a map each, 128 files open at once
+    month = Storage((1, 180, 360), True, (180, 360), steps=31, cached=True)
+    assert cache_held([month] * 500, READ_CACHE) == 128 * READ_CACHE  # xarray's default: 128 files open at once

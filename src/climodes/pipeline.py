@@ -198,7 +198,7 @@ def _plan(spec: RunSpec, data: xr.DataArray | None = None) -> Planned:
     opened = opened_field(spec, data)
     field, along_time, notes = _prepared(spec, opened)
     room = capacity(spec.compute)
-    small = cache_held(opened.storages, READ_CACHE)
+    small = cache_held(opened.storages, READ_CACHE, field.dtype.itemsize)
     plan = plan_solver(field.shape, spec.modes.count, spec.modes.method, room.memory, room.workers,
                        in_use=room.in_use, fitted_per_point=along_time.values_per_point,
                        read_cache=lambda rows: small)
@@ -239,7 +239,7 @@ def _shared_chunks(spec: RunSpec, field: xr.DataArray, storages: list[Storage], 
     try:
         shared = plan_solver(field.shape, spec.modes.count, spec.modes.method, room.memory, room.workers,
                              in_use=room.in_use, fitted_per_point=along_time.values_per_point,
-                             read_cache=lambda rows: cache_held(storages, cache(rows)))
+                             read_cache=lambda rows: cache_held(storages, cache(rows), field.dtype.itemsize))
     except UserError:
         return plan, replace(reading, reason=f"{reading.reason}; no room in compute.memory to keep the chunks that "
                                              "blocks share, so each block decompresses them again")

@@ -114,9 +114,13 @@ def row_cache(storages: list[Storage], rows: int, nlat: int, workers: int, items
     return size
 
 
-def cache_held(storages: list[Storage], size: int) -> int:
-    """Bytes the chunk caches of ``storages``' files hold at most, each file keeping up to ``size``."""
-    return size * sum(1 for storage in storages if storage.cached and storage.chunks is not None)
+def cache_held(storages: list[Storage], size: int, itemsize: int = 4) -> int:
+    """Bytes the chunk caches of ``storages``' files hold at most, each file keeping up to ``size`` and
+    no more than its own values (``itemsize`` bytes each; a file of one daily map caches one map), and
+    only the files xarray keeps open at once (``file_cache_maxsize``, 128 by default) holding any."""
+    held = sorted((min(size, storage.steps * storage.grid[0] * storage.grid[1] * itemsize if storage.steps else size)
+                   for storage in storages if storage.cached and storage.chunks is not None), reverse=True)
+    return sum(held[:xr.get_options()["file_cache_maxsize"]])
 
 
 @contextlib.contextmanager
