@@ -544,3 +544,21 @@ def test_many_small_files_plan_no_more_cache_than_they_hold(tmp_path, cli):
     assert cache_held([day] * 300, READ_CACHE) == 128 * 10 * 20 * 4  # a map each, 128 files open at once
     month = Storage((1, 180, 360), True, (180, 360), steps=31, cached=True)
     assert cache_held([month] * 500, READ_CACHE) == 128 * READ_CACHE  # xarray's default: 128 files open at once
+
+
+def test_a_chunk_longer_than_its_file_counts_as_the_file():
+    """NetCDF lets a chunk be longer than a file's (unlimited) time axis: a 30-step file chunked 1024 x lat x
+    lon holds 30 steps a chunk, and must not make every file's blocks 1024 steps long, nor send a projection
+    of per-step files back to rows."""
+    from climodes.prepare import Fitted, Preparation
+    from climodes.reuse import plan_projection
+
+    short = Storage((1024, 25, 36), True, (25, 36), steps=30, cached=True)
+    daily = Storage((1, 25, 36), True, (25, 36), steps=57, cached=True)
+    assert short.time_chunk == 30 and daily.time_chunk == 1 and Storage(None, False, (25, 36)).time_chunk == 1
+    reading = plan_reading([daily, short, daily], (144, 25, 36), 4, 3, 0, True)
+    assert reading.order == TIME and reading.time_steps % 30 == 0 and reading.time_steps < 144
+    chunks, text = plan_projection((144, 25, 36), xr.Dataset(coords={"mode": [1, 2]}),
+                                   Fitted(Preparation(), {"offset": np.zeros((25, 36))}), int(1e9), int(2e8), 2,
+                                   [daily, short, daily])
+    assert chunks["lat"] == -1 and text.endswith("whole maps in the files' own order")

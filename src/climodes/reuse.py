@@ -300,7 +300,7 @@ def _maps_in_time(storages: list[Storage]) -> int:
     holding whole maps, or contiguous storage: 1), else 0."""
     if not storages or not all(s.chunks is None or s.whole_maps for s in storages):
         return 0
-    return max(s.chunks[0] if s.chunks else 1 for s in storages)
+    return max(s.time_chunk for s in storages)
 
 
 def plan_projection(shape: tuple[int, int, int], results: xr.Dataset, fitted: Fitted, budget: int, in_use: int,

@@ -51,6 +51,13 @@ class Storage:
     cached: bool = False  # read through the NetCDF library, which keeps decompressed chunks in a cache per file
 
     @property
+    def time_chunk(self) -> int:
+        """The steps a chunk of the file holds (1 when stored contiguously): no more than the file has, though
+        the library lets a chunk be longer than a file's time axis."""
+        length = self.chunks[0] if self.chunks else 1
+        return min(length, self.steps) if self.steps else length
+
+    @property
     def whole_maps(self) -> bool:
         """Whether a chunk holds (most of) the map of each of its steps."""
         return self.chunks is not None and self.chunks[1] * self.chunks[2] >= WHOLE_MAP * self.grid[0] * self.grid[1]
@@ -179,13 +186,13 @@ def plan_reading(storages: list[Storage], shape: tuple[int, int, int], itemsize:
     steps, nlat, nlon = shape
     field_bytes = steps * nlat * nlon * itemsize
     chunked = [s for s in storages if s.chunks is not None]
-    time_chunk = max([s.chunks[0] for s in chunked] or [1])
+    time_chunk = max([s.time_chunk for s in chunked] or [1])
     row_blocks = -(-nlat // rows)
     block = max(time_chunk, min(steps * rows // nlat, steps) // time_chunk * time_chunk)
     if local and field_bytes <= room:
         return Reading(MEMORY, f"the field as read, {field_bytes / 1e6:.0f} MB, fits compute.memory", block)
     layout = "; ".join(sorted({s.text() for s in storages}))
-    if storages and all(s.whole_maps and s.chunks[0] < steps for s in storages) and row_blocks > 1:
+    if storages and all(s.whole_maps and s.time_chunk < steps for s in storages) and row_blocks > 1:
         return Reading(TIME, f"the files hold whole maps per chunk: {layout}", block)
     if row_blocks <= 1:
         return Reading(ROWS, "one block holds every row, so each chunk is read once a pass")
