@@ -368,17 +368,34 @@ def test_the_reconstruction_is_built_in_blocks(tmp_path, cli):
     """A budget that holds a few steps at a time: the lazy array has many blocks, and gives the same field."""
     from climodes.results import open_results
     from climodes.reuse import reconstruction
+    from climodes.solvers import LIBRARY_WORK
 
     values, time = _rank3(tmp_path)
     config = write_config(tmp_path, [_write(tmp_path, values, time)], modes={"count": 3})
     assert cli("run", config)[0] == 0
+    beside = int(3e6 + LIBRARY_WORK)  # what the process holds, and what the plan keeps for the libraries
     with open_results(tmp_path / "out") as ds:
         whole = reconstruction(ds, [1, 2, 3], False, int(4e9), 0)
-        small = reconstruction(ds, [1, 2, 3], False, int(3.1e6), int(3e6))
+        small = reconstruction(ds, [1, 2, 3], False, beside + int(1e5), int(3e6))
         assert len(whole.chunks[0]) == 4 and len(small.chunks[0]) > 10
         np.testing.assert_array_equal(small.values, whole.values)
         with pytest.raises(UserError, match="compute.memory: .* is too small for rebuilding 120 steps x 162 points"):
-            reconstruction(ds, [1, 2, 3], False, int(3e6) + 5000, int(3e6))
+            reconstruction(ds, [1, 2, 3], False, beside + 5000, int(3e6))
+
+
+def test_reconstruct_takes_a_memory_of_its_own(tmp_path, cli):
+    """The run's compute.memory by default; --memory gives another, and a size too small or not a size is
+    one line naming --memory (the reconstruction itself is checked above)."""
+    values, time = _rank3(tmp_path)
+    assert cli("run", write_config(tmp_path, [_write(tmp_path, values, time)], modes={"count": 3}))[0] == 0
+    code, _, err = cli("reconstruct", tmp_path / "out", "--modes", "1-2", "-o", tmp_path / "a.nc", "--memory", "3XB")
+    assert code == 2 and err.strip().splitlines() == [
+        "climodes: error: --memory: expected a size from 50MB to 1PB such as \"4GB\" or \"1.5GiB\"; got '3XB'"]
+    code, _, err = cli("reconstruct", tmp_path / "out", "--modes", "1-2", "-o", tmp_path / "a.nc", "--memory", "60MB")
+    assert code == 2 and "error: --memory: 60 MB is too small for rebuilding" in err and "give at least" in err
+    assert not (tmp_path / "a.nc").exists()
+    code, out, err = cli("reconstruct", tmp_path / "out", "--modes", "1-2", "-o", tmp_path / "a.nc", "--memory", "2GB")
+    assert code == 0 and (tmp_path / "a.nc").exists(), err
 
 
 def _results_run(tmp_path, cli):

@@ -61,6 +61,7 @@ def _parser() -> argparse.ArgumentParser:
     reconstruct.add_argument("-o", "--output", required=True, metavar="FILE.nc", help="NetCDF file to write")
     reconstruct.add_argument("--anomalies", action="store_true", help="write the anomalies, not the full values")
     reconstruct.add_argument("--overwrite", action="store_true", help="replace FILE if climodes wrote it")
+    reconstruct.add_argument("--memory", metavar="SIZE", help="memory it may use, e.g. 2GB (default: the run's compute.memory)")
     table = commands.add_parser("table", help="write the PCs per time step as .csv or .parquet",
                                description="Write the PCs and residual fractions, one row per time step, as .csv "
                                "or .parquet.")
@@ -148,7 +149,7 @@ def _command(args: argparse.Namespace) -> int:
         if args.command == "reconstruct":
             from climodes.pipeline import reconstruct
 
-            print(reconstruct(args.results, args.modes, args.output, args.anomalies, args.overwrite))
+            print(reconstruct(args.results, args.modes, args.output, args.anomalies, args.overwrite, args.memory))
             return 0
         if args.command == "table":
             from climodes.pipeline import table

@@ -286,6 +286,11 @@ def memory_bytes(text: str) -> int:
     return int(float(number) * _FACTORS[unit.lower()])
 
 
+def checked_memory(value: Any) -> str:
+    """``value`` if it is a size climodes accepts for ``compute.memory`` (50MB to 1PB), else ValueError."""
+    return _memory(value)
+
+
 def _memory(value: Any) -> str:
     match = _SIZE.match(value) if isinstance(value, str) else None
     size = float(match.group(1)) * _FACTORS[match.group(2).lower()] if match else 0.0  # inf for 400 digits

@@ -42,7 +42,7 @@ from climodes.cluster import (
     write_script,
 )
 from climodes import __version__
-from climodes.config import ComputeSection, FigureOptions, RunSpec, figure_options
+from climodes.config import ComputeSection, FigureOptions, RunSpec, checked_memory, figure_options
 from climodes.diagnostics import correlation_maps, mode_diagnostics, residual_variables, sampling_errors
 from climodes.errors import UserError
 from climodes.fields import OpenedField, field_from_array, open_field, rechunked, select
@@ -741,10 +741,16 @@ def _time_encoding(results: xr.Dataset) -> dict:
 
 
 def reconstruct(results: str | Path, modes: str, out: str | Path, anomalies: bool = False,
-                overwrite: bool = False) -> str:
+                overwrite: bool = False, memory: str | None = None) -> str:
     """``climodes reconstruct``: the field rebuilt from the chosen modes of ``results`` (full values, or
-    ``anomalies``), written as CF NetCDF to ``out`` block by block, atomically; an existing ``out`` is
-    replaced only with ``overwrite`` and only if climodes wrote it.  Returns the line to print."""
+    ``anomalies``), written as CF NetCDF to ``out`` block by block, atomically, within ``memory`` (by
+    default the run's ``compute.memory``); an existing ``out`` is replaced only with ``overwrite`` and only
+    if climodes wrote it.  Returns the line to print."""
+    if memory is not None:
+        try:
+            checked_memory(memory)
+        except ValueError as err:
+            raise UserError(f"--memory: {err}") from None
     source, out = results_path(results), Path(out)
     if source.exists() and out.exists() and os.path.samefile(source, out):
         raise UserError(f"-o {out}: is the results file the modes are read from; give another name")
@@ -753,7 +759,14 @@ def reconstruct(results: str | Path, modes: str, out: str | Path, anomalies: boo
         raise UserError(f"-o {out}: give a NetCDF file name ending in .nc")
     with open_results(source) as trained:
         command = history("reconstruct", results, "--modes", modes, "-o", out, *(["--anomalies"] * anomalies))
-        ds, which = rebuilt(trained, source, modes, anomalies, command)
+        try:
+            ds, which = rebuilt(trained, source, modes, anomalies, command, memory)
+        except UserError as err:
+            text = str(err)
+            if not text.startswith("compute.memory:"):
+                raise
+            raise UserError(f"--memory:{text.removeprefix('compute.memory:')}" if memory else
+                            f"{text}; the run's compute.memory is used: give more with --memory") from None
         try:
             with dask.config.set(scheduler="synchronous"):  # one block at a time
                 write_file_atomically(out, lambda path: write_netcdf(ds, path, _time_encoding(trained),
@@ -764,11 +777,12 @@ def reconstruct(results: str | Path, modes: str, out: str | Path, anomalies: boo
 
 
 def rebuilt(trained: xr.Dataset, source: Path, modes: str, anomalies: bool,
-            command: str) -> tuple[xr.Dataset, list[int]]:
+            command: str, memory: str | None = None) -> tuple[xr.Dataset, list[int]]:
     """The reconstruction from the ``modes`` (``1-3``, ``1,4``) of the results ``trained`` read from ``source``,
-    as a lazy CF dataset (``command`` goes to its history), and the mode numbers chosen."""
+    as a lazy CF dataset (``command`` goes to its history), planned within ``memory`` (by default the run's
+    ``compute.memory``), and the mode numbers chosen."""
     which = chosen_modes(modes, trained["mode"].values)
-    memory = (stored_config(trained).get("compute") or {}).get("memory", ComputeSection.memory)
+    memory = memory or (stored_config(trained).get("compute") or {}).get("memory", ComputeSection.memory)
     data = reconstruction(trained, which, anomalies, run_memory(ComputeSection(memory=memory)))
     return reconstruction_dataset(trained, data, which, anomalies, _named(source), command), which
 

@@ -347,8 +347,8 @@ def projected(field: xr.DataArray, results: xr.Dataset, fitted: Fitted, keys: Ti
     maps = np.nan_to_num(np.asarray(results["eof"].values, dtype=np.float64).reshape(count, -1).T)
     weights = np.asarray(results["area_weight"].values, dtype=np.float64).reshape(-1)
     if in_time:
-        blocks, steps = time_blocks(field)
-        whole = _block_fit(fitted, slice(None))
+        blocks, steps = time_blocks(field)  # every block needs the whole fit and maps: one key each, sent once
+        whole, weights, maps = (dask.delayed(x, pure=True) for x in (_block_fit(fitted, slice(None)), weights, maps))
         parts = [dask.delayed(quietly(project_steps))(block, whole, keys.part(at), weights, maps)
                  for block, at in zip(blocks, steps)]
         rows = [dask.delayed(_take)(part, 0) for part in parts]

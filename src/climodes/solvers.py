@@ -78,6 +78,7 @@ NULL_TOLERANCE = 1e-13  # an eigenvalue below this fraction of the leading one i
 EXACT_MAX_VALUES = 5_000_000  # time steps x points up to which the exact solver is chosen
 GRAM_MAX_STEPS = 2_000  # the Gram product costs steps^2 x points: beyond this, randomized passes are cheaper
 BLOCK_MAX_BYTES = 128e6  # float32 bytes of one block as read
+LIBRARY_WORK = 100e6  # bytes kept beside every plan for what the libraries allocate while a run reads and writes
 BLOCKS_PER_WORKER = 4  # at least, where the grid has the rows: keeps the workers evenly busy
 # bytes in flight per value of a block (read pieces, joined block, working copies), measured with make bench:
 # the gram solver works in float64, the randomized one in the field's float32
@@ -200,7 +201,8 @@ def block_size(units: int, unit_values: int, fixed: float, bytes_per_value: floa
     ``workers`` blocks are in flight at once, each costing ``bytes_per_value`` a value (the values read and
     their working copies), beside ``fixed`` bytes held for the whole work, ``held(size)`` bytes held while
     blocks of ``size`` units are read (the readers' chunk caches) and the ``in_use`` the process holds
-    already, all within 70 % of ``budget`` (the rest for what the libraries allocate beside).  A
+    already, all within 70 % of ``budget`` less :data:`LIBRARY_WORK` (the rest for what the libraries
+    allocate beside: measured, runs near their smallest budget went 10-110 MB past it without that).  A
     block reads at most :data:`BLOCK_MAX_BYTES` of float32, and each worker gets :data:`BLOCKS_PER_WORKER`
     blocks where there are that many units, but holds ``at_least`` units where the budget has room for
     them (a whole chunk of the files).  Returns the units a block holds and the bytes the work needs
@@ -211,10 +213,10 @@ def block_size(units: int, unit_values: int, fixed: float, bytes_per_value: floa
     UserError
         If not even one unit a worker fits the budget (``what`` says what was planned).
     """
-    room = 0.7 * (budget - in_use) - fixed
+    room = 0.7 * (budget - in_use - LIBRARY_WORK) - fixed
     per_unit = workers * bytes_per_value * unit_values
     if room < per_unit + held(1):
-        need = in_use + (fixed + per_unit + held(1)) / 0.7
+        need = in_use + LIBRARY_WORK + (fixed + per_unit + held(1)) / 0.7
         step = 1e7 if need >= 1e8 else 1e6  # rounded up to what _size shows, so the advice is enough
         raise UserError(f"compute.memory: {_size(budget)} is too small for {what}; give at least "
                         f"{_size(math.ceil(need / step) * step)} (the process holds {_size(in_use)} before it reads)")
@@ -222,7 +224,7 @@ def block_size(units: int, unit_values: int, fixed: float, bytes_per_value: floa
     size = max(1, int(min(room // per_unit, max(most, at_least))))
     while size > 1 and per_unit * size + held(size) > room:
         size -= 1
-    return size, (fixed + per_unit * size + held(size)) / 0.7
+    return size, LIBRARY_WORK + (fixed + per_unit * size + held(size)) / 0.7
 
 
 # --- the solvers

@@ -6,8 +6,10 @@ decompress every chunk once per block and per pass that way.  So the run reads s
 their own order, blocks of whole time chunks each holding whole maps, and keeps a copy in the row
 blocks the passes need: in memory when it fits ``compute.memory`` (any layout: then every pass reads
 memory), else in an uncompressed scratch file inside the results' staging folder, removed when the
-solver is done.  Files stored in spatial tiles, or contiguously, are read in row blocks as before
-(:data:`ROWS`): each of their chunks then holds a piece of few blocks, and each NetCDF file keeps the
+solver is done.  Files compressed in tiles of more rows than a block go the same way, read in slabs of
+whole chunks along time (every tile of some steps), where a slab fits.  Other files (smaller tiles,
+uncompressed, contiguous) are read in row blocks (:data:`ROWS`): each of their chunks then holds a
+piece of few blocks, and each NetCDF file keeps the
 chunks the blocks in flight share in its chunk cache, sized and counted by the memory plan
 (:func:`row_cache`), or, where the plan has no room for them, decompresses them again for each block.
 
