@@ -48,7 +48,7 @@ from run import CLIMODES, measured, script  # noqa: E402
 
 FULL = os.environ.get("CLIMODES_BENCH_SIZE") == "full"
 STEPS, DEGREES, FILES = (3650, 1.0, 5) if FULL else (1460, 1.0, 4)
-BUDGETS = ("1.5GB", "600MB") if FULL else ("1GB", "500MB")
+BUDGETS = ("1.5GB", "600MB") if FULL else ("1GB", "600MB")
 GRAM_BUDGET = "1.5GB" if FULL else "1GB"
 LAYOUTS = {  # name: (chunks, compressed)
     "uncompressed (30, lat, lon)": ((30, -1, -1), False),
