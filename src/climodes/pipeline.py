@@ -577,6 +577,7 @@ class ProjectionPlan:
     field: xr.DataArray
     keys: TimeKeys
     chunks: dict[str, int]  # the dask chunks the field is read in
+    readers: int  # blocks of whole maps read at once (0: blocks of rows)
     blocks: str
     room: Capacity
     max_missing: float
@@ -636,14 +637,14 @@ def _plan_projection(results: str | Path | xr.Dataset, spec: RunSpec, data: xr.D
         check_same_units(field, trained, spec.input.variable, source)
         keys = keys_of(field["time"], fitted)
         room = capacity(spec.compute)
-        chunks, blocks = plan_projection(field.shape, trained, fitted, room.memory, room.in_use, room.workers,
+        chunks, blocks, readers = plan_projection(field.shape, trained, fitted, room.memory, room.in_use, room.workers,
                                          opened.storages)
     except BaseException:
         if mine:
             trained.close()
         raise
-    return ProjectionPlan(source, trained, mine, fitted, opened, field, keys, chunks, blocks, room, max_missing,
-                          notes)
+    return ProjectionPlan(source, trained, mine, fitted, opened, field, keys, chunks, readers, blocks, room,
+                          max_missing, notes)
 
 
 def _steps_text(fitted: Fitted) -> str:
@@ -701,7 +702,7 @@ def project(results: str | Path | xr.Dataset, spec: RunSpec, say: Callable[[str]
                         opened.close_files()  # opened again, with the small cache, as the blocks are read
                         try:
                             products, squares, fraction = projected(field, trained, plan.fitted, plan.keys,
-                                                                    session.during, plan.chunks["time"] != -1)
+                                                                    session.during, plan.readers)
                         finally:
                             opened.close_files()
             check_points(fraction, trained, field, plan.max_missing, plan.source)

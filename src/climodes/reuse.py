@@ -304,13 +304,15 @@ def _maps_in_time(storages: list[Storage]) -> int:
 
 
 def plan_projection(shape: tuple[int, int, int], results: xr.Dataset, fitted: Fitted, budget: int, in_use: int,
-                    workers: int, storages: list[Storage]) -> tuple[dict[str, int], str]:
-    """The dask chunks to read the new field in within ``budget`` bytes, and what the plan says.
+                    workers: int, storages: list[Storage]) -> tuple[dict[str, int], str, int]:
+    """The dask chunks to read the new field in within ``budget`` bytes, what the plan says, and how many
+    blocks of whole maps are read at once (0: blocks of rows, as many as the workers).
 
     Files that store whole maps together (``storages``: chunks of whole maps, model output's usual
     layout, or contiguous storage) are read in their own order, blocks of whole chunks along time: a
-    projection takes each step on its own, so each chunk is read (and decompressed) once.  Other files
-    are read in blocks of latitude rows with every step, each reading only its own tiles.
+    projection takes each step on its own, so each chunk is read (and decompressed) once; one block at a
+    time where a whole chunk a worker does not fit.  Other files are read in blocks of latitude rows with
+    every step, each reading only its own tiles.
     """
     steps, nlat, nlon = shape
     count = results.sizes["mode"]
@@ -320,15 +322,20 @@ def plan_projection(shape: tuple[int, int, int], results: xr.Dataset, fitted: Fi
     chunk = _maps_in_time(storages)
     if chunk:
         held = steps * (count + 1) * 8 + 4 * (workers + 3) * nlat * nlon * 8  # products kept, missing counts summed
-        size, _ = block_size(steps, nlat * nlon, fixed + held, PROJECT_BYTES_PER_VALUE, budget, in_use, workers, what,
-                             at_least=chunk)
-        if chunk <= size:
-            size = max(chunk, min(size, steps) // chunk * chunk)
-            return ({"time": size, "lat": -1, "lon": -1},
-                    f"{-(-steps // size)} block(s) of {size} time steps, whole maps in the files' own order")
+        for readers in sorted({workers, 1}, reverse=True):
+            try:
+                size, _ = block_size(steps, nlat * nlon, fixed + held, PROJECT_BYTES_PER_VALUE, budget, in_use,
+                                     readers, what, at_least=chunk)
+            except UserError:
+                continue
+            if chunk <= size:
+                size = max(chunk, min(size, steps) // chunk * chunk)
+                return ({"time": size, "lat": -1, "lon": -1},
+                        f"{-(-steps // size)} block(s) of {size} time steps, whole maps in the files' own order"
+                        + (f", {readers} at a time" if readers < workers else ""), readers)
     held = 4 * (workers + 3) * steps * (count + 1) * 8  # partial sums of the blocks' small products
     rows, _ = block_size(nlat, steps * nlon, fixed + held, PROJECT_BYTES_PER_VALUE, budget, in_use, workers, what)
-    return {"time": -1, "lat": rows, "lon": -1}, f"{-(-nlat // rows)} block(s) of {rows} latitude rows"
+    return {"time": -1, "lat": rows, "lon": -1}, f"{-(-nlat // rows)} block(s) of {rows} latitude rows", 0
 
 
 def _take(part, which: int):
@@ -336,9 +343,9 @@ def _take(part, which: int):
 
 
 def projected(field: xr.DataArray, results: xr.Dataset, fitted: Fitted, keys: TimeKeys,
-              progress: Callable[[str], ContextManager], in_time: bool) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Read ``field`` once, block by block as it is chunked: blocks of whole maps along time when
-    ``in_time``, else of latitude rows, and project it onto the modes of ``results``.
+              progress: Callable[[str], ContextManager], readers: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Read ``field`` once, block by block as it is chunked: blocks of whole maps along time, ``readers`` at
+    a time (threads), when ``readers``, else of latitude rows, and project it onto the modes of ``results``.
 
     Returns each step's ``sum_x a w^2 eof_k`` ``(time, mode)``, its weighted sum of squares ``||x_t||^2``
     and each grid point's missing fraction (flat, latitude rows first).
@@ -346,7 +353,7 @@ def projected(field: xr.DataArray, results: xr.Dataset, fitted: Fitted, keys: Ti
     count = results.sizes["mode"]
     maps = np.nan_to_num(np.asarray(results["eof"].values, dtype=np.float64).reshape(count, -1).T)
     weights = np.asarray(results["area_weight"].values, dtype=np.float64).reshape(-1)
-    if in_time:
+    if readers:
         blocks, steps = time_blocks(field)  # every block needs the whole fit and maps: one key each, sent once
         whole, weights, maps = (dask.delayed(x, pure=True) for x in (_block_fit(fitted, slice(None)), weights, maps))
         parts = [dask.delayed(quietly(project_steps))(block, whole, keys.part(at), weights, maps)
@@ -354,7 +361,7 @@ def projected(field: xr.DataArray, results: xr.Dataset, fitted: Fitted, keys: Ti
         rows = [dask.delayed(_take)(part, 0) for part in parts]
         missing = tree_sum([dask.delayed(_take)(part, 1) for part in parts])
         with progress("projection: 1 pass over the field, in the files' own order"):
-            rows, missing = dask.compute(rows, missing)
+            rows, missing = dask.compute(rows, missing, num_workers=readers)
         products, squares = (np.concatenate(values) for values in zip(*rows))
         return products, squares, missing / field.sizes["time"]
     parts = [dask.delayed(quietly(project_block))(block, _block_fit(fitted, rows), keys, weights[rows], maps[rows])
