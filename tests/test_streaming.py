@@ -461,3 +461,17 @@ def test_a_float32_field_keeps_the_fit_the_randomized_solver_applied():
     used = modes["point_status"].values == 2
     decomposed = np.einsum("kt,kyx->tyx", modes["pc"].values, modes["eof"].values)
     np.testing.assert_allclose(anomalies[:, used], decomposed[:, used], rtol=0, atol=1e-5 * np.nanmax(np.abs(decomposed)))
+
+
+def test_freed_blocks_are_returned_only_where_the_plan_has_no_room_for_what_glibc_keeps(monkeypatch, tmp_path):
+    """glibc's own threshold is faster (each big block is not mapped anew), but keeps up to a few hundred MB
+    of freed blocks: the threshold is fixed only where the plan leaves less than that unused."""
+    import climodes.cluster
+    from climodes.config import ComputeSection
+
+    calls = []
+    monkeypatch.setattr(climodes.cluster, "return_freed_memory", lambda threshold: calls.append(threshold))
+    for slack in (0.0, climodes.cluster.FREED_KEPT - 1, climodes.cluster.FREED_KEPT + 1, 3e9):
+        with climodes.cluster.running(ComputeSection(), False, "00:10:00", tmp_path, slack=slack):
+            pass
+    assert calls == [2**20, 2**20]

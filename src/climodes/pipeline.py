@@ -106,6 +106,7 @@ from climodes.rotation import rotated_variables
 from climodes.significance import NoiseTest, fit_red_noise, noise_variables, red_noise_test
 from climodes.solvers import POWER_ITERATIONS, Decomposition, SolverPlan, plan_solver, solve
 from climodes.storage import (
+    MEMORY,
     READ_CACHE,
     ROWS,
     TIME,
@@ -329,7 +330,8 @@ def _solve(spec: RunSpec, planned: Planned, progress: bool, scratch: str | Path 
     limit = walltime(spec.compute, plan.method, field.shape, spec.modes.count, field.dtype.itemsize,
                      planned.room.workers)
     with running(spec.compute, progress, limit, spec.source.parent,
-                 chunk_bytes(planned.opened.storages, planned.field.dtype.itemsize), reading.cache) as session:
+                 chunk_bytes(planned.opened.storages, planned.field.dtype.itemsize), reading.cache,
+                 slack=planned.room.memory - plan.memory - (field.nbytes * (reading.order == MEMORY))) as session:
         copied_to = None if scratch is None else Path(scratch)
         with staged(field, reading, plan.lat_rows or -1, copied_to, session.during, planned.opened.close_files) as field:
             modes, result, counts = solve(field, planned.weights, spec.modes.count, spec.prepare.max_missing, plan,
