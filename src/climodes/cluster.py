@@ -238,19 +238,17 @@ def _local_passes(progress: bool, workers: int) -> Callable[[str], ContextManage
 
 
 def _workers_return_freed_memory(threshold: int, chunk_cache: int):
-    """A worker plugin: each worker gives freed blocks back to the system as this process does
-    (:func:`return_freed_memory` with ``threshold``, set when it joins), and what its heap freed at the end of each task;
-    the NetCDF files it opens keep ``chunk_cache`` bytes of decompressed chunks each, as planned (the
-    library's default, 64 MiB a file, is in no plan)
-    (glibc's ``malloc_trim``), so a worker holds what it keeps, not the peak of its last task.
+    """A worker plugin: each worker gives freed blocks back to the system (:func:`return_freed_memory` with
+    ``threshold``, set when it joins), and what its heap freed at the end of each task (glibc's
+    ``malloc_trim``), so a worker holds what it keeps, not the peak of its last task; the NetCDF files it
+    opens keep ``chunk_cache`` bytes of decompressed chunks each, as planned (the library's default,
+    64 MiB a file, is in no plan).
 
     The fixed threshold also speeds the reading: dask starts its workers with ``MALLOC_TRIM_THRESHOLD_``
     set, which fixes glibc's threshold at 128 kB, so every decompressed chunk above that (260 kB for one
     map of a 1-degree grid) was mapped and unmapped anew: reading per-step compressed maps took 1.6-1.8
     times as long in a worker as in a thread (measured; 1 MiB: as long).
     """
-    import ctypes
-
     from distributed import WorkerPlugin
 
     class ReturnFreedMemory(WorkerPlugin):
@@ -272,7 +270,8 @@ def _workers_return_freed_memory(threshold: int, chunk_cache: int):
 def running(spec: ComputeSection, progress: bool, walltime: str, folder: Path,
             chunk_bytes: int = 0, chunk_cache: int = 4 * 2**20, slack: float = 0.0) -> Iterator[Session]:
     """Run the enclosed passes where ``spec`` says; the workers started for them end with the block.  From
-    here on, this process gives large freed blocks back to the system (:func:`return_freed_memory`).
+    here on, where the plan has little ``slack``, this process gives large freed blocks back to the system
+    (:func:`return_freed_memory`); dask workers always do.
 
     Parameters
     ----------
