@@ -552,7 +552,7 @@ def test_modes_text_and_chosen_modes():
 
 @pytest.mark.slow
 def test_a_big_field_projects_and_reconstructs_within_its_memory(tmp_path):
-    """A field of 0.52 GB (float32) against compute.memory of 450MB: the training run, the projection and the
+    """A field of 0.52 GB (float32) against compute.memory of 500MB: the training run, the projection and the
     reconstruction each stay within it, measured as the peak resident memory of the process (getrusage
     of a child, which counts what the operating system gave it)."""
     import subprocess
@@ -566,7 +566,7 @@ def test_a_big_field_projects_and_reconstructs_within_its_memory(tmp_path):
         field_dataset(values, lat, lon, time=time).to_netcdf(tmp_path / f"big{part}.nc")
         del values
     config = write_config(tmp_path, [tmp_path / "big0.nc", tmp_path / "big1.nc"], modes={"count": 3},
-                          compute={"memory": "450MB"})
+                          compute={"memory": "500MB"})
     other = tmp_path / "other"
     other.mkdir()
     (other / "run.yaml").write_text(yaml.safe_dump({**yaml.safe_load(config.read_text()),
@@ -581,7 +581,7 @@ def test_a_big_field_projects_and_reconstructs_within_its_memory(tmp_path):
                               timeout=900)
         code, used = map(int, done.stdout.split()[-2:])
         assert code == 0, done.stderr
-        assert used <= 450e6, (command[0], used / 1e6)
+        assert used <= 500e6, (command[0], used / 1e6)
 
 
 @pytest.mark.slow
