@@ -7,6 +7,8 @@ A sea field has a third of its points missing at every step (invented blocky con
 
 from __future__ import annotations
 
+import os
+import tempfile
 from pathlib import Path
 
 import netCDF4
@@ -14,6 +16,14 @@ import numpy as np
 
 DATA = Path(__file__).parent / "data"
 AMPLITUDES = np.array([6.0, 4.0, 2.5])
+
+
+def temporary_files_removed_at_exit() -> tempfile.TemporaryDirectory:
+    """Send this process's and its children's temporary files (scripts, results folders, climodes' scratch
+    copies) into one folder, removed when the benchmark ends; keep the returned object while it runs."""
+    folder = tempfile.TemporaryDirectory(prefix="climodes-bench-")
+    os.environ["TMPDIR"] = tempfile.tempdir = folder.name
+    return folder
 
 
 def grid(step: float) -> tuple[np.ndarray, np.ndarray]:

@@ -43,7 +43,7 @@ import netCDF4
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).parent))
-from fields import DATA, make_field  # noqa: E402
+from fields import DATA, make_field, temporary_files_removed_at_exit  # noqa: E402
 from run import CLIMODES, measured, script  # noqa: E402
 
 FULL = os.environ.get("CLIMODES_BENCH_SIZE") == "full"
@@ -246,6 +246,7 @@ def _bytes(text: str) -> float:
 
 
 def main() -> None:
+    scratch = temporary_files_removed_at_exit()  # noqa: F841 (removed at exit)
     field_bytes = STEPS * len(np.arange(-90, 90 + 1e-9, DEGREES)) * len(np.arange(0, 360, DEGREES)) * 4
     print(f"{STEPS} daily steps, {DEGREES:g} degree grid ({_gb(field_bytes)} in float32, {FILES} files); "
           f"6 modes, day-of-year anomalies")

@@ -15,7 +15,7 @@ import tempfile
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).parent))
-from fields import make_field  # noqa: E402
+from fields import make_field, temporary_files_removed_at_exit  # noqa: E402
 from run import CLIMODES, measured  # noqa: E402
 
 from climodes.demo import write_demo_fields  # noqa: E402
@@ -39,6 +39,7 @@ def _median_of_3(command_for) -> tuple[float, float]:
 
 
 def main() -> None:
+    scratch = temporary_files_removed_at_exit()  # noqa: F841 (removed at exit)
     demo = [p for p in write_demo_fields(Path(tempfile.mkdtemp())) if p.name.startswith("sst")]
     fields = {"demo (600 x 1421)": (demo, "sst", ["select: {lat: [-80, 80]}", "prepare: {detrend: linear}"])}
     if "--demo-only" not in sys.argv:

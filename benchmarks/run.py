@@ -29,7 +29,7 @@ from pathlib import Path
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).parent))
-from fields import DATA, make_field  # noqa: E402
+from fields import DATA, make_field, temporary_files_removed_at_exit  # noqa: E402
 
 PYTHON = sys.executable
 CLIMODES = str(Path(PYTHON).parent / "climodes")
@@ -237,6 +237,7 @@ def threads_and_local_cluster(daily: list[Path]) -> None:
 
 def main() -> None:
     quick = "--quick" in sys.argv
+    scratch = temporary_files_removed_at_exit()  # noqa: F841 (removed at exit)
     print(f"machine: {os.cpu_count()} cores, {os.sysconf('SC_PAGE_SIZE') * os.sysconf('SC_PHYS_PAGES') / 2**30:.0f} GiB,"
           f" python {sys.version.split()[0]}")
     if "--cluster" in sys.argv:

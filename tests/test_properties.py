@@ -44,6 +44,9 @@ ODD_VALUES = st.one_of(
 )
 
 
+_SCRATCH = tempfile.TemporaryDirectory(prefix="climodes-properties-")  # removed at exit with what it holds
+
+
 def _run(folder: Path, config: dict) -> tuple[int, str]:
     path = folder / "run.yaml"
     path.write_text(yaml.safe_dump(config))
@@ -54,7 +57,9 @@ def _run(folder: Path, config: dict) -> tuple[int, str]:
 
 
 def _folder_with_field(calendar: str = "standard") -> Path:
-    folder = Path(tempfile.mkdtemp())
+    """A folder with a small field in it, removed when the test session ends (hypothesis runs each example
+    many times in one test, so pytest's tmp_path does not serve)."""
+    folder = Path(tempfile.mkdtemp(dir=_SCRATCH.name))
     lat, lon = np.linspace(-70, 70, 8), np.arange(0, 360, 30.0)
     values = red_field((48, lat.size, lon.size), 2)
     values[:, 1, 2] = np.nan
@@ -139,7 +144,7 @@ def _template() -> Path:
     """A user's home: a project with its data, a thesis, a folder of papers, links, an earlier results
     folder; and a folder elsewhere.  Built once; each example works on a copy."""
     if not hasattr(_template, "root"):
-        root = Path(tempfile.mkdtemp())
+        root = Path(tempfile.mkdtemp(dir=_SCRATCH.name))
         project = root / "home" / "project"
         (project / "data").mkdir(parents=True)
         (project / "papers").mkdir()
@@ -207,7 +212,7 @@ def test_no_users_file_is_ever_removed_or_changed(output_dir, extra):
     """Random output.dir values (the current, parent, home and input folders, links, a folder of papers,
     nested new folders, an earlier results folder, a file), overwrite on, sometimes with a file of the
     user's added to a folder first: every file no climodes manifest lists is still there, unchanged."""
-    root = Path(tempfile.mkdtemp()) / "site"
+    root = Path(tempfile.mkdtemp(dir=_SCRATCH.name)) / "site"
     shutil.copytree(_template(), root, symlinks=True)
     if extra:
         (root / "home" / "project" / extra / "mine.txt").write_text("added by the user")
