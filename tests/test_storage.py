@@ -368,25 +368,29 @@ def test_batch_workers_get_no_scratch_copy_in_a_local_temporary_folder(tmp_path)
         assert folder == tmp_path  # the staging folder of the results, beside output.dir
 
 
-def test_a_damaged_compressed_file_is_one_line(tmp_path, cli, values):
+def test_a_damaged_compressed_file_is_one_line_naming_it(tmp_path, cli, values):
     """A file whose compressed chunks were overwritten (a copy cut short, a bad disk) passes every check of
     its metadata; reading its values fails inside the HDF5 library, which must come out as one line naming
-    the inputs and exit 2, with no results folder left (common practice: the same as any other bad input)."""
+    that file among those the glob matches, and exit 2, with no results folder left (common practice: the
+    same as any other bad input)."""
     lat, lon = np.linspace(-60, 60, 25), np.arange(0, 360, 10.0)
     time = xr.date_range("1990-01-01", periods=144, freq="MS")
-    path = tmp_path / "damaged.nc"
     noisy = np.random.default_rng(1).normal(size=values.shape).astype(np.float32)
-    field_dataset(noisy, lat, lon, time=time).to_netcdf(path, encoding={"tas": LAYOUTS["steps"]})
-    raw = bytearray(path.read_bytes())
+    whole = field_dataset(noisy, lat, lon, time=time)
+    for part, steps in (("a", slice(0, 72)), ("b", slice(72, 144))):
+        whole.isel(time=steps).to_netcdf(tmp_path / f"part_{part}.nc", encoding={"tas": LAYOUTS["steps"]})
+    damaged = tmp_path / "part_b.nc"
+    raw = bytearray(damaged.read_bytes())
     middle = len(raw) // 2
     raw[middle:middle + len(raw) // 10] = bytes(len(raw) // 10)
-    path.write_bytes(bytes(raw))
-    config = write_config(tmp_path, [path], modes={"count": 2, "method": "randomized"},
+    damaged.write_bytes(bytes(raw))
+    config = write_config(tmp_path, [tmp_path / "part_*.nc"], modes={"count": 2, "method": "randomized"},
                           compute={"memory": "1GB"})
     code, out, err = cli("run", config)
     assert code == 2 and out == "", err
-    assert len(err.strip().splitlines()) == 1 and "cannot be decoded" in err and str(path) in err
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["damaged.nc", "run.yaml"]
+    assert len(err.strip().splitlines()) == 1 and "cannot be decoded" in err, err
+    assert f"error: {damaged}: a chunk of tas" in err and "part_a" not in err and "time positions" in err, err
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["part_a.nc", "part_b.nc", "run.yaml"]
 
 
 # --- projections read in the files' own order

@@ -11,7 +11,6 @@ from __future__ import annotations
 
 import contextlib
 import os
-import re
 import tempfile
 import time
 import warnings
@@ -45,7 +44,7 @@ from climodes import __version__
 from climodes.config import ComputeSection, FigureOptions, RunSpec, checked_memory, figure_options
 from climodes.diagnostics import correlation_maps, mode_diagnostics, residual_variables, sampling_errors
 from climodes.errors import UserError
-from climodes.fields import OpenedField, field_from_array, open_field, rechunked, select
+from climodes.fields import OpenedField, expand_paths, field_from_array, is_zarr, open_field, rechunked, select
 from climodes.grid import GRID_LAT
 from climodes.output import (
     check_geotiff_grid,
@@ -114,6 +113,8 @@ from climodes.storage import (
     Storage,
     cache_held,
     chunk_bytes,
+    damage,
+    first_damaged,
     keeping_chunks,
     plan_reading,
     row_cache,
@@ -281,22 +282,25 @@ def check(spec: RunSpec) -> list[str]:
     ]
 
 
-# How the readers of compressed files say that the bytes they were given cannot be decoded.
-_DAMAGE = re.compile(r"NetCDF: HDF error|decompress|[Cc]orrupt|checksum|[Ii]nvalid input data")
-
-
 @contextlib.contextmanager
 def damaged_files(spec: RunSpec) -> Iterator[None]:
     """Turn a reader's failure to decode a chunk of the input (a damaged or cut-short file, found only when
-    its values are read) into one line naming the input and what to do."""
+    its values are read) into one line naming the file (found by reading the files through again) and what
+    to do."""
     try:
         yield
     except (RuntimeError, OSError, ValueError) as err:
-        reason = str(err).splitlines()[0] if str(err) else ""
-        if not _DAMAGE.search(reason):
+        reason = damage(err)
+        if reason is None:
             raise
-        raise UserError(f"{', '.join(spec.input.paths)}: a chunk of {spec.input.variable} cannot be decoded "
-                        f"({reason}); a file is damaged or was copied incompletely: copy it again") from None
+        variable = spec.input.variable
+        found = first_damaged([p for p in expand_paths(spec.input.paths) if not is_zarr(p)], variable)
+        if found is None:
+            raise UserError(f"{', '.join(spec.input.paths)}: a chunk of {variable} cannot be decoded ({reason}); a "
+                            "file is damaged or was copied incompletely: copy it again") from None
+        path, reason = found
+        raise UserError(f"{path}: a chunk of {variable} cannot be decoded ({reason}); the file is damaged or was "
+                        "copied incompletely: copy it again") from None
 
 
 def _scratch_folder(stage: Path | None, compute: ComputeSection) -> ContextManager[str | Path | None]:

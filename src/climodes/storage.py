@@ -22,6 +22,8 @@ modes within noise of each other, seen; the tests hold the orders to 1e-8 on who
 from __future__ import annotations
 
 import contextlib
+import math
+import re
 import shutil
 from dataclasses import dataclass
 from pathlib import Path
@@ -37,6 +39,8 @@ READ_CACHE = 4 * 2**20  # bytes of decompressed chunks each file keeps where no 
 # (netCDF-C's default: 64 MiB)
 SLAB_BYTES_PER_VALUE = 2  # itemsizes a value of a slab read in the files' order holds (measured: 1.2)
 WHOLE_MAP = 0.5  # a chunk holding at least this share of a map counts as holding whole maps
+# How the readers of compressed files say that the bytes they were given cannot be decoded.
+_DAMAGE = re.compile(r"NetCDF: HDF error|decompress|[Cc]orrupt|checksum|[Ii]nvalid input data")
 _FILTERS = ("zlib", "szip", "zstd", "bzip2", "blosc", "compressor", "compressors", "filters")
 
 
@@ -75,6 +79,41 @@ class Storage:
             return "stored contiguously"
         shape = " x ".join(map(str, self.chunks))
         return f"chunks of {shape} (time x lat x lon)" + (", compressed" if self.compressed else "")
+
+
+def damage(err: BaseException) -> str | None:
+    """The first line of a reader's error when it says a chunk's bytes cannot be decoded, else ``None``."""
+    reason = str(err).splitlines()[0] if str(err) else ""
+    return reason if _DAMAGE.search(reason) else None
+
+
+def first_damaged(paths: list[str], variable: str) -> tuple[str, str] | None:
+    """The first NetCDF file of ``paths`` holding a chunk of ``variable`` that cannot be decoded, with where
+    (the steps of its first dimension being read) and the reader's reason; ``None`` when every file reads.
+
+    Each file is read through once, in slabs of whole chunks along its first dimension of about 64 MiB:
+    meant for after a read has failed, to name the file.
+    """
+    import netCDF4
+
+    for path in paths:
+        where = "on opening"
+        try:
+            with netCDF4.Dataset(path) as nc:
+                var = nc.variables.get(variable)
+                if var is None or not var.shape:
+                    continue
+                var.set_auto_maskandscale(False)
+                chunking = var.chunking()
+                length = chunking[0] if isinstance(chunking, list) else 1
+                slab = max(1, 64 * 2**20 // (var.dtype.itemsize * math.prod(var.shape[1:]) * length)) * length
+                for start in range(0, var.shape[0], slab):
+                    where = f"{var.dimensions[0]} positions {start} to {min(start + slab, var.shape[0]) - 1} of the file"
+                    var[start:start + slab]
+        except (RuntimeError, OSError, ValueError) as err:
+            if damage(err):
+                return path, f"{where}: {damage(err)}"
+    return None
 
 
 def chunk_bytes(storages: list[Storage], itemsize: int) -> int:
