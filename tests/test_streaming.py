@@ -18,7 +18,7 @@ from climodes.config import PrepareSection
 from climodes.errors import UserError
 from climodes.prepare import time_steps
 from climodes.blocks import time_operator, time_operator_transposed
-from climodes.solvers import POWER_ITERATIONS, SolverPlan, plan_solver, solve
+from climodes.solvers import POWER_ITERATIONS, SolverPlan, plan_solver, solve, working_precision
 from climodes.weights import area_weights
 from conftest import field_dataset, red_field, write_config
 
@@ -212,6 +212,33 @@ def test_auto_choice(shape, budget, expected):
         assert block_bytes <= max(128e6, one_row)  # blocks are at most 128 MB, or one latitude row
         assert -(-nlat // plan.lat_rows) >= 8  # at least 4 blocks a worker
         assert 2 * 28 / 4 * block_bytes < budget  # two workers' blocks in flight fit the budget
+
+
+def test_a_float64_field_is_planned_in_its_own_precision():
+    """The randomized solver works in the field's precision (numpy's type promotion with float32: float16 and
+    int16 become float32, float64 stays float64), so at one budget a float64 field's blocks hold fewer rows
+    than a float32 field's, and the plan names the precision it counted."""
+    assert [working_precision(np.dtype(t)) for t in ("float16", "int16", "float32", "float64")] == [
+        np.float32, np.float32, np.float32, np.float64]
+    shape, budget = (3650, 361, 720), int(2e9)
+    single = plan_solver(shape, 10, "randomized", budget, 2, itemsize=4)
+    double = plan_solver(shape, 10, "randomized", budget, 2, itemsize=8)
+    assert double.lat_rows < single.lat_rows
+    assert "(3.79 GB as float32)" in single.reason and "(7.59 GB as float64)" in double.reason
+
+
+def test_auto_takes_the_randomized_solver_where_the_gram_one_has_no_room():
+    """Few steps but too little memory for the Gram solver's time x time matrices and blocks: auto plans the
+    randomized solver (which fits) rather than refusing, and says memory decided, not the field's size
+    (common practice: a plan's reason names what decided it)."""
+    shape = (1500, 181, 360)
+    with pytest.raises(UserError, match="too small for the gram solver"):
+        plan_solver(shape, 10, "gram", int(0.22e9), 2)
+    for budget in (0.21e9, 0.22e9, 0.25e9):
+        plan = plan_solver(shape, 10, "auto", int(budget), 2)
+        assert plan.method == "randomized" and "take more room than compute.memory leaves" in plan.reason
+    assert plan_solver(shape, 10, "auto", int(0.3e9), 2).method == "gram"
+    assert "large in both dimensions" in plan_solver((3650, 361, 720), 10, "auto", int(2e9), 2).reason
 
 
 def test_the_budget_is_for_the_whole_process():

@@ -103,7 +103,7 @@ from climodes.reuse import (
 )
 from climodes.rotation import rotated_variables
 from climodes.significance import NoiseTest, fit_red_noise, noise_variables, red_noise_test
-from climodes.solvers import POWER_ITERATIONS, Decomposition, SolverPlan, plan_solver, solve
+from climodes.solvers import POWER_ITERATIONS, Decomposition, SolverPlan, plan_solver, solve, working_precision
 from climodes.storage import (
     MEMORY,
     READ_CACHE,
@@ -203,7 +203,7 @@ def _plan(spec: RunSpec, data: xr.DataArray | None = None) -> Planned:
     small = cache_held(opened.storages, READ_CACHE, field.dtype.itemsize)
     plan = plan_solver(field.shape, spec.modes.count, spec.modes.method, room.memory, room.workers,
                        in_use=room.in_use, fitted_per_point=along_time.values_per_point,
-                       read_cache=lambda rows: small)
+                       read_cache=lambda rows: small, itemsize=working_precision(field.dtype).itemsize)
     steps, points = field.sizes["time"], field.sizes["lat"] * field.sizes["lon"]
     if spec.modes.count > points:
         raise UserError(f"modes.count: {spec.modes.count} modes asked for, but the selected grid has only {points} "
@@ -241,7 +241,8 @@ def _shared_chunks(spec: RunSpec, field: xr.DataArray, storages: list[Storage], 
     try:
         shared = plan_solver(field.shape, spec.modes.count, spec.modes.method, room.memory, room.workers,
                              in_use=room.in_use, fitted_per_point=along_time.values_per_point,
-                             read_cache=lambda rows: cache_held(storages, cache(rows), field.dtype.itemsize))
+                             read_cache=lambda rows: cache_held(storages, cache(rows), field.dtype.itemsize),
+                             itemsize=working_precision(field.dtype).itemsize)
     except UserError:
         return plan, replace(reading, reason=f"{reading.reason}; no room in compute.memory to keep the chunks that "
                                              "blocks share, so each block decompresses them again")
@@ -481,7 +482,8 @@ def submit(spec: RunSpec, system: str | None, dry_run: bool, wait: bool, show: C
     field = planned.field
     room = capacity(spec.compute, workers=submit_cores(spec.compute, planned.plan.method, field.sizes["lat"]))
     plan = plan_solver(field.shape, spec.modes.count, spec.modes.method, room.memory, room.workers,
-                       in_use=room.in_use, fitted_per_point=planned.along_time.values_per_point)
+                       in_use=room.in_use, fitted_per_point=planned.along_time.values_per_point,
+                       itemsize=working_precision(field.dtype).itemsize)
     job = batch_job(spec.source, spec.compute, chosen, plan.method, field.shape, spec.modes.count,
                     field.dtype.itemsize, plan.memory, overwrite=spec.output.overwrite)
     text, path = batch_script(job, spec.compute), script_path(spec.source, chosen)

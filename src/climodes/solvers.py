@@ -81,7 +81,7 @@ BLOCK_MAX_BYTES = 128e6  # float32 bytes of one block as read
 LIBRARY_WORK = 100e6  # bytes kept beside every plan for what the libraries allocate while a run reads and writes
 BLOCKS_PER_WORKER = 4  # at least, where the grid has the rows: keeps the workers evenly busy
 # bytes in flight per value of a block (read pieces, joined block, working copies), measured with make bench:
-# the gram solver works in float64, the randomized one in the field's float32
+# the gram solver works in float64, the randomized one in the field's precision (here float32; twice for float64)
 BYTES_PER_BLOCK_VALUE = {"gram": 28, "randomized": 16}
 
 
@@ -139,9 +139,15 @@ def _size(nbytes: float) -> str:
     return f"{nbytes / 1e9:.2f} GB" if nbytes >= 1e8 else f"{nbytes / 1e6:.0f} MB"
 
 
+def working_precision(dtype: np.dtype) -> np.dtype:
+    """The randomized solver's working precision for a field of ``dtype``: float32 fields stay float32, wider
+    ones are worked on in their own."""
+    return np.result_type(dtype, np.float32)
+
+
 def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: int, workers: int,
                 in_use: int = 0, fitted_per_point: int = 1,
-                read_cache: Callable[[int], int] = lambda rows: 0) -> SolverPlan:
+                read_cache: Callable[[int], int] = lambda rows: 0, itemsize: int = 4) -> SolverPlan:
     """Choose the solver for a ``(time, lat, lon)`` field and a memory budget in bytes.
 
     ``auto`` takes ``exact`` for small matrices that fit, ``gram`` while the
@@ -152,14 +158,15 @@ def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: in
     (:attr:`climodes.prepare.TimeSteps.values_per_point`: 367 for a daily
     climatology), kept with the results.  ``read_cache`` gives the bytes the readers of the files keep
     (their chunk caches: see :func:`climodes.storage.cache_held`) while the passes read blocks of so many
-    latitude rows.
+    latitude rows.  ``itemsize`` is that of the randomized solver's working precision for the prepared field
+    (see :func:`working_precision`).
     """
     steps, nlat, nlon = shape
     points = nlat * nlon
     budget_given, budget = budget, budget - in_use
     # the maps, as solved, signed and written; the fitted preparation, held from the first pass on (in the
-    # working precision: float32 for the randomized solver, as a field's blocks are planned in float32)
-    results_bytes = 3 * points * count * 8 + points * fitted_per_point * (4 if method == "randomized" else 8)
+    # working precision: the field's own for the randomized solver)
+    results_bytes = 3 * points * count * 8 + points * fitted_per_point * (itemsize if method == "randomized" else 8)
     exact_bytes = 3 * steps * points * 8 + steps * min(steps, points) * 8 + read_cache(nlat)
     held = workers + 3 + int(np.ceil(np.log2(max(nlat, 2))))  # partial sums alive in the pairwise tree, at most
     # time x time matrices: the chain's sum, each worker's block product, and the eigendecomposition's copy
@@ -167,30 +174,34 @@ def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: in
     gram_bytes = (workers + 3) * steps * steps * 8 + results_bytes
     rank = min(count + OVERSAMPLING, steps, points)
     randomized_bytes = 3 * points * rank * 8 + 2 * held * steps * rank * 8 + results_bytes
-    shape_text = f"{steps} steps x {points} points ({_size(steps * points * 4)} in float32)"
-    if method == "auto":
-        if steps * points <= EXACT_MAX_VALUES and exact_bytes <= budget:
-            method, why = "exact", f"{shape_text} is small: the whole matrix fits in memory"
-        elif steps <= GRAM_MAX_STEPS and gram_bytes <= budget / 2:
-            method, why = "gram", f"{shape_text}; its {steps} x {steps} Gram matrix ({_size(steps**2 * 8)}) is small"
-        else:
-            method, why = "randomized", f"{shape_text} is large in both dimensions"
-    else:
-        why = f"{shape_text}; chosen in the config (modes.method)"
-    if method == "exact":
+    shape_text = f"{steps} steps x {points} points ({_size(steps * points * itemsize)} as float{8 * itemsize})"
+
+    def streaming(method: str, why: str) -> SolverPlan:
+        fixed = gram_bytes if method == "gram" else randomized_bytes
+        per_value = BYTES_PER_BLOCK_VALUE[method] * (itemsize / 4 if method == "randomized" else 1)
+        rows, need = block_size(nlat, steps * nlon, fixed, per_value, budget_given, in_use,
+                                workers, f"the {method} solver on {shape_text}", read_cache)
+        why += f"; {-(-nlat // rows)} block(s) of {rows} latitude rows within compute.memory {_size(budget_given)}"
+        if method == "gram":  # and enough that auto, planning again with only this much, still takes gram
+            need = max(need, 2 * gram_bytes)
+        return SolverPlan(method, why, rows, int(np.ceil(in_use + need)))
+
+    if method == "exact" or (method == "auto" and steps * points <= EXACT_MAX_VALUES and exact_bytes <= budget):
         if exact_bytes > budget:
             raise UserError(f"modes.method: exact needs about {_size(exact_bytes + in_use)} for {shape_text}, more "
                             f"than compute.memory ({_size(budget_given)}); use method auto or gram, or raise "
                             "compute.memory")
-        return SolverPlan("exact", why, memory=int(in_use + exact_bytes))
-    fixed = gram_bytes if method == "gram" else randomized_bytes
-    rows, need = block_size(nlat, steps * nlon, fixed, BYTES_PER_BLOCK_VALUE[method], budget_given, in_use,
-                            workers, f"the {method} solver on {shape_text}", read_cache)
-    blocks = -(-nlat // rows)
-    why += f"; {blocks} block(s) of {rows} latitude rows within compute.memory {_size(budget_given)}"
-    if method == "gram":  # and enough that auto, planning again with only this much, still takes gram
-        need = max(need, 2 * gram_bytes)
-    return SolverPlan(method, why, rows, int(np.ceil(in_use + need)))
+        why = "; chosen in the config (modes.method)" if method == "exact" else " is small: the whole matrix fits in memory"
+        return SolverPlan("exact", shape_text + why, memory=int(in_use + exact_bytes))
+    if method != "auto":
+        return streaming(method, f"{shape_text}; chosen in the config (modes.method)")
+    if steps > GRAM_MAX_STEPS:
+        return streaming("randomized", f"{shape_text} is large in both dimensions")
+    if gram_bytes <= budget / 2:
+        with contextlib.suppress(UserError):  # no room for the Gram solver's blocks beside its matrices
+            return streaming("gram", f"{shape_text}; its {steps} x {steps} Gram matrix ({_size(steps**2 * 8)}) is small")
+    return streaming("randomized", f"{shape_text}; the Gram solver's {steps} x {steps} matrices, maps and blocks "
+                                   "take more room than compute.memory leaves")
 
 
 def block_size(units: int, unit_values: int, fixed: float, bytes_per_value: float, budget: int, in_use: int,
@@ -350,7 +361,7 @@ def _randomized(field, weights, count, max_missing, progress, seed, steps):
     n = field.sizes["time"] - 1
     blocks, rows = field_blocks(field), row_slices(field)
     rank = min(count + OVERSAMPLING, n + 1, weights.size)
-    work = np.result_type(field.dtype, np.float32)  # float32 fields are worked on in float32
+    work = working_precision(field.dtype)
     omega = np.random.default_rng(seed).standard_normal((weights.size, rank)).astype(work)
     most = 2 + POWER_ITERATIONS
     parts = [dask.delayed(quietly(range_part))(b, weights[r], max_missing, omega[r], steps)
