@@ -256,12 +256,14 @@ def test_a_zarr_store_gives_the_modes_of_the_netcdf_files(tmp_path, cli, files):
         warnings.simplefilter("ignore")  # zarr's note on consolidated metadata, for whoever writes the store
         ds.chunk({"time": 12}).to_zarr(store, mode="w")
     runs = {}
-    for name, paths in (("netcdf", files["steps"]), ("zarr", [store])):
+    for name, paths, counted in (("netcdf", files["steps"], f"{len(files['steps'])} file(s)"),
+                                 ("zarr", [store], "1 Zarr store(s)")):
         folder = tmp_path / name
         folder.mkdir()
         config = write_config(folder, paths, modes={"count": 3, "method": "gram"}, prepare={"max_missing": 0.2})
-        code, _, err = cli("run", config)
+        code, out, err = cli("run", config)
         assert code == 0 and "Warning" not in err, err
+        assert f"of tas from {counted}, " in out + err  # a store of many files is one input
         runs[name] = xr.open_dataset(folder / "out" / "modes.nc")
     _same(runs["zarr"], runs["netcdf"], 1e-8)
     assert "field.zarr" in runs["zarr"].attrs["climodes_input_files"]

@@ -73,6 +73,7 @@ from climodes.report import (
     REPORT_FILE,
     Picture,
     ignored_sections_note,
+    inputs_count,
     modes_text,
     months_text,
     projection_headline,
@@ -273,7 +274,7 @@ def check(spec: RunSpec) -> list[str]:
     times = field["time"].values
     grid = f"{field.sizes['lat']} x {field.sizes['lon']}" + (" (curvilinear)" if GRID_LAT in field.coords else "")
     return [
-        f"reads   {spec.input.variable} from {len(files)} file(s), first {files[0].path}",
+        f"reads   {spec.input.variable} from {inputs_count([f.path for f in files])}, first {files[0].path}",
         f"steps   {times.size}, {str(times[0])[:10]} to {str(times[-1])[:10]}",
         f"grid    {grid} points",
         f"solver  {planned.plan.method} ({planned.plan.reason})",
@@ -423,8 +424,8 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
                              "missing values set to zero anomaly"))
         results = results_dataset(modes, planned.opened, spec, extra)
         asked = f" ({spec.modes.count} asked, {kept} not null)" if kept < spec.modes.count else ""
-        headline = (f"climodes: {kept} modes{asked} of {spec.input.variable} from {len(planned.opened.files)} "
-                    f"file(s), {steps} time steps x {counts.used} points ({result.method.split(':')[0]} solver) "
+        headline = (f"climodes: {kept} modes{asked} of {spec.input.variable} from "
+                    f"{inputs_count([f.path for f in planned.opened.files])}, {steps} time steps x {counts.used} points ({result.method.split(':')[0]} solver) "
                     f"-> {out}")
         table = variance_table(results)
         order = [f"read order: {reading.text(_passes(planned.plan.method))}"] if planned.plan.lat_rows else []
@@ -730,7 +731,7 @@ def project(results: str | Path | xr.Dataset, spec: RunSpec, say: Callable[[str]
                                     extra, time_bounds(field), _named(plan.source), trained)
         for line in notes:
             say(f"note: {line}")
-        headline = projection_headline(spec.input.variable, len(opened.files), field.sizes["time"], ds.sizes["mode"],
+        headline = projection_headline(spec.input.variable, [f.path for f in opened.files], field.sizes["time"], ds.sizes["mode"],
                                        plan.source, out)
         table = projection_table(ds)
         try:

@@ -333,7 +333,8 @@ def summary(path: str | Path) -> str:
     for i, line in enumerate(notes.splitlines() or ["none"]):
         lines.append(f"  {'notes' if i == 0 else '':<11} {line}")
     files = attrs.get("climodes_input_files", "").splitlines()
-    lines.append(f"  inputs      {len(files)} file(s)" + (f", first {files[0]}" if files else ""))
+    lines.append(f"  inputs      {inputs_count([f.split(' size=')[0] for f in files])}"
+                 + (f", first {files[0]}" if files else ""))
     lines.append(f"  config      sha256 {attrs.get('climodes_config_sha256', '?')[:16]}...")
     lines.append(f"  rerun       {attrs.get('history', '?').split(': ', 1)[-1]}")
     return "\n".join(lines)
@@ -363,11 +364,20 @@ def ignored_sections_note(config: Path, given: tuple[str, ...], results: Path) -
             f"in {results} apply to the field"]
 
 
+def inputs_count(paths: list[str]) -> str:
+    """How many inputs ``paths`` name, in words: ``4 file(s)``, ``1 Zarr store(s)``, or both joined (a Zarr
+    store is a folder of many files, counted as one store)."""
+    stores = sum(str(p).rstrip("/").endswith(".zarr") for p in paths)
+    files = len(paths) - stores
+    counted = ([f"{files} file(s)"] if files or not stores else []) + ([f"{stores} Zarr store(s)"] if stores else [])
+    return " and ".join(counted)
+
+
 def projection_plan_lines(variable: str, files: list, times: np.ndarray, grid: str, count: int, results: Path,
                           steps: str, blocks: str, where: str) -> list[str]:
     """What ``climodes project --check`` says a projection would read, do and write."""
     return [
-        f"reads    {variable} from {len(files)} file(s), first {files[0].path}",
+        f"reads    {variable} from {inputs_count([f.path for f in files])}, first {files[0].path}",
         f"steps    {times.size}, {str(times[0])[:10]} to {str(times[-1])[:10]}",
         f"grid     {grid} points, the grid of the modes",
         f"projects onto the {count} modes of {results}, prepared as there ({steps})",
@@ -390,8 +400,8 @@ def projection_table(projection: xr.Dataset) -> list[str]:
     return lines
 
 
-def projection_headline(variable: str, files: int, steps: int, count: int, results: Path, out: Path) -> str:
-    return (f"climodes: projected {variable} from {files} file(s), {steps} time steps, onto the {count} modes of "
+def projection_headline(variable: str, files: list[str], steps: int, count: int, results: Path, out: Path) -> str:
+    return (f"climodes: projected {variable} from {inputs_count(files)}, {steps} time steps, onto the {count} modes of "
             f"{results} -> {out}")
 
 
@@ -484,7 +494,7 @@ def _facts(ds: xr.Dataset) -> list[tuple[str, str]]:
     seconds = attrs.get("climodes_elapsed_seconds")
     return [
         ("field", f"{field_text(ds)} [{units_text(ds['eof'].attrs.get('units')) or 'no units'}]"),
-        ("inputs", f"{len(files)} file(s)" + (f": {files[0].split(' size=')[0]}" + (" ..." if len(files) > 1 else "")
+        ("inputs", inputs_count([f.split(" size=")[0] for f in files]) + (f": {files[0].split(' size=')[0]}" + (" ..." if len(files) > 1 else "")
                                             if files else "")),
         ("selection", ", ".join(_setting(k, v) for k, v in chosen.items()) or "the whole field"),
         ("domain", domain_text(ds)),
