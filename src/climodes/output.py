@@ -39,6 +39,7 @@ from climodes.config import RunSpec
 from climodes.errors import UserError
 from climodes.fields import OpenedField
 from climodes.grid import GRID_LAT, GRID_LON, GRID_X, GRID_Y
+from climodes.storage import READ_CACHE, keeping_chunks
 
 FILL = 9.969209968386869e36  # the netCDF default fill for doubles
 WHOLE_WRITE = 2**24  # bytes of an in-memory stack of maps written in one piece; bigger ones are written map by map
@@ -243,23 +244,10 @@ def write_netcdf(ds: xr.Dataset, path: Path, time_encoding: dict, time_name: str
             encoding[name]["chunksizes"] = (1, *var.shape[1:])
     time_name = time_name or next(d for d in ds["pc"].dims if d != "mode")
     encoding[time_name].update(time_encoding)
-    with _signals_held(act=True), _small_chunk_cache():
+    # a file written chunk by chunk, each chunk once, gains nothing from netCDF-C's 64 MiB chunk cache, which
+    # would fill with chunks written already (64 MiB more for a big field): the small one of the readers
+    with _signals_held(act=True), keeping_chunks(READ_CACHE):
         ds.to_netcdf(path, format="NETCDF4", encoding=encoding)
-
-
-@contextlib.contextmanager
-def _small_chunk_cache() -> Iterator[None]:
-    """A chunk cache of 4 MB for the files opened meanwhile instead of netCDF-C's 64 MB: a file written
-    chunk by chunk, each chunk once, gains nothing from a larger one, which would fill with chunks written
-    already (64 MB more for a big field)."""
-    import netCDF4
-
-    before = netCDF4.get_chunk_cache()
-    netCDF4.set_chunk_cache(4 * 2**20, before[1], before[2])
-    try:
-        yield
-    finally:
-        netCDF4.set_chunk_cache(*before)
 
 
 def _regular(values: np.ndarray) -> bool:
