@@ -3,6 +3,7 @@ SIGINT, SIGTERM, and SIGKILL, which no program can catch).  A caught signal also
 staging folder and claim; after a SIGKILL they stay until the next run into that folder removes them."""
 
 import hashlib
+import os
 import signal
 import subprocess
 import sys
@@ -67,3 +68,26 @@ def test_interrupted_while_writing(slow_run, sig, code):
         assert sorted(p.name for p in folder.glob(".out*")) == []  # the next run removed them
         assert (folder / "out" / "modes.nc").exists()
     assert _digest(source) == before
+
+
+def test_a_script_that_turns_sigterm_into_an_exit_leaves_no_scratch(slow_run, tmp_path):
+    """Python ends a script at once on SIGTERM unless it handles the signal (the Python documentation, module
+    signal); one that turns SIGTERM into ``sys.exit`` as the README advises lets climodes remove its
+    temporary folder, as the command line does."""
+    folder, _, config = slow_run
+    scratch = tmp_path / "tmp"
+    scratch.mkdir()
+    script = folder / "script.py"
+    script.write_text("import signal, sys\nimport climodes\n"
+                      "signal.signal(signal.SIGTERM, lambda *_: sys.exit(143))\n"
+                      f"climodes.run({str(config)!r})\n")
+    proc = subprocess.Popen([sys.executable, str(script)], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            text=True, env={**os.environ, "TMPDIR": str(scratch)})
+    deadline = time.monotonic() + 120
+    while not list(scratch.glob("climodes-*")) and proc.poll() is None and time.monotonic() < deadline:
+        time.sleep(0.005)
+    assert proc.poll() is None, "the run ended before it could be stopped"
+    proc.send_signal(signal.SIGTERM)
+    _, err = proc.communicate(timeout=120)
+    assert proc.returncode == 143, err
+    assert list(scratch.iterdir()) == [] and not (folder / "out").exists()
