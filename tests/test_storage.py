@@ -332,6 +332,31 @@ def test_the_copy_is_read_with_a_small_chunk_cache_and_the_files_closed_after(tm
     assert list(tmp_path.iterdir()) == []  # the scratch file is gone
 
 
+def test_the_copy_in_memory_is_the_only_copy(tmp_path, files):
+    """Read into memory (the order for a field that fits compute.memory), the field is held once: the plan
+    counts it once, and dask.array.from_array would copy an array it is given whole (it copies whatever has
+    a ``copy`` method).  Python's tracemalloc sees numpy's allocations (numpy's documentation)."""
+    import contextlib
+    import tracemalloc
+
+    from climodes.config import InputSection
+    from climodes.fields import open_field, rechunked
+    from climodes.storage import MEMORY, staged
+
+    opened = open_field(InputSection(paths=[str(p) for p in files["steps"]], variable="tas"))
+    field = rechunked(opened, {"time": 12, "lat": -1, "lon": -1}).data
+    tracemalloc.start()
+    try:
+        with staged(field, Reading(MEMORY, "as a test asks", 12), 5, tmp_path, lambda label: contextlib.nullcontext(),
+                    opened.close_files) as copy:
+            held, _ = tracemalloc.get_traced_memory()
+            first = copy.data.blocks[0, 0, 0].compute(scheduler="synchronous")
+    finally:
+        tracemalloc.stop()
+    assert field.nbytes <= held < 1.5 * field.nbytes
+    np.testing.assert_array_equal(first, field.values[:, :5])
+
+
 def test_a_run_that_writes_nothing_copies_into_a_temporary_folder(tmp_path, cli, monkeypatch, files):
     """``climodes.run(config)`` without ``write`` has no staging folder: the scratch copy of the time order
     goes to a temporary folder, removed at the end, and the modes are those of the written run."""

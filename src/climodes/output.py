@@ -39,7 +39,7 @@ from climodes.config import RunSpec
 from climodes.errors import UserError
 from climodes.fields import OpenedField
 from climodes.grid import GRID_LAT, GRID_LON, GRID_X, GRID_Y
-from climodes.storage import READ_CACHE, keeping_chunks
+from climodes.storage import READ_CACHE, Uncopied, keeping_chunks
 
 FILL = 9.969209968386869e36  # the netCDF default fill for doubles
 WHOLE_WRITE = 2**24  # bytes of an in-memory stack of maps written in one piece; bigger ones are written map by map
@@ -209,17 +209,6 @@ def provenance(spec: RunSpec, opened: OpenedField, extra: dict) -> dict:
     }
 
 
-class _Uncopied:
-    """An in-memory array that ``dask.array.from_array`` reads pieces of without copying it whole first
-    (it copies whatever has a ``copy`` method)."""
-
-    def __init__(self, values: np.ndarray):
-        self.values, self.shape, self.dtype, self.ndim = values, values.shape, values.dtype, values.ndim
-
-    def __getitem__(self, key) -> np.ndarray:
-        return self.values[key]
-
-
 def write_netcdf(ds: xr.Dataset, path: Path, time_encoding: dict, time_name: str | None = None) -> None:
     """Write ``ds`` as NetCDF-4 with CF-friendly encodings (no fill values on coordinates); ``time_name``
     (by default the time axis of ``pc``) gets ``time_encoding``.
@@ -233,7 +222,7 @@ def write_netcdf(ds: xr.Dataset, path: Path, time_encoding: dict, time_name: str
     ds = ds.copy()
     for name, var in ds.data_vars.items():
         if var.chunks is None and var.ndim >= 3 and var.nbytes > WHOLE_WRITE:
-            maps = dask.array.from_array(_Uncopied(var.values), chunks=(1, *var.shape[1:]), asarray=False)
+            maps = dask.array.from_array(Uncopied(var.values), chunks=(1, *var.shape[1:]), asarray=False)
             ds[name] = var.copy(data=maps)
     encoding = {name: {"_FillValue": None} for name in ds.coords}
     for name, var in ds.data_vars.items():

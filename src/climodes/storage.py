@@ -246,6 +246,17 @@ def plan_reading(storages: list[Storage], shape: tuple[int, int, int], itemsize:
     return Reading(ROWS, f"{layout}: a block of rows reads only its own chunks")
 
 
+class Uncopied:
+    """An in-memory array that ``dask.array.from_array`` reads pieces of without copying it whole first
+    (it copies whatever has a ``copy`` method: for the field read into memory, a second field)."""
+
+    def __init__(self, values: np.ndarray):
+        self.values, self.shape, self.dtype, self.ndim = values, values.shape, values.dtype, values.ndim
+
+    def __getitem__(self, key) -> np.ndarray:
+        return self.values[key]
+
+
 class ScratchArray:
     """A scratch file holding a ``(time, lat, lon)`` field as consecutive blocks of ``rows`` latitude rows,
     each ``(time, rows, lon)`` in C order, as an array dask can read blocks from and store time blocks into.
@@ -332,7 +343,8 @@ def staged(field: xr.DataArray, reading: Reading, rows: int, scratch: Path | Non
         with keeping_chunks(reading.cache), progress("reading the field once, in the files' own order"):
             dask.compute(*writes, **({"num_workers": reading.readers} if reading.readers else {}))
         close_files()
-        yield field.copy(data=dask.array.from_array(target, chunks=(-1, rows, -1), name=False, asarray=False))
+        held = Uncopied(target) if reading.order == MEMORY else target
+        yield field.copy(data=dask.array.from_array(held, chunks=(-1, rows, -1), name=False, asarray=False))
     finally:
         path.unlink(missing_ok=True)
 
