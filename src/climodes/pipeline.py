@@ -639,8 +639,8 @@ def _plan_projection(results: str | Path | xr.Dataset, spec: RunSpec, data: xr.D
         check_same_units(field, trained, spec.input.variable, source)
         keys = keys_of(field["time"], fitted)
         room = capacity(spec.compute)
-        chunks, blocks, readers = plan_projection(field.shape, trained, fitted, room.memory, room.in_use, room.workers,
-                                         opened.storages)
+        chunks, blocks, readers = plan_projection(field.shape, trained, room.memory, room.in_use, room.workers,
+                                                  opened.storages)
     except BaseException:
         if mine:
             trained.close()

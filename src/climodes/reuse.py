@@ -303,8 +303,8 @@ def _maps_in_time(storages: list[Storage]) -> int:
     return max(s.time_chunk for s in storages)
 
 
-def plan_projection(shape: tuple[int, int, int], results: xr.Dataset, fitted: Fitted, budget: int, in_use: int,
-                    workers: int, storages: list[Storage]) -> tuple[dict[str, int], str, int]:
+def plan_projection(shape: tuple[int, int, int], results: xr.Dataset, budget: int, in_use: int, workers: int,
+                    storages: list[Storage]) -> tuple[dict[str, int], str, int]:
     """The dask chunks to read the new field in within ``budget`` bytes, what the plan says, and how many
     blocks of whole maps are read at once (0: blocks of rows, as many as the workers).
 
@@ -313,11 +313,13 @@ def plan_projection(shape: tuple[int, int, int], results: xr.Dataset, fitted: Fi
     projection takes each step on its own, so each chunk is read (and decompressed) once; one block at a
     time where a whole chunk a worker does not fit.  Other files are read in blocks of latitude rows with
     every step, each reading only its own tiles.
+
+    ``in_use`` is what the process holds before it reads, the results and their fitted preparation
+    (read before it is measured) included: the blocks share the fit and copy no part of it.
     """
     steps, nlat, nlon = shape
     count = results.sizes["mode"]
-    fixed = (sum(q.nbytes for q in fitted.quantities.values()) + 3 * nlat * nlon * count * 8
-             + cache_held(storages, READ_CACHE))  # each file's chunk cache while it is read
+    fixed = 3 * nlat * nlon * count * 8 + cache_held(storages, READ_CACHE)  # each file's chunk cache while it is read
     what = f"projecting {steps} steps x {nlat * nlon} points"
     chunk = _maps_in_time(storages)
     if chunk:
