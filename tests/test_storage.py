@@ -394,8 +394,9 @@ def test_a_damaged_compressed_file_is_one_line(tmp_path, cli, values):
 
 def test_a_projection_reads_each_value_once_in_the_files_order(tmp_path, cli, values_read, files):
     """A projection takes each step on its own (PC_k(t) = sum_x w_x^2 a(t, x) eof_k(x)), so files storing
-    whole maps together (per-step chunks, contiguous) are read in blocks of whole maps along time, tiles in
-    blocks of rows: each value read once either way, and the same projection to rounding.  Projecting
+    whole maps together (per-step chunks, contiguous) are read in blocks of whole maps along time, compressed
+    tiles in slabs of whole chunks along time: each value read once either way, and the same projection to
+    rounding.  Projecting
     the training field onto its own modes gives back the run's PCs (an identity of the EOF expansion,
     common practice), whichever order read it."""
     trained = tmp_path / "trained"
@@ -413,7 +414,8 @@ def test_a_projection_reads_each_value_once_in_the_files_order(tmp_path, cli, va
         assert values_read["values"] == 144 * 25 * 36  # each value once
         log = (folder / "out" / "projection.log").read_text()
         in_time = "time steps, whole maps in the files' own order" in log
-        assert in_time == (name != "tiles") and ("latitude rows" in log) == (name == "tiles")
+        assert in_time == (name != "tiles") and ("slab(s) of 48 time steps" in log) == (name == "tiles")
+        assert "latitude rows" not in log
         with xr.open_dataset(folder / "out" / "projection.nc") as ds:
             projections[name] = ds.load()
     with xr.open_dataset(trained / "out" / "modes.nc") as modes:
@@ -471,21 +473,25 @@ def test_a_projection_reads_with_a_small_chunk_cache_counted_in_its_plan(tmp_pat
     (Storage((24, 25, 36), True, (25, 36)), {"time": 24, "lat": -1, "lon": -1}),  # a whole chunk, not a part
     (Storage((1, 25, 36), True, (25, 36)), None),  # several steps a block, a whole number of chunks
     (Storage(None, False, (25, 36)), None),  # contiguous: maps stored one after the other
-    (Storage((48, 5, 9), True, (25, 36)), {"time": -1, "lon": -1}),  # tiles: rows
+    (Storage((48, 5, 9), True, (25, 36)), {"time": 48, "lat": -1, "lon": -1}),  # compressed tiles: slabs
+    (Storage((48, 5, 9), False, (25, 36)), {"time": -1, "lon": -1}),  # uncompressed tiles: rows
 ])
 def test_a_projection_plans_blocks_of_whole_chunks_along_time(storage, order):
     """Blocks of whole maps hold whole chunks of the files along time, even where keeping 4 blocks a
-    worker would cut a chunk (each chunk is then decompressed once, not once per part); tiles go by rows."""
+    worker would cut a chunk (each chunk is then decompressed once, not once per part); compressed tiles go
+    by slabs of whole chunks along time, uncompressed ones by rows."""
     from climodes.reuse import plan_projection
 
     results = xr.Dataset(coords={"mode": [1, 2, 3]})
-    chunks, text, readers = plan_projection((144, 25, 36), results, int(1e9), int(2e8), 2, [storage])
-    assert readers == (0 if chunks["time"] == -1 else 2)
+    plan = plan_projection((144, 25, 36), results, int(1e9), int(2e8), 2, [storage])
+    chunks, text = plan.chunks, plan.text
+    assert plan.readers == (0 if chunks["time"] == -1 else 2)
     if order is None:
         assert chunks["time"] % (storage.chunks[0] if storage.chunks else 1) == 0 and 0 < chunks["time"] < 144
         assert text.endswith("whole maps in the files' own order")
     elif order["time"] == -1:
-        assert chunks["time"] == -1 and 0 < chunks["lat"] < 25 and text.endswith("latitude rows")
+        assert chunks["time"] == -1 and 0 < chunks["lat"] < 25 and "latitude rows (" in text
+        assert "a block of rows reads only its own part of the chunks" in text
     else:
         assert chunks == order
 
@@ -557,9 +563,9 @@ def test_a_chunk_longer_than_its_file_counts_as_the_file():
     assert short.time_chunk == 30 and daily.time_chunk == 1 and Storage(None, False, (25, 36)).time_chunk == 1
     reading = plan_reading([daily, short, daily], (144, 25, 36), 4, 3, 0, True)
     assert reading.order == TIME and reading.time_steps % 30 == 0 and reading.time_steps < 144
-    chunks, text, _ = plan_projection((144, 25, 36), xr.Dataset(coords={"mode": [1, 2]}), int(1e9), int(2e8), 2,
-                                   [daily, short, daily])
-    assert chunks["lat"] == -1 and text.endswith("whole maps in the files' own order")
+    plan = plan_projection((144, 25, 36), xr.Dataset(coords={"mode": [1, 2]}), int(1e9), int(2e8), 2,
+                           [daily, short, daily])
+    assert plan.chunks["lat"] == -1 and plan.text.endswith("whole maps in the files' own order")
 
 
 def test_a_projection_reads_one_chunk_at_a_time_rather_than_in_rows():
@@ -572,7 +578,8 @@ def test_a_projection_reads_one_chunk_at_a_time_rather_than_in_rows():
     chunked = Storage((24, 25, 36), True, (25, 36), steps=72, cached=True)
     results = xr.Dataset(coords={"mode": [1, 2, 3]})
     budget = int(2e8 + LIBRARY_WORK + 2.1e6)
-    chunks, text, readers = plan_projection((144, 25, 36), results, budget, int(2e8), 2, [chunked])
-    assert (chunks["time"], readers) == (24, 1) and text.endswith("whole maps in the files' own order, 1 at a time")
-    chunks, text, readers = plan_projection((144, 25, 36), results, budget + int(2e6), int(2e8), 2, [chunked])
-    assert chunks["time"] % 24 == 0 and readers == 2
+    plan = plan_projection((144, 25, 36), results, budget, int(2e8), 2, [chunked])
+    assert (plan.chunks["time"], plan.readers, plan.piece) == (24, 1, 0)
+    assert plan.text.endswith("whole maps in the files' own order, 1 at a time")
+    plan = plan_projection((144, 25, 36), results, budget + int(2e6), int(2e8), 2, [chunked])
+    assert plan.chunks["time"] % 24 == 0 and plan.readers == 2
