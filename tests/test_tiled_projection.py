@@ -175,3 +175,43 @@ def test_uncompressed_tiles_are_read_in_rows_saying_why():
     plan = plan_projection((144, 25, 36), results, int(1e9), int(2e8), 2, [plain])
     assert plan.readers == 0 and plan.text.endswith("latitude rows (chunks of 48 x 5 x 9 (time x lat x lon): "
                                                     "a block of rows reads only its own part of the chunks)")
+
+
+@pytest.mark.slow
+def test_a_big_tiled_field_projects_in_slabs_within_its_memory(tmp_path):
+    """A field of 0.25 GB (float32) in 2 files compressed in tiles of 60 x 20 x 90 against compute.memory of
+    600MB: a slab of 60 steps in float64 (0.31 GB) does not fit, so the projection reads slabs as they are
+    and works on a few steps at a time, and the peak resident memory of the process stays within the
+    budget (getrusage of a child, which counts what the operating system gave it), as the training run's."""
+    import subprocess
+    import sys
+
+    from conftest import field_dataset
+
+    steps, lat, lon = 480, np.linspace(-89.5, 89.5, 180), np.arange(0, 360, 0.5)
+    rng = np.random.default_rng(0)
+    paths = []
+    for part in range(2):
+        values = (280 + rng.standard_normal((steps // 2, lat.size, lon.size), dtype=np.float32)).astype(np.float32)
+        time = xr.date_range(f"{1900 + 20 * part}-01-01", periods=steps // 2, freq="MS")
+        paths.append(tmp_path / f"tiles{part}.nc")
+        field_dataset(values, lat, lon, time=time).to_netcdf(
+            paths[-1], encoding={"tas": {"zlib": True, "complevel": 1, "chunksizes": (60, 20, 90)}})
+        del values
+    config = write_config(tmp_path, paths, modes={"count": 3, "method": "randomized"}, compute={"memory": "600MB"})
+    other = tmp_path / "other"
+    other.mkdir()
+    peak = ("import resource, subprocess, sys; done = subprocess.run(sys.argv[1:]); "
+            "print(done.returncode, resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss * 1024)")
+    climodes = [sys.executable, "-m", "climodes"]
+    for command in (["run", "--quiet", str(config)],
+                    ["project", "--quiet", str(tmp_path / "out"),
+                     str(write_config(other, paths, compute={"memory": "600MB"}))]):
+        done = subprocess.run([sys.executable, "-c", peak, *climodes, *command], capture_output=True, text=True,
+                              timeout=900)
+        code, used = map(int, done.stdout.split()[-2:])
+        assert code == 0, done.stderr
+        assert used <= 600e6, (command[0], used / 1e6)
+    order = re.search(r"read order: ([^\n]*)", (other / "out" / "projection.log").read_text()).group(1)
+    assert order.startswith("8 slab(s) of 60 time steps x every row"), order
+    assert int(re.search(r"worked on (\d+) step", order).group(1)) < 60, order
