@@ -293,7 +293,7 @@ def _projection(label: str, paths: list[Path], trained: Path, read: float, start
     config = _config(paths, BUDGETS[0], "randomized")
     seconds, peak, _ = measured([CLIMODES, "project", "--quiet", str(trained / "out"), str(config)])
     order = re.search(r"read order: ([^\n]*)", (config.parent / "out" / "projection.log").read_text()).group(1)
-    where = "time blocks" if "files' own order" in order else "rows"
+    where = "time blocks" if "files' own order" in order else "slabs" if "slab(s)" in order else "rows"
     target = 1.5 * read + startup
     print(f"| {label} | {read:.1f} s | | | {startup:.1f} s | project, {BUDGETS[0]}, threads | {where} | 1 / 1 "
           f"| {seconds:.1f} s | {'met' if seconds <= target else 'not met'} ({target:.1f} s) | "

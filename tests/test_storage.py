@@ -425,8 +425,9 @@ def test_a_damaged_compressed_file_is_one_line_naming_it(tmp_path, cli, values):
 
 def test_a_projection_reads_each_value_once_in_the_files_order(tmp_path, cli, values_read, files):
     """A projection takes each step on its own (PC_k(t) = sum_x w_x^2 a(t, x) eof_k(x)), so files storing
-    whole maps together (per-step chunks, contiguous) are read in blocks of whole maps along time, tiles in
-    blocks of rows: each value read once either way, and the same projection to rounding.  Projecting
+    whole maps together (per-step chunks, contiguous) are read in blocks of whole maps along time, compressed
+    tiles in slabs of whole chunks along time: each value read once either way, and the same projection to
+    rounding.  Projecting
     the training field onto its own modes gives back the run's PCs (an identity of the EOF expansion,
     common practice), whichever order read it."""
     trained = tmp_path / "trained"
@@ -444,7 +445,8 @@ def test_a_projection_reads_each_value_once_in_the_files_order(tmp_path, cli, va
         assert values_read["values"] == 144 * 25 * 36  # each value once
         log = (folder / "out" / "projection.log").read_text()
         in_time = "time steps, whole maps in the files' own order" in log
-        assert in_time == (name != "tiles") and ("latitude rows" in log) == (name == "tiles")
+        assert in_time == (name != "tiles") and ("slab(s) of 48 time steps" in log) == (name == "tiles")
+        assert "latitude rows" not in log
         with xr.open_dataset(folder / "out" / "projection.nc") as ds:
             projections[name] = ds.load()
     with xr.open_dataset(trained / "out" / "modes.nc") as modes:
@@ -468,7 +470,6 @@ def test_a_projection_reads_with_a_small_chunk_cache_counted_in_its_plan(tmp_pat
 
     import climodes.reuse
     from climodes.errors import UserError
-    from climodes.prepare import Fitted, Preparation
     from climodes.reuse import plan_projection
     from climodes.storage import READ_CACHE
 
@@ -490,11 +491,10 @@ def test_a_projection_reads_with_a_small_chunk_cache_counted_in_its_plan(tmp_pat
         assert code == 0, err
     assert seen and set(seen) == {READ_CACHE}
     assert netCDF4.get_chunk_cache()[0] != READ_CACHE  # the library's setting is back after
-    fitted = Fitted(Preparation(), {"offset": np.zeros((25, 36))})
     results, need = xr.Dataset(coords={"mode": [1, 2, 3]}), []
     for storages in ([], [Storage((1, 25, 36), True, (25, 36), steps=2000, cached=True)] * 40):  # files > 4 MiB
         with pytest.raises(UserError) as refused:
-            plan_projection((144, 25, 36), results, fitted, int(2e8), int(2e8), 2, storages)
+            plan_projection((144, 25, 36), results, int(2e8), int(2e8), 2, storages)
         need.append(refused)
     need = [float(re.search(r"give at least ([\d.]+) GB", str(e.value)).group(1)) for e in need]
     assert need[1] - need[0] >= 40 * READ_CACHE / 0.7 / 1e9 - 0.01  # 40 files' caches in the advice
@@ -504,23 +504,25 @@ def test_a_projection_reads_with_a_small_chunk_cache_counted_in_its_plan(tmp_pat
     (Storage((24, 25, 36), True, (25, 36)), {"time": 24, "lat": -1, "lon": -1}),  # a whole chunk, not a part
     (Storage((1, 25, 36), True, (25, 36)), None),  # several steps a block, a whole number of chunks
     (Storage(None, False, (25, 36)), None),  # contiguous: maps stored one after the other
-    (Storage((48, 5, 9), True, (25, 36)), {"time": -1, "lon": -1}),  # tiles: rows
+    (Storage((48, 5, 9), True, (25, 36)), {"time": 48, "lat": -1, "lon": -1}),  # compressed tiles: slabs
+    (Storage((48, 5, 9), False, (25, 36)), {"time": -1, "lon": -1}),  # uncompressed tiles: rows
 ])
 def test_a_projection_plans_blocks_of_whole_chunks_along_time(storage, order):
     """Blocks of whole maps hold whole chunks of the files along time, even where keeping 4 blocks a
-    worker would cut a chunk (each chunk is then decompressed once, not once per part); tiles go by rows."""
-    from climodes.prepare import Fitted, Preparation
+    worker would cut a chunk (each chunk is then decompressed once, not once per part); compressed tiles go
+    by slabs of whole chunks along time, uncompressed ones by rows."""
     from climodes.reuse import plan_projection
 
     results = xr.Dataset(coords={"mode": [1, 2, 3]})
-    fitted = Fitted(Preparation(), {"offset": np.zeros((25, 36))})
-    chunks, text, readers = plan_projection((144, 25, 36), results, fitted, int(1e9), int(2e8), 2, [storage])
-    assert readers == (0 if chunks["time"] == -1 else 2)
+    plan = plan_projection((144, 25, 36), results, int(1e9), int(2e8), 2, [storage])
+    chunks, text = plan.chunks, plan.text
+    assert plan.readers == (0 if chunks["time"] == -1 else 2)
     if order is None:
         assert chunks["time"] % (storage.chunks[0] if storage.chunks else 1) == 0 and 0 < chunks["time"] < 144
         assert text.endswith("whole maps in the files' own order")
     elif order["time"] == -1:
-        assert chunks["time"] == -1 and 0 < chunks["lat"] < 25 and text.endswith("latitude rows")
+        assert chunks["time"] == -1 and 0 < chunks["lat"] < 25 and "latitude rows (" in text
+        assert "a block of rows reads only its own part of the chunks" in text
     else:
         assert chunks == order
 
@@ -585,7 +587,6 @@ def test_a_chunk_longer_than_its_file_counts_as_the_file():
     """NetCDF lets a chunk be longer than a file's (unlimited) time axis: a 30-step file chunked 1024 x lat x
     lon holds 30 steps a chunk, and must not make every file's blocks 1024 steps long, nor send a projection
     of per-step files back to rows."""
-    from climodes.prepare import Fitted, Preparation
     from climodes.reuse import plan_projection
 
     short = Storage((1024, 25, 36), True, (25, 36), steps=30, cached=True)
@@ -593,24 +594,23 @@ def test_a_chunk_longer_than_its_file_counts_as_the_file():
     assert short.time_chunk == 30 and daily.time_chunk == 1 and Storage(None, False, (25, 36)).time_chunk == 1
     reading = plan_reading([daily, short, daily], (144, 25, 36), 4, 3, 0, True)
     assert reading.order == TIME and reading.time_steps % 30 == 0 and reading.time_steps < 144
-    chunks, text, _ = plan_projection((144, 25, 36), xr.Dataset(coords={"mode": [1, 2]}),
-                                   Fitted(Preparation(), {"offset": np.zeros((25, 36))}), int(1e9), int(2e8), 2,
-                                   [daily, short, daily])
-    assert chunks["lat"] == -1 and text.endswith("whole maps in the files' own order")
+    plan = plan_projection((144, 25, 36), xr.Dataset(coords={"mode": [1, 2]}), int(1e9), int(2e8), 2,
+                           [daily, short, daily])
+    assert plan.chunks["lat"] == -1 and plan.text.endswith("whole maps in the files' own order")
 
 
 def test_a_projection_reads_one_chunk_at_a_time_rather_than_in_rows():
     """Where a whole chunk of the files along time fits the budget for one block but not for each worker's,
     the projection reads blocks of whole maps one at a time: in rows, every block would decompress every
     chunk again (arithmetic of the plan: 40 bytes a value of a block, 0.1 GB kept for the libraries)."""
-    from climodes.prepare import Fitted, Preparation
     from climodes.reuse import plan_projection
     from climodes.solvers import LIBRARY_WORK
 
     chunked = Storage((24, 25, 36), True, (25, 36), steps=72, cached=True)
-    fitted, results = Fitted(Preparation(), {"offset": np.zeros((25, 36))}), xr.Dataset(coords={"mode": [1, 2, 3]})
+    results = xr.Dataset(coords={"mode": [1, 2, 3]})
     budget = int(2e8 + LIBRARY_WORK + 2.1e6)
-    chunks, text, readers = plan_projection((144, 25, 36), results, fitted, budget, int(2e8), 2, [chunked])
-    assert (chunks["time"], readers) == (24, 1) and text.endswith("whole maps in the files' own order, 1 at a time")
-    chunks, text, readers = plan_projection((144, 25, 36), results, fitted, budget + int(2e6), int(2e8), 2, [chunked])
-    assert chunks["time"] % 24 == 0 and readers == 2
+    plan = plan_projection((144, 25, 36), results, budget, int(2e8), 2, [chunked])
+    assert (plan.chunks["time"], plan.readers, plan.piece) == (24, 1, 0)
+    assert plan.text.endswith("whole maps in the files' own order, 1 at a time")
+    plan = plan_projection((144, 25, 36), results, budget + int(2e6), int(2e8), 2, [chunked])
+    assert plan.chunks["time"] % 24 == 0 and plan.readers == 2

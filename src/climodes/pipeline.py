@@ -89,6 +89,7 @@ from climodes.report import (
 )
 from climodes.results import PROJECTION_FILE, check_results, open_results, results_path
 from climodes.reuse import (
+    ProjectionOrder,
     check_points,
     check_same_grid,
     check_same_units,
@@ -585,9 +586,7 @@ class ProjectionPlan:
     opened: OpenedField
     field: xr.DataArray
     keys: TimeKeys
-    chunks: dict[str, int]  # the dask chunks the field is read in
-    readers: int  # blocks of whole maps read at once (0: blocks of rows)
-    blocks: str
+    order: ProjectionOrder  # the blocks the field is read in, and why
     room: Capacity
     max_missing: float
     notes: list[str]
@@ -646,14 +645,13 @@ def _plan_projection(results: str | Path | xr.Dataset, spec: RunSpec, data: xr.D
         check_same_units(field, trained, spec.input.variable, source)
         keys = keys_of(field["time"], fitted)
         room = capacity(spec.compute)
-        chunks, blocks, readers = plan_projection(field.shape, trained, fitted, room.memory, room.in_use, room.workers,
-                                         opened.storages)
+        order = plan_projection(field.shape, trained, room.memory, room.in_use, room.workers, opened.storages,
+                                field.dtype.itemsize, local=spec.compute.scheduler in ("threads", "synchronous"))
     except BaseException:
         if mine:
             trained.close()
         raise
-    return ProjectionPlan(source, trained, mine, fitted, opened, field, keys, chunks, readers, blocks, room,
-                          max_missing, notes)
+    return ProjectionPlan(source, trained, mine, fitted, opened, field, keys, order, room, max_missing, notes)
 
 
 def _steps_text(fitted: Fitted) -> str:
@@ -674,7 +672,8 @@ def check_projection(results: str | Path, spec: RunSpec) -> list[str]:
     field = plan.field
     grid = f"{field.sizes['lat']} x {field.sizes['lon']}" + (" (curvilinear)" if GRID_LAT in field.coords else "")
     lines = projection_plan_lines(spec.input.variable, plan.opened.files, field["time"].values, grid,
-                                  plan.results.sizes["mode"], plan.source, _steps_text(plan.fitted), plan.blocks, where)
+                                  plan.results.sizes["mode"], plan.source, _steps_text(plan.fitted), plan.order.text,
+                                  where)
     notes = [*ignored_sections_note(spec.source, spec.given, plan.source), *plan.notes, *warned]
     return lines + [f"note: {line}" for line in notes]
 
@@ -689,8 +688,9 @@ def project(results: str | Path | xr.Dataset, spec: RunSpec, say: Callable[[str]
 
     The output folder is claimed, staged and put in place as a run's results folder is (never a
     training run's folder); the field is read once, in blocks within ``compute.memory`` (whole maps in
-    the files' own order where they store whole maps together, else latitude rows), on the scheduler of
-    ``compute``.
+    the files' own order where they store whole maps together, slabs of whole chunks along time where they
+    are compressed in tiles, else latitude rows: :func:`climodes.reuse.plan_projection`), on the scheduler
+    of ``compute``.
     """
     started = time.monotonic()
     out = Path(spec.output.dir)
@@ -701,7 +701,7 @@ def project(results: str | Path | xr.Dataset, spec: RunSpec, say: Callable[[str]
         with contextlib.closing(plan.results) if plan.opened_here else contextlib.nullcontext(plan.results) \
                 as trained:
             with library_warnings(warned):
-                opened = rechunked(plan.opened, plan.chunks)
+                opened = rechunked(plan.opened, plan.order.chunks)
                 field = _new_field(spec, opened, trained, [])
                 limit = walltime(spec.compute, "gram", field.shape, trained.sizes["mode"], field.dtype.itemsize,
                                  plan.room.workers)
@@ -711,7 +711,7 @@ def project(results: str | Path | xr.Dataset, spec: RunSpec, say: Callable[[str]
                         opened.close_files()  # opened again, with the small cache, as the blocks are read
                         try:
                             products, squares, fraction = projected(field, trained, plan.fitted, plan.keys,
-                                                                    session.during, plan.readers)
+                                                                    session.during, plan.order)
                         finally:
                             opened.close_files()
             check_points(fraction, trained, field, plan.max_missing, plan.source)
@@ -721,7 +721,7 @@ def project(results: str | Path | xr.Dataset, spec: RunSpec, say: Callable[[str]
             notes = [*ignored, *plan.notes, *warned]
             if filled:
                 notes.append(f"set {filled} missing values at {int(np.sum(fraction[used] > 0))} points to zero anomaly")
-            extra = dict(method=f"projection onto the EOFs of {plan.source} ({plan.blocks})", notes=notes,
+            extra = dict(method=f"projection onto the EOFs of {plan.source} ({plan.order.text})", notes=notes,
                          compute=session.description, elapsed=time.monotonic() - started,
                          points=f"{int(used.sum())} grid points of the modes; {filled} missing values set to zero "
                                 "anomaly",
@@ -738,8 +738,8 @@ def project(results: str | Path | xr.Dataset, spec: RunSpec, say: Callable[[str]
             if stage is not None:
                 write_netcdf(ds, stage / PROJECTION_FILE, opened.time_encoding)
                 (stage / "projection.log").write_text(
-                    run_log(headline, table, [f"read order: {plan.blocks}", f"compute: {session.description}"], notes,
-                            spec.to_yaml()),
+                    run_log(headline, table, [f"read order: {plan.order.text}", f"compute: {session.description}"],
+                            notes, spec.to_yaml()),
                     encoding="utf-8")
         except OSError as err:
             raise _cannot_write(spec, err) from None

@@ -23,9 +23,12 @@ weights), ``pc_k = sqrt(n - 1) U_k``, ``lambda_k = s_k^2 / (n - 1)`` and
 
   For the training field this is its own PC: ``sum_x A w^2 eof_k = X X^T pc_k
   / (n - 1) = lambda_k pc_k``, as ``pc_k`` is an eigenvector of ``X X^T`` with
-  eigenvalue ``(n - 1) lambda_k``.  The field is read once, in blocks of
-  latitude rows as the streaming solvers read it (:mod:`climodes.blocks`),
-  and the blocks' small products are summed pairwise.
+  eigenvalue ``(n - 1) lambda_k``.  The field is read once, each chunk of
+  the files decompressed once where the budget allows: blocks of whole maps
+  along time, or slabs of compressed tiles along time worked on a few steps
+  at a time; else blocks of latitude rows as the streaming solvers read it
+  (:mod:`climodes.blocks`), whose small products are summed pairwise
+  (:func:`plan_projection`).
 """
 
 from __future__ import annotations
@@ -34,6 +37,7 @@ import datetime as dt
 import re
 import secrets
 import shlex
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable, ContextManager
 
@@ -62,7 +66,7 @@ from climodes.prepare import (
 )
 from climodes.report import long_name_of, modes_text, months_text, stored_config
 from climodes.solvers import block_size
-from climodes.storage import READ_CACHE, Storage, cache_held
+from climodes.storage import READ_CACHE, SLAB_BYTES_PER_VALUE, Storage, cache_held
 
 # bytes a value of a block costs: the modes' product and the preparation put back in float64, the float32 copies
 # written (measured on a 0.5 GB field: 25; with room to spare)
@@ -279,14 +283,25 @@ def project_block(values, fitted: Fitted, keys: TimeKeys, weights: np.ndarray, m
     return anomaly @ (maps * weights[:, None] ** 2), step_squares(anomaly, weights), [fraction]
 
 
-def project_steps(values, fitted: Fitted, keys: TimeKeys, weights: np.ndarray, maps: np.ndarray):
+def project_steps(values, fitted: Fitted, keys: TimeKeys, weights: np.ndarray, maps: np.ndarray, piece: int = 0):
     """One block of whole maps' part of the projection: its steps' rows of ``A (w^2 eof)`` ``(time, mode)``
     and their weighted sums of squares ``||x_t||^2`` (whole, not shares), and each point's count of
-    missing values in the block.  ``keys`` are the block's steps' own."""
-    block = flat(values).astype(np.float64)
-    missing = np.isnan(block).sum(axis=0)
-    anomaly = _anomalies(block, fitted, keys)
-    return (anomaly @ (maps * weights[:, None] ** 2), step_squares(anomaly, weights)), missing
+    missing values in the block.  ``keys`` are the block's steps' own.  The block is kept as read and
+    worked on ``piece`` steps at a time (0: all at once), each piece's float64 copies made and dropped
+    in turn: a projection takes each step on its own, so the pieces' rows are the block's."""
+    block = flat(values)
+    piece = piece or block.shape[0]
+    scaled = maps * weights[:, None] ** 2
+    products, squares, missing = [], [], 0
+    for start in range(0, block.shape[0], piece):
+        steps = slice(start, start + piece)
+        part = block[steps].astype(np.float64)
+        missing = missing + np.isnan(part).sum(axis=0)
+        anomaly = _anomalies(part, fitted, keys.part(steps))
+        products.append(anomaly @ scaled)
+        squares.append(step_squares(anomaly, weights))
+        del part, anomaly
+    return (np.concatenate(products), np.concatenate(squares)), missing
 
 
 def _block_fit(fitted: Fitted, points: slice) -> Fitted:
@@ -303,26 +318,63 @@ def _maps_in_time(storages: list[Storage]) -> int:
     return max(s.time_chunk for s in storages)
 
 
-def plan_projection(shape: tuple[int, int, int], results: xr.Dataset, fitted: Fitted, budget: int, in_use: int,
-                    workers: int, storages: list[Storage]) -> tuple[dict[str, int], str, int]:
-    """The dask chunks to read the new field in within ``budget`` bytes, what the plan says, and how many
-    blocks of whole maps are read at once (0: blocks of rows, as many as the workers).
+def _slabs_in_time(storages: list[Storage]) -> int:
+    """The steps of the files' chunks along time when every file is compressed in chunks (spatial tiles,
+    or whole maps), else 0: a block of rows would decompress a chunk once for each block it meets."""
+    if not storages or not all(s.chunks is not None and s.compressed for s in storages):
+        return 0
+    return max(s.time_chunk for s in storages)
 
-    Files that store whole maps together (``storages``: chunks of whole maps, model output's usual
-    layout, or contiguous storage) are read in their own order, blocks of whole chunks along time: a
-    projection takes each step on its own, so each chunk is read (and decompressed) once; one block at a
-    time where a whole chunk a worker does not fit.  Other files are read in blocks of latitude rows with
-    every step, each reading only its own tiles.
+
+@dataclass(frozen=True)
+class ProjectionOrder:
+    """How a projection reads its field: the dask chunks it reads (``time``, ``lat``, ``lon``: -1 whole),
+    the read order and why (the ``read order`` line of ``projection.log``), how many blocks of whole maps
+    are read at once (0: blocks of latitude rows, as many as the workers) and how many steps of a block
+    are worked on at a time (0: the whole block)."""
+
+    chunks: dict[str, int]
+    text: str
+    readers: int = 0
+    piece: int = 0
+
+
+def _size(nbytes: float) -> str:
+    return f"{nbytes / 1e9:.2f} GB" if nbytes >= 1e8 else f"{nbytes / 1e6:.1f} MB"
+
+
+def plan_projection(shape: tuple[int, int, int], results: xr.Dataset, budget: int, in_use: int, workers: int,
+                    storages: list[Storage], itemsize: int = 4, local: bool = True) -> ProjectionOrder:
+    """The blocks to read a new ``(time, lat, lon)`` field of ``itemsize`` bytes a value in, within ``budget``
+    bytes: a projection takes each step on its own, so it reads each chunk of the files once where it can.
+
+    - Files that store whole maps together (``storages``: chunks of whole maps, model output's usual
+      layout, or contiguous storage) are read in their own order, blocks of whole chunks along time worked
+      on whole; one block at a time where a whole chunk a worker does not fit.
+    - Files compressed in chunks (spatial tiles, or whole maps too big for that) are read in slabs: one
+      chunk along time with every row, so each chunk is decompressed once, kept as read
+      (:data:`~climodes.storage.SLAB_BYTES_PER_VALUE` itemsizes a value) and worked on a few steps at a
+      time in float64; where a slab does not fit, in blocks of rows, which decompress a chunk once for
+      each block it meets.
+    - Other files (uncompressed tiles) are read in blocks of latitude rows with every step, each reading
+      only its own part of the chunks.
+
+    ``in_use`` is what the process holds before it reads, the results and their fitted preparation
+    (read before it is measured) included: the blocks share the fit and copy no part of it.  Blocks are
+    read ``workers`` at a time, or fewer where they do not fit, on a ``local`` scheduler (threads: one
+    process; elsewhere every worker reads one).
     """
     steps, nlat, nlon = shape
     count = results.sizes["mode"]
-    fixed = (sum(q.nbytes for q in fitted.quantities.values()) + 3 * nlat * nlon * count * 8
-             + cache_held(storages, READ_CACHE))  # each file's chunk cache while it is read
+    fixed = 3 * nlat * nlon * count * 8 + cache_held(storages, READ_CACHE)  # each file's chunk cache while it is read
     what = f"projecting {steps} steps x {nlat * nlon} points"
+    layout = "; ".join(sorted({s.text() for s in storages}))
+    choices = sorted({workers, 1} if local else {workers}, reverse=True)
+    held = steps * (count + 1) * 8 + 4 * (workers + 3) * nlat * nlon * 8  # products kept, missing counts summed
+    why = f"{layout}: a block of rows reads only its own part of the chunks"
     chunk = _maps_in_time(storages)
     if chunk:
-        held = steps * (count + 1) * 8 + 4 * (workers + 3) * nlat * nlon * 8  # products kept, missing counts summed
-        for readers in sorted({workers, 1}, reverse=True):
+        for readers in choices:
             try:
                 size, _ = block_size(steps, nlat * nlon, fixed + held, PROJECT_BYTES_PER_VALUE, budget, in_use,
                                      readers, what, at_least=chunk)
@@ -330,12 +382,34 @@ def plan_projection(shape: tuple[int, int, int], results: xr.Dataset, fitted: Fi
                 continue
             if chunk <= size:
                 size = max(chunk, min(size, steps) // chunk * chunk)
-                return ({"time": size, "lat": -1, "lon": -1},
-                        f"{-(-steps // size)} block(s) of {size} time steps, whole maps in the files' own order"
-                        + (f", {readers} at a time" if readers < workers else ""), readers)
+                return ProjectionOrder({"time": size, "lat": -1, "lon": -1},
+                                       f"{-(-steps // size)} block(s) of {size} time steps, whole maps in the files' "
+                                       "own order" + (f", {readers} at a time" if readers < workers else ""), readers)
+        why = (f"{layout}: a block of {min(chunk, steps)} whole maps in float64, "
+               f"{_size(min(chunk, steps) * nlat * nlon * PROJECT_BYTES_PER_VALUE)}, does not fit compute.memory "
+               f"{_size(budget)} beside the rest of the plan")
+    slab = min(_slabs_in_time(storages), steps)
+    if slab:
+        read = slab * nlat * nlon * SLAB_BYTES_PER_VALUE * itemsize  # a slab as read
+        for readers in choices:
+            try:
+                piece, _ = block_size(slab, nlat * nlon, fixed + held + readers * read, PROJECT_BYTES_PER_VALUE,
+                                      budget, in_use, readers, what, at_least=slab)
+            except UserError:
+                continue
+            return ProjectionOrder({"time": slab, "lat": -1, "lon": -1},
+                                   f"{-(-steps // slab)} slab(s) of {slab} time steps x every row"
+                                   + (f", {readers} at a time" if readers < workers else "")
+                                   + f", worked on {piece} step(s) at a time: each chunk of the files decompressed "
+                                   f"once ({layout}; a slab as read, {_size(read)}, fits compute.memory "
+                                   f"{_size(budget)})", readers, piece)
+        why = (f"{layout}: a slab of {slab} time steps x every row, {_size(read)} as read, does not fit "
+               f"compute.memory {_size(budget)} beside the rest of the plan, so each block of rows decompresses "
+               "the chunks it meets")
     held = 4 * (workers + 3) * steps * (count + 1) * 8  # partial sums of the blocks' small products
     rows, _ = block_size(nlat, steps * nlon, fixed + held, PROJECT_BYTES_PER_VALUE, budget, in_use, workers, what)
-    return {"time": -1, "lat": rows, "lon": -1}, f"{-(-nlat // rows)} block(s) of {rows} latitude rows", 0
+    return ProjectionOrder({"time": -1, "lat": rows, "lon": -1},
+                           f"{-(-nlat // rows)} block(s) of {rows} latitude rows ({why})")
 
 
 def _take(part, which: int):
@@ -343,9 +417,11 @@ def _take(part, which: int):
 
 
 def projected(field: xr.DataArray, results: xr.Dataset, fitted: Fitted, keys: TimeKeys,
-              progress: Callable[[str], ContextManager], readers: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Read ``field`` once, block by block as it is chunked: blocks of whole maps along time, ``readers`` at
-    a time (threads), when ``readers``, else of latitude rows, and project it onto the modes of ``results``.
+              progress: Callable[[str], ContextManager], order: ProjectionOrder
+              ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Read ``field`` once, block by block as it is chunked (see :func:`plan_projection`): blocks of whole
+    maps along time, ``order.readers`` at a time (threads), each worked on ``order.piece`` steps at a time,
+    when ``order.readers``, else of latitude rows, and project it onto the modes of ``results``.
 
     Returns each step's ``sum_x a w^2 eof_k`` ``(time, mode)``, its weighted sum of squares ``||x_t||^2``
     and each grid point's missing fraction (flat, latitude rows first).
@@ -353,15 +429,15 @@ def projected(field: xr.DataArray, results: xr.Dataset, fitted: Fitted, keys: Ti
     count = results.sizes["mode"]
     maps = np.nan_to_num(np.asarray(results["eof"].values, dtype=np.float64).reshape(count, -1).T)
     weights = np.asarray(results["area_weight"].values, dtype=np.float64).reshape(-1)
-    if readers:
+    if order.readers:
         blocks, steps = time_blocks(field)  # every block needs the whole fit and maps: one key each, sent once
         whole, weights, maps = (dask.delayed(x, pure=True) for x in (_block_fit(fitted, slice(None)), weights, maps))
-        parts = [dask.delayed(quietly(project_steps))(block, whole, keys.part(at), weights, maps)
+        parts = [dask.delayed(quietly(project_steps))(block, whole, keys.part(at), weights, maps, order.piece)
                  for block, at in zip(blocks, steps)]
         rows = [dask.delayed(_take)(part, 0) for part in parts]
         missing = tree_sum([dask.delayed(_take)(part, 1) for part in parts])
         with progress("projection: 1 pass over the field, in the files' own order"):
-            rows, missing = dask.compute(rows, missing, num_workers=readers)
+            rows, missing = dask.compute(rows, missing, num_workers=order.readers)
         products, squares = (np.concatenate(values) for values in zip(*rows))
         return products, squares, missing / field.sizes["time"]
     parts = [dask.delayed(quietly(project_block))(block, _block_fit(fitted, rows), keys, weights[rows], maps[rows])
