@@ -21,7 +21,7 @@ def test_check_prints_the_resolved_config(tmp_path, small_field, cli):
         f"reads   tas from 1 file(s), first {small_field}",
         "steps   60, 1980-02-15 to 1985-01-15",
         "grid    18 x 36 points",
-        "solver  exact (60 steps x 648 points (0 MB as float64) is small: the whole matrix fits in memory)",
+        "solver  exact (60 steps x 648 points (0.3 MB as float64) is small: the whole matrix fits in memory)",
         f"writes  {tmp_path / 'out'} (a new folder)",
     ]
     resolved = yaml.safe_load(out)

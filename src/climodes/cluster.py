@@ -39,7 +39,7 @@ from typing import Callable, ContextManager, Iterator
 import dask
 from threadpoolctl import threadpool_limits
 
-from climodes.config import ComputeSection, memory_bytes
+from climodes.config import ComputeSection, memory_bytes, size_text
 from climodes.errors import UserError
 
 PROGRESS_MINIMUM = 0.5  # seconds a pass must last before its progress bar is drawn
@@ -109,7 +109,7 @@ class Allocation:
     memory: int | None
 
     def text(self) -> str:
-        what = [f"{self.cores} cores" if self.cores else "", _size(self.memory) if self.memory else ""]
+        what = [f"{self.cores} cores" if self.cores else "", size_text(self.memory) if self.memory else ""]
         return f"{self.system} job {self.job}" + (f" ({', '.join(w for w in what if w)})" if any(what) else "")
 
 
@@ -194,10 +194,6 @@ def capacity(spec: ComputeSection, workers: int | None = None) -> Capacity:
     if spec.scheduler == "processes":
         return Capacity(workers, budget, held * (workers + 1))
     return Capacity(workers, budget, held)
-
-
-def _size(nbytes: float) -> str:
-    return f"{nbytes / 1e9:.2f} GB" if nbytes >= 1e8 else f"{nbytes / 1e6:.1f} MB"
 
 
 # --- running the passes
@@ -500,8 +496,8 @@ def _distributed_passes(client, session: Session, progress: bool) -> Callable[[s
                 future.release()
         returned = dask.sizeof.sizeof(results)
         between = max(0, _served_bytes(client) - before - returned)
-        session.moved.append(f"{state['label']}: {_size(sent)} of tasks sent to the workers, {_size(between)} "
-                             f"between workers, {_size(returned)} of results back")
+        session.moved.append(f"{state['label']}: {size_text(sent)} of tasks sent to the workers, {size_text(between)} "
+                             f"between workers, {size_text(returned)} of results back")
         return results
 
     @contextlib.contextmanager
@@ -625,8 +621,8 @@ def batch_job(spec_source: Path, compute: ComputeSection, system: str, method: s
     the walltime of ``compute.walltime`` or :func:`estimated_walltime`."""
     cores = submit_cores(compute, method, shape[1])
     steps, nlat, nlon = shape
-    why = (f"{steps} steps x {nlat * nlon} points ({_size(steps * nlat * nlon * itemsize)}), {method} solver: "
-           f"needs {_size(needed)}" + ("" if compute.walltime != "auto" else "; time limit estimated"))
+    why = (f"{steps} steps x {nlat * nlon} points ({size_text(steps * nlat * nlon * itemsize)}), {method} solver: "
+           f"needs {size_text(needed)}" + ("" if compute.walltime != "auto" else "; time limit estimated"))
     return BatchJob(system, spec_source, cores, _request(needed), walltime(compute, method, shape, count, itemsize,
                                                                             cores), why, overwrite)
 

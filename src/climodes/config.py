@@ -280,6 +280,13 @@ _FACTORS = {"b": 1, "kb": 1e3, "mb": 1e6, "gb": 1e9, "tb": 1e12, "kib": 2**10, "
             "tib": 2**40}
 
 
+def size_text(nbytes: float) -> str:
+    """A size in bytes as climodes' messages give it: in GB from 0.1 GB, else in MB (one decimal below 10 MB)."""
+    if nbytes >= 1e8:
+        return f"{nbytes / 1e9:.2f} GB"
+    return f"{nbytes / 1e6:.1f} MB" if nbytes < 1e7 else f"{nbytes / 1e6:.0f} MB"
+
+
 def memory_bytes(text: str) -> int:
     """Bytes in a size such as ``"4GB"`` (10^9) or ``"1.5GiB"`` (2^30)."""
     number, unit = _SIZE.match(text).groups()

@@ -426,7 +426,8 @@ def run(spec: RunSpec, say: Callable[[str], None] = lambda line: None, progress:
         results = results_dataset(modes, planned.opened, spec, extra)
         asked = f" ({spec.modes.count} asked, {kept} not null)" if kept < spec.modes.count else ""
         headline = (f"climodes: {kept} modes{asked} of {spec.input.variable} from "
-                    f"{inputs_count([f.path for f in planned.opened.files])}, {steps} time steps x {counts.used} points ({result.method.split(':')[0]} solver) "
+                    f"{inputs_count([f.path for f in planned.opened.files])}, {steps} time steps x {counts.used} points "
+                    f"({result.method.split(':')[0]} solver) "
                     f"-> {out}")
         table = variance_table(results)
         order = [f"read order: {reading.text(_passes(planned.plan.method))}"] if planned.plan.lat_rows else []
@@ -731,8 +732,8 @@ def project(results: str | Path | xr.Dataset, spec: RunSpec, say: Callable[[str]
                                     extra, time_bounds(field), _named(plan.source), trained)
         for line in notes:
             say(f"note: {line}")
-        headline = projection_headline(spec.input.variable, [f.path for f in opened.files], field.sizes["time"], ds.sizes["mode"],
-                                       plan.source, out)
+        headline = projection_headline(spec.input.variable, [f.path for f in opened.files], field.sizes["time"],
+                                       ds.sizes["mode"], plan.source, out)
         table = projection_table(ds)
         try:
             if stage is not None:

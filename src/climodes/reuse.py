@@ -50,6 +50,7 @@ import xarray as xr
 from climodes import __version__
 from climodes.blocks import field_blocks, flat, quietly, row_slices, step_squares, time_blocks, tree_sum
 from climodes.cluster import resident_bytes
+from climodes.config import size_text
 from climodes.diagnostics import unexplained_fractions
 from climodes.errors import UserError
 from climodes.grid import grid_coordinates, map_coordinates
@@ -339,10 +340,6 @@ class ProjectionOrder:
     piece: int = 0
 
 
-def _size(nbytes: float) -> str:
-    return f"{nbytes / 1e9:.2f} GB" if nbytes >= 1e8 else f"{nbytes / 1e6:.1f} MB"
-
-
 def plan_projection(shape: tuple[int, int, int], results: xr.Dataset, budget: int, in_use: int, workers: int,
                     storages: list[Storage], itemsize: int = 4, local: bool = True) -> ProjectionOrder:
     """The blocks to read a new ``(time, lat, lon)`` field of ``itemsize`` bytes a value in, within ``budget``
@@ -386,8 +383,8 @@ def plan_projection(shape: tuple[int, int, int], results: xr.Dataset, budget: in
                                        f"{-(-steps // size)} block(s) of {size} time steps, whole maps in the files' "
                                        "own order" + (f", {readers} at a time" if readers < workers else ""), readers)
         why = (f"{layout}: a block of {min(chunk, steps)} whole maps in float64, "
-               f"{_size(min(chunk, steps) * nlat * nlon * PROJECT_BYTES_PER_VALUE)}, does not fit compute.memory "
-               f"{_size(budget)} beside the rest of the plan")
+               f"{size_text(min(chunk, steps) * nlat * nlon * PROJECT_BYTES_PER_VALUE)}, does not fit compute.memory "
+               f"{size_text(budget)} beside the rest of the plan")
     slab = min(_slabs_in_time(storages), steps)
     if slab:
         read = slab * nlat * nlon * SLAB_BYTES_PER_VALUE * itemsize  # a slab as read
@@ -401,10 +398,10 @@ def plan_projection(shape: tuple[int, int, int], results: xr.Dataset, budget: in
                                    f"{-(-steps // slab)} slab(s) of {slab} time steps x every row"
                                    + (f", {readers} at a time" if readers < workers else "")
                                    + f", worked on {piece} step(s) at a time: each chunk of the files decompressed "
-                                   f"once ({layout}; a slab as read, {_size(read)}, fits compute.memory "
-                                   f"{_size(budget)})", readers, piece)
-        why = (f"{layout}: a slab of {slab} time steps x every row, {_size(read)} as read, does not fit "
-               f"compute.memory {_size(budget)} beside the rest of the plan, so each block of rows decompresses "
+                                   f"once ({layout}; a slab as read, {size_text(read)}, fits compute.memory "
+                                   f"{size_text(budget)})", readers, piece)
+        why = (f"{layout}: a slab of {slab} time steps x every row, {size_text(read)} as read, does not fit "
+               f"compute.memory {size_text(budget)} beside the rest of the plan, so each block of rows decompresses "
                "the chunks it meets")
     held = 4 * (workers + 3) * steps * (count + 1) * 8  # partial sums of the blocks' small products
     rows, _ = block_size(nlat, steps * nlon, fixed + held, PROJECT_BYTES_PER_VALUE, budget, in_use, workers, what)

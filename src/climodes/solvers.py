@@ -67,6 +67,7 @@ from climodes.blocks import (
     time_operator_transposed,
     tree_sum,
 )
+from climodes.config import size_text
 from climodes.errors import UserError
 from climodes.grid import grid_coordinates
 from climodes.prepare import PERIOD, Fitted, TimeSteps, fitted_variables, time_bounds
@@ -136,10 +137,6 @@ class SolverPlan:
     memory: int = 0
 
 
-def _size(nbytes: float) -> str:
-    return f"{nbytes / 1e9:.2f} GB" if nbytes >= 1e8 else f"{nbytes / 1e6:.0f} MB"
-
-
 def working_precision(dtype: np.dtype) -> np.dtype:
     """The randomized solver's working precision for a field of ``dtype``: float32 fields stay float32, wider
     ones are worked on in their own."""
@@ -175,22 +172,22 @@ def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: in
     gram_bytes = (workers + 3) * steps * steps * 8 + results_bytes
     rank = min(count + OVERSAMPLING, steps, points)
     randomized_bytes = 3 * points * rank * 8 + 2 * held * steps * rank * 8 + results_bytes
-    shape_text = f"{steps} steps x {points} points ({_size(steps * points * itemsize)} as float{8 * itemsize})"
+    shape_text = f"{steps} steps x {points} points ({size_text(steps * points * itemsize)} as float{8 * itemsize})"
 
     def streaming(method: str, why: str) -> SolverPlan:
         fixed = gram_bytes if method == "gram" else randomized_bytes
         per_value = BYTES_PER_BLOCK_VALUE[method] * (itemsize / 4 if method == "randomized" else 1)
         rows, need = block_size(nlat, steps * nlon, fixed, per_value, budget_given, in_use,
                                 workers, f"the {method} solver on {shape_text}", read_cache)
-        why += f"; {-(-nlat // rows)} block(s) of {rows} latitude rows within compute.memory {_size(budget_given)}"
+        why += f"; {-(-nlat // rows)} block(s) of {rows} latitude rows within compute.memory {size_text(budget_given)}"
         if method == "gram":  # and enough that auto, planning again with only this much, still takes gram
             need = max(need, 2 * gram_bytes)
         return SolverPlan(method, why, rows, int(np.ceil(in_use + need)))
 
     if method == "exact" or (method == "auto" and steps * points <= EXACT_MAX_VALUES and exact_bytes <= budget):
         if exact_bytes > budget:
-            raise UserError(f"modes.method: exact needs about {_size(exact_bytes + in_use)} for {shape_text}, more "
-                            f"than compute.memory ({_size(budget_given)}); use method auto or gram, or raise "
+            raise UserError(f"modes.method: exact needs about {size_text(exact_bytes + in_use)} for {shape_text}, more "
+                            f"than compute.memory ({size_text(budget_given)}); use method auto or gram, or raise "
                             "compute.memory")
         why = "; chosen in the config (modes.method)" if method == "exact" else " is small: the whole matrix fits in memory"
         return SolverPlan("exact", shape_text + why, memory=int(in_use + exact_bytes))
@@ -200,7 +197,7 @@ def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: in
         return streaming("randomized", f"{shape_text} is large in both dimensions")
     if gram_bytes <= budget / 2:
         with contextlib.suppress(UserError):  # no room for the Gram solver's blocks beside its matrices
-            return streaming("gram", f"{shape_text}; its {steps} x {steps} Gram matrix ({_size(steps**2 * 8)}) is small")
+            return streaming("gram", f"{shape_text}; its {steps} x {steps} Gram matrix ({size_text(steps**2 * 8)}) is small")
     return streaming("randomized", f"{shape_text}; the Gram solver's {steps} x {steps} matrices, maps and blocks "
                                    "take more room than compute.memory leaves")
 
@@ -229,9 +226,9 @@ def block_size(units: int, unit_values: int, fixed: float, bytes_per_value: floa
     per_unit = workers * bytes_per_value * unit_values
     if room < per_unit + held(1):
         need = in_use + LIBRARY_WORK + (fixed + per_unit + held(1)) / 0.7
-        step = 1e7 if need >= 1e8 else 1e6  # rounded up to what _size shows, so the advice is enough
-        raise UserError(f"compute.memory: {_size(budget)} is too small for {what}; give at least "
-                        f"{_size(math.ceil(need / step) * step)} (the process holds {_size(in_use)} before it reads)")
+        step = 1e7 if need >= 1e8 else 1e6  # rounded up to what size_text shows, so the advice is enough
+        raise UserError(f"compute.memory: {size_text(budget)} is too small for {what}; give at least "
+                        f"{size_text(math.ceil(need / step) * step)} (the process holds {size_text(in_use)} before it reads)")
     most = min(BLOCK_MAX_BYTES // (4 * unit_values), units // (BLOCKS_PER_WORKER * workers))
     size = max(1, int(min(room // per_unit, max(most, at_least))))
     while size > 1 and per_unit * size + held(size) > room:
