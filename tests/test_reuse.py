@@ -126,6 +126,20 @@ def test_the_fit_read_back_keeps_its_stored_precision(trained):
     np.testing.assert_array_equal(apply(block.copy(), fitted, keys), apply(block.copy(), wide, keys))
 
 
+def test_the_rerun_commands_name_absolute_paths(tmp_path, cli, trained, monkeypatch):
+    """The command a projection or reconstruction stores in ``history`` (CF conventions: the commands that
+    made the file) reruns from any folder, though it was given paths relative to the working folder."""
+    results, path, _, _ = trained("gram")
+    _project_config(tmp_path / "again", [path])
+    monkeypatch.chdir(tmp_path)
+    assert cli("project", "train/out", "again/run.yaml")[0] == 0
+    assert cli("reconstruct", "train/out", "--modes", "1-2", "-o", "rebuilt.nc")[0] == 0
+    projected = xr.open_dataset(tmp_path / "again" / "out" / "projection.nc").attrs["history"]
+    rebuilt = xr.open_dataset(tmp_path / "rebuilt.nc").attrs["history"]
+    assert projected.endswith(f"climodes project {results} {tmp_path / 'again' / 'run.yaml'}")
+    assert rebuilt.endswith(f"climodes reconstruct {results} --modes 1-2 -o {tmp_path / 'rebuilt.nc'}")
+
+
 def test_a_later_period_gives_the_planted_series(tmp_path, cli, trained):
     """A later period made of the same patterns with new series (and the seasonal cycle and trend going
     on): the pseudo-PCs correlate with the planted series above 0.99, and each step's congruence with a

@@ -727,7 +727,7 @@ def project(results: str | Path | xr.Dataset, spec: RunSpec, say: Callable[[str]
                          points=f"{int(used.sum())} grid points of the modes; {filled} missing values set to zero "
                                 "anomaly",
                          command=command or history("project", plan.source if isinstance(results, xr.Dataset)
-                                                    else results, spec.source))
+                                                    else os.path.abspath(results), spec.source))
             ds = projection_dataset(projection_variables(trained, products, squares, field["time"]), opened, spec,
                                     extra, time_bounds(field), _named(plan.source), trained)
         for line in notes:
@@ -769,7 +769,8 @@ def reconstruct(results: str | Path, modes: str, out: str | Path, anomalies: boo
     if out.suffix != ".nc":
         raise UserError(f"-o {out}: give a NetCDF file name ending in .nc")
     with open_results(source) as trained:
-        command = history("reconstruct", results, "--modes", modes, "-o", out, *(["--anomalies"] * anomalies))
+        command = history("reconstruct", os.path.abspath(results), "--modes", modes, "-o", os.path.abspath(out),
+                          *(["--anomalies"] * anomalies))
         try:
             ds, which = rebuilt(trained, source, modes, anomalies, command, memory)
         except UserError as err:

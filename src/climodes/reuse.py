@@ -503,5 +503,6 @@ def projection_variables(results: xr.Dataset, products: np.ndarray, squares: np.
 
 
 def history(*words: str | Path) -> str:
-    """The command line, quoted for a shell: ``climodes project results/run other.yaml``."""
+    """The command line, quoted for a shell: ``climodes project /data/results/run /data/other.yaml`` (callers give
+    absolute paths, so that it reruns from any folder)."""
     return shlex.join(["climodes", *map(str, words)])
