@@ -168,6 +168,19 @@ def test_slabs_are_planned_where_they_fit_and_rows_where_not():
     assert _plan(least + 1e3, local=False).readers == 0  # a cluster's workers each read one: 2 do not fit
 
 
+def test_one_slab_is_read_by_one_reader_with_all_the_room():
+    """A field of one slab has nothing for a second reader: the plan gives the one reader the room two
+    would share (its pieces grow with the budget, never shrink) and does not say "1 at a time"."""
+    results = xr.Dataset(coords={"mode": [1, 2, 3]})
+    storage = Storage((144, 5, 9), True, (25, 36), steps=144, cached=True)
+    pieces = []
+    for budget in (3.2e8, 3.4e8, 3.6e8, 1e9):
+        plan = plan_projection((144, 25, 36), results, int(budget), int(2e8), 2, [storage], 4)
+        assert plan.readers == 1 and plan.text.startswith("1 slab(s) of 144 time steps x every row, worked on")
+        pieces.append(plan.piece)
+    assert pieces == sorted(pieces) and pieces[-1] == 144
+
+
 def test_uncompressed_tiles_are_read_in_rows_saying_why():
     """Nothing to decompress: a block of rows reads its own part of each tile (HDF5 reads the part)."""
     results = xr.Dataset(coords={"mode": [1, 2, 3]})

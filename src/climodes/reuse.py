@@ -388,21 +388,23 @@ def plan_projection(shape: tuple[int, int, int], results: xr.Dataset, budget: in
     slab = min(_slabs_in_time(storages), steps)
     if slab:
         read = slab * nlat * nlon * SLAB_BYTES_PER_VALUE * itemsize  # a slab as read
-        for readers in choices:
+        slabs = -(-steps // slab)
+        for readers in sorted({min(r, slabs) for r in choices}, reverse=True):  # no more readers than slabs
             try:
                 piece, _ = block_size(slab, nlat * nlon, fixed + held + readers * read, PROJECT_BYTES_PER_VALUE,
                                       budget, in_use, readers, what, at_least=slab)
             except UserError:
                 continue
             return ProjectionOrder({"time": slab, "lat": -1, "lon": -1},
-                                   f"{-(-steps // slab)} slab(s) of {slab} time steps x every row"
-                                   + (f", {readers} at a time" if readers < workers else "")
+                                   f"{slabs} slab(s) of {slab} time steps x every row"
+                                   + (f", {readers} at a time" if readers < min(workers, slabs) else "")
                                    + f", worked on {piece} step(s) at a time: each chunk of the files decompressed "
                                    f"once ({layout}; a slab as read, {size_text(read)}, fits compute.memory "
                                    f"{size_text(budget)})", readers, piece)
         why = (f"{layout}: a slab of {slab} time steps x every row, {size_text(read)} as read, does not fit "
-               f"compute.memory {size_text(budget)} beside the rest of the plan, so each block of rows decompresses "
-               "the chunks it meets")
+               f"compute.memory {size_text(budget)} beside what the process holds before it reads "
+               f"({size_text(in_use)}: the interpreter, its libraries, the results and their fitted preparation) "
+               "and the rest of the plan, so each block of rows decompresses the chunks it meets")
     held = 4 * (workers + 3) * steps * (count + 1) * 8  # partial sums of the blocks' small products
     rows, _ = block_size(nlat, steps * nlon, fixed + held, PROJECT_BYTES_PER_VALUE, budget, in_use, workers, what)
     return ProjectionOrder({"time": -1, "lat": rows, "lon": -1},
