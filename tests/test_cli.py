@@ -673,6 +673,12 @@ def test_the_template_is_a_valid_config_once_its_two_keys_are_filled(tmp_path, s
 
     assert load_spec(tmp_path / "mine.yaml").to_yaml() == load_spec(minimal).to_yaml()  # every default, as it is
     assert all("#" in line for line in out.splitlines() if line.startswith("  "))  # every key says what it means
+    (tmp_path / "unfilled.yaml").write_text(out)  # checked before it is filled in: both keys named, one line each
+    code, _, err = cli("check", tmp_path / "unfilled.yaml")
+    lines = err.strip().splitlines()
+    assert code == 2 and len(lines) == 2 and all("still REQUIRED, as `climodes template` left it; fill it in" in line
+                                                  for line in lines), err
+    assert "input.paths:" in lines[0] and "input.variable:" in lines[1] and "no such file" not in err
 
 
 def test_a_reader_that_goes_away_is_no_error(monkeypatch, capsys):

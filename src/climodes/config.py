@@ -684,6 +684,10 @@ def _validated(data: Any, source: Path, where: str, lines: dict | None, problems
             if key not in keys:
                 problems.append(f"{key_at}: {name}.{shortened(str(key))}: unknown key{_suggest(key, keys)}")
                 continue
+            if value == UNFILLED or value == [UNFILLED]:
+                problems.append(f"{key_at}: {name}.{key}: still {UNFILLED}, as `climodes template` left it; fill it "
+                                f"in ({keys[key].metadata['doc']})")
+                continue
             try:
                 values[key] = keys[key].metadata["check"](value)
             except ValueError as err:
@@ -713,6 +717,9 @@ def _by_line(problems: list[str]) -> list[str]:
     return sorted(problems, key=line)
 
 
+UNFILLED = "REQUIRED"  # what the template writes for a key without a default
+
+
 def template() -> str:
     """A config with every key at its default, each with what it means: a start for a new run.
 
@@ -728,7 +735,7 @@ def template() -> str:
                                              else f.default_factory())
             if dataclasses.is_dataclass(default):
                 default = dataclasses.asdict(default)
-            value = "REQUIRED" if required else yaml.safe_dump(default, default_flow_style=True, width=10**6).strip()
+            value = UNFILLED if required else yaml.safe_dump(default, default_flow_style=True, width=10**6).strip()
             value = value.removesuffix("\n...").removesuffix(" ...")
             lines.append(f"  {f.name}: {value}  # {f.metadata['doc']}")
     return "\n".join(lines) + "\n"
