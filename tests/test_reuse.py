@@ -100,6 +100,10 @@ def test_the_training_field_projects_onto_its_own_pcs(tmp_path, cli, trained, me
     assert out.startswith("climodes: projected tas from 1 file(s), 240 time steps, onto the 3 modes of")
     projection = xr.open_dataset(tmp_path / "again" / "out" / "projection.nc")
     modes = xr.open_dataset(results / "modes.nc")
+    log = (tmp_path / "again" / "out" / "projection.log").read_text()
+    for text in (projection.attrs["climodes_config"], log):  # the config as used: not the sections it ignored
+        assert "detrend" not in text and "count: 7" not in text and "input:" in text
+        assert "# prepare, modes: those of the run whose modes are projected onto" in text
     np.testing.assert_allclose(projection["pc"].values, modes["pc"].values, rtol=0, atol=atol)
     np.testing.assert_allclose(projection["unexplained_fraction"].values, modes["unexplained_fraction"].values,
                                rtol=0, atol=10 * atol)

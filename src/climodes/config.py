@@ -463,15 +463,22 @@ class RunSpec:
     written: dict[tuple[str, str], tuple[Any, Any]] = field(default_factory=dict, compare=False)
     given: tuple[str, ...] = field(default=(), compare=False)  # the sections the config wrote (the rest: defaults)
 
-    def to_yaml(self) -> str:
-        """The configuration with every default filled in, as YAML text (what ``climodes check`` prints).
+    def projection_yaml(self) -> str:
+        """The sections a projection uses, as YAML text: its prepare and modes are those of the run whose
+        modes it projects onto (that run's modes.nc keeps them), whatever this config says."""
+        return (self.to_yaml(("input", "select", "compute", "output"))
+                + "# prepare, modes: those of the run whose modes are projected onto (climodes_results)\n")
+
+    def to_yaml(self, sections: tuple[str, ...] | None = None) -> str:
+        """The configuration with every default filled in, as YAML text (what ``climodes check`` prints): all
+        its sections, or those named.
 
         Paths appear as the config wrote them (relative ones are read from the config's folder), so the
         text does not depend on where the config is kept.
         """
-        body = {name: dataclasses.asdict(getattr(self, name)) for name in SECTIONS}
+        body = {name: dataclasses.asdict(getattr(self, name)) for name in sections or SECTIONS}
         for (section, key), (as_written, absolute) in self.written.items():
-            if body[section][key] == absolute:  # not replaced since the config was read
+            if section in body and body[section][key] == absolute:  # not replaced since the config was read
                 body[section][key] = as_written
         return yaml.safe_dump(body, sort_keys=False, default_flow_style=None, width=100)
 

@@ -167,7 +167,7 @@ def projection_dataset(variables: xr.Dataset, opened: OpenedField, spec: RunSpec
             ds[name].attrs["cell_methods"] = "time: mean"
     if opened.names["time"] != "time":
         ds = ds.rename({"time": opened.names["time"]})
-    made = provenance(spec, opened, extra)
+    made = provenance(spec, opened, extra, spec.projection_yaml())
     ds.attrs = {
         **made,
         "title": f"{spec.input.variable} projected onto the modes of variability of {results}",
@@ -179,9 +179,10 @@ def projection_dataset(variables: xr.Dataset, opened: OpenedField, spec: RunSpec
     return ds
 
 
-def provenance(spec: RunSpec, opened: OpenedField, extra: dict) -> dict:
-    """Global attributes that say where the results came from and how to make them again."""
-    config_text = spec.to_yaml()
+def provenance(spec: RunSpec, opened: OpenedField, extra: dict, config_text: str | None = None) -> dict:
+    """Global attributes that say where the results came from and how to make them again (``config_text``:
+    the config as it was used, by default the whole of ``spec``)."""
+    config_text = config_text or spec.to_yaml()
     now = dt.datetime.now(dt.timezone.utc).replace(microsecond=0).isoformat()
     files = "\n".join(
         f"{f.path} size={f.size} modified="

@@ -740,7 +740,7 @@ def project(results: str | Path | xr.Dataset, spec: RunSpec, say: Callable[[str]
                 write_netcdf(ds, stage / PROJECTION_FILE, opened.time_encoding)
                 (stage / "projection.log").write_text(
                     run_log(headline, table, [f"read order: {plan.order.text}", f"compute: {session.description}"],
-                            notes, spec.to_yaml()),
+                            notes, spec.projection_yaml()),
                     encoding="utf-8")
         except OSError as err:
             raise _cannot_write(spec, err) from None
