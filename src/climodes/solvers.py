@@ -174,15 +174,16 @@ def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: in
     randomized_bytes = 3 * points * rank * 8 + 2 * held * steps * rank * 8 + results_bytes
     shape_text = f"{steps} steps x {points} points ({size_text(steps * points * itemsize)} as float{8 * itemsize})"
 
-    def streaming(method: str, why: str) -> SolverPlan:
-        fixed = gram_bytes if method == "gram" else randomized_bytes
-        per_value = BYTES_PER_BLOCK_VALUE[method] * (itemsize / 4 if method == "randomized" else 1)
+    def streaming(chosen: str, why: str) -> SolverPlan:
+        fixed = gram_bytes if chosen == "gram" else randomized_bytes
+        per_value = BYTES_PER_BLOCK_VALUE[chosen] * (itemsize / 4 if chosen == "randomized" else 1)
+        solver = f"the {chosen} solver" + (" (modes.method auto's choice)" if method == "auto" else "")
         rows, need = block_size(nlat, steps * nlon, fixed, per_value, budget_given, in_use,
-                                workers, f"the {method} solver on {shape_text}", read_cache)
+                                workers, f"{solver} on {shape_text}", read_cache)
         why += f"; {-(-nlat // rows)} block(s) of {rows} latitude rows within compute.memory {size_text(budget_given)}"
-        if method == "gram":  # and enough that auto, planning again with only this much, still takes gram
+        if chosen == "gram":  # and enough that auto, planning again with only this much, still takes gram
             need = max(need, 2 * gram_bytes)
-        return SolverPlan(method, why, rows, int(np.ceil(in_use + need)))
+        return SolverPlan(chosen, why, rows, int(np.ceil(in_use + need)))
 
     if method == "exact" or (method == "auto" and steps * points <= EXACT_MAX_VALUES and exact_bytes <= budget):
         if exact_bytes > budget:
