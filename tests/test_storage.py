@@ -420,6 +420,37 @@ def test_a_damaged_compressed_file_is_one_line_naming_it(tmp_path, cli, values):
     assert sorted(p.name for p in tmp_path.iterdir()) == ["part_a.nc", "part_b.nc", "run.yaml"]
 
 
+
+def test_the_damaged_file_is_named_while_other_blocks_are_still_reading(tmp_path):
+    """The failing block's neighbours are still inside the HDF5 library (threads) when the damaged file is
+    looked for; the library is not thread-safe (HDF5's documentation: thread-safety only in a build made
+    for it), so the search must wait its turn: without that, runs crashed (SIGSEGV) or named an intact
+    file.  Four files of tiles and per-step chunks, the third damaged, read by 2 threads, run 3 times in
+    their own processes (a crash must not take the suite with it)."""
+    import subprocess
+    import sys
+
+    lat, lon = np.linspace(-59, 59, 60), np.arange(0, 360, 3.0)
+    time = xr.date_range("2000-01-01", periods=728, freq="D")
+    noisy = np.random.default_rng(5).normal(size=(728, 60, 120)).astype(np.float32)
+    whole = field_dataset(noisy, lat, lon, time=time)
+    chunks = [(91, 15, 30), (1, 60, 120), (30, 12, 24), (182, 15, 30)]
+    for k, chunk in enumerate(chunks):
+        whole.isel(time=slice(182 * k, 182 * (k + 1))).to_netcdf(
+            tmp_path / f"part_{k}.nc", encoding={"tas": {"zlib": True, "chunksizes": chunk}})
+    damaged = tmp_path / "part_2.nc"
+    raw = bytearray(damaged.read_bytes())
+    raw[len(raw) // 2:len(raw) // 2 + 3000] = bytes(3000)
+    damaged.write_bytes(bytes(raw))
+    config = write_config(tmp_path, [tmp_path / "part_*.nc"], modes={"count": 4, "method": "gram"},
+                          compute={"memory": "1GB", "workers": 2})
+    for _ in range(3):
+        run = subprocess.run([sys.executable, "-m", "climodes", "run", str(config)], capture_output=True, text=True,
+                             timeout=300)
+        assert run.returncode == 2, run.stderr
+        assert f"error: {damaged}: a chunk of tas cannot be decoded" in run.stderr, run.stderr
+        assert sorted(p.name for p in tmp_path.iterdir()) == [f"part_{k}.nc" for k in range(4)] + ["run.yaml"]
+
 # --- projections read in the files' own order
 
 
