@@ -241,6 +241,19 @@ def test_auto_takes_the_randomized_solver_where_the_gram_one_has_no_room():
     assert "large in both dimensions" in plan_solver((3650, 361, 720), 10, "auto", int(2e9), 2).reason
 
 
+def test_the_exact_plan_holds_what_the_exact_solver_was_measured_to_use():
+    """Measured on Linux (peak resident memory of `climodes run` with modes.method exact, less what the
+    process held before reading): 375 MB for 730 steps x 7200 points, 208 MB for 365 x 7200; the plan, with
+    the 0.1 GB every plan keeps for the libraries, must hold at least that, and refuse a budget below it."""
+    from climodes.solvers import LIBRARY_WORK
+
+    for shape, measured in (((730, 60, 120), 375e6), ((365, 60, 120), 208e6)):
+        plan = plan_solver(shape, 4, "exact", int(4e9), 2, in_use=int(1.7e8))
+        assert plan.memory >= 1.7e8 + LIBRARY_WORK + measured
+    with pytest.raises(UserError, match="modes.method: exact needs about"):
+        plan_solver((730, 60, 120), 4, "exact", int(1.7e8 + LIBRARY_WORK + 375e6), 2, in_use=int(1.7e8))
+
+
 def test_the_budget_is_for_the_whole_process():
     """What the process holds already (the interpreter and its libraries) is not there for blocks: our own
     contract (README, compute.memory), checked here on the plan's arithmetic."""

@@ -78,6 +78,10 @@ POWER_ITERATIONS = 3  # at most; the randomized solver stops earlier once conver
 RITZ_TOLERANCE = 1e-4  # residual of a kept mode, relative to its eigenvalue (see _converged)
 NULL_TOLERANCE = 1e-13  # an eigenvalue below this fraction of the leading one is null (see _drop_null_modes)
 EXACT_MAX_VALUES = 5_000_000  # time steps x points up to which the exact solver is chosen
+# bytes a value of the field costs the exact solver: its float64 copies as prepared and weighted, the SVD's
+# copy, factors and workspace, the diagnostics after it (measured, peak resident memory beyond what the
+# process held before reading: 71 and 79 bytes a value for 730 and 365 steps x 7200 points)
+EXACT_BYTES_PER_VALUE = 80
 GRAM_MAX_STEPS = 2_000  # the Gram product costs steps^2 x points: beyond this, randomized passes are cheaper
 BLOCK_MAX_BYTES = 128e6  # float32 bytes of one block as read
 LIBRARY_WORK = 100e6  # bytes kept beside every plan for what the libraries allocate while a run reads and writes
@@ -165,7 +169,7 @@ def plan_solver(shape: tuple[int, int, int], count: int, method: str, budget: in
     # the maps, as solved, signed and written; the fitted preparation, held from the first pass on (in the
     # working precision: the field's own for the randomized solver)
     results_bytes = 3 * points * count * 8 + points * fitted_per_point * (itemsize if method == "randomized" else 8)
-    exact_bytes = 3 * steps * points * 8 + steps * min(steps, points) * 8 + read_cache(nlat)
+    exact_bytes = EXACT_BYTES_PER_VALUE * steps * points + read_cache(nlat) + LIBRARY_WORK
     held = workers + 3 + int(np.ceil(np.log2(max(nlat, 2))))  # partial sums alive in the pairwise tree, at most
     # time x time matrices: the chain's sum, each worker's block product, and the eigendecomposition's copy
     # and vectors (see climodes.blocks.chained_sum)
