@@ -111,25 +111,6 @@ def test_the_training_field_projects_onto_its_own_pcs(tmp_path, cli, trained, me
         ".climodes-results.json", "projection.log", "projection.nc"]
 
 
-def test_the_fit_read_back_keeps_its_stored_precision(trained):
-    """The randomized solver keeps a float32 field's fit in float32: read back for a projection it stays
-    float32 (a float64 copy doubled a daily climatology's memory: a 1-degree one is 0.1 GB more), and
-    applies to float64 blocks exactly as its float64 copy does (numpy's type promotion)."""
-    from climodes.prepare import apply, fitted_preparation, keys_of
-    from climodes.results import open_results
-
-    results_dir, path, values, _ = trained("randomized")
-    results = open_results(results_dir)
-    fitted = fitted_preparation(results)
-    climatology = fitted.quantities["climatology"]
-    assert climatology.dtype == np.float32 and results["fitted_climatology"].dtype == np.float32
-    field = xr.open_dataset(path)["tas"]
-    keys = keys_of(field["time"], fitted)
-    wide = type(fitted)(fitted.preparation, {k: v.astype(np.float64) for k, v in fitted.quantities.items()})
-    block = values.astype(np.float64)
-    np.testing.assert_array_equal(apply(block.copy(), fitted, keys), apply(block.copy(), wide, keys))
-
-
 def test_the_rerun_commands_name_absolute_paths(tmp_path, cli, trained, monkeypatch):
     """The command a projection or reconstruction stores in ``history`` (CF conventions: the commands that
     made the file) reruns from any folder, though it was given paths relative to the working folder."""

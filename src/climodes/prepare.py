@@ -807,11 +807,7 @@ def fitted_preparation(results: xr.Dataset) -> Fitted:
                         "there; the file was changed after climodes wrote it: run climodes again")
 
     def read(name: str, *first: str) -> np.ndarray:
-        """The values as stored, float32 or float64: xarray keeps what it read, so a float64 copy of a float32
-        climatology would hold it twice (a daily one of a 1-degree grid: 0.1 GB more); the steps apply
-        them to float64 blocks, which numpy's promotion keeps exact."""
-        values = results[name].transpose(*first, *space).values
-        return np.asarray(values, dtype=np.result_type(values.dtype, np.float32))
+        return np.asarray(results[name].transpose(*first, *space).values, dtype=np.float64)
 
     quantities = {"offset": read("fitted_offset")}
     rule, keys, origin = "none", (0,), ""
