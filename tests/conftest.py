@@ -43,6 +43,22 @@ def red_field(shape: tuple[int, int, int], seed: int = 0) -> np.ndarray:
     return out
 
 
+def tiled_half_degree_files(folder: Path, steps: int, parts: int, chunks: tuple[int, int, int]) -> list[Path]:
+    """A big monthly field of noise about 280 K on a 0.5 degree grid, ``steps`` long in ``parts`` files
+    compressed in tiles of ``chunks`` (time, lat, lon), written a file at a time."""
+    lat, lon = np.linspace(-89.5, 89.5, 180), np.arange(0, 360, 0.5)
+    rng = np.random.default_rng(0)
+    paths = []
+    for part in range(parts):
+        values = (280 + rng.standard_normal((steps // parts, lat.size, lon.size), dtype=np.float32)).astype(np.float32)
+        time = xr.date_range(f"{1900 + -(-steps // parts // 12) * part}-01-01", periods=steps // parts, freq="MS")
+        paths.append(folder / f"tiles{part}.nc")
+        field_dataset(values, lat, lon, time=time).to_netcdf(
+            paths[-1], encoding={"tas": {"zlib": True, "complevel": 1, "chunksizes": chunks}})
+        del values
+    return paths
+
+
 def write_config(folder: Path, files, variable: str = "tas", **sections) -> Path:
     """Write a config for ``files`` with any section overrides; return its path."""
     body = {"input": {"paths": [str(f) for f in files], "variable": variable},

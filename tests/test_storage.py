@@ -20,7 +20,7 @@ from eofs.standard import Eof
 import climodes.pipeline
 from climodes.solvers import sign_rule
 from climodes.storage import MEMORY, ROWS, TIME, Reading, Storage, plan_reading, storage_of
-from conftest import field_dataset, red_field, write_config
+from conftest import field_dataset, red_field, tiled_half_degree_files, write_config
 
 LAYOUTS = {  # name: NetCDF encoding of the field
     "steps": {"zlib": True, "complevel": 4, "shuffle": True, "chunksizes": (1, 25, 36)},
@@ -568,16 +568,7 @@ def test_a_tiled_compressed_field_is_read_in_rows_within_its_memory(tmp_path):
     import subprocess
     import sys
 
-    steps, lat, lon = 1000, np.linspace(-89.5, 89.5, 180), np.arange(0, 360, 0.5)
-    rng = np.random.default_rng(0)
-    paths = []
-    for part in range(4):
-        values = (280 + rng.standard_normal((steps // 4, lat.size, lon.size), dtype=np.float32)).astype(np.float32)
-        time = xr.date_range(f"{1900 + 25 * part}-01-01", periods=steps // 4, freq="MS")
-        paths.append(tmp_path / f"tiles{part}.nc")
-        field_dataset(values, lat, lon, time=time).to_netcdf(
-            paths[-1], encoding={"tas": {"zlib": True, "complevel": 1, "chunksizes": (125, 4, 90)}})
-        del values
+    paths = tiled_half_degree_files(tmp_path, 1000, 4, (125, 4, 90))
     config = write_config(tmp_path, paths, modes={"count": 3, "method": "randomized"}, compute={"memory": "500MB"})
     peak = ("import resource, subprocess, sys; done = subprocess.run(sys.argv[1:]); "
             "print(done.returncode, resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss * 1024)")

@@ -20,7 +20,7 @@ import climodes.reuse
 from climodes.reuse import PROJECT_BYTES_PER_VALUE, plan_projection
 from climodes.solvers import LIBRARY_WORK
 from climodes.storage import SLAB_BYTES_PER_VALUE, Storage
-from conftest import red_field, write_config
+from conftest import red_field, tiled_half_degree_files, write_config
 
 STEPS, LAT, LON = 96, np.linspace(-60, 60, 25), np.arange(0, 360, 10.0)
 TILES = (24, 5, 9)  # 4 slabs of 24 months, each 5 x 4 tiles of 5 rows x 9 columns
@@ -199,18 +199,7 @@ def test_a_big_tiled_field_projects_in_slabs_within_its_memory(tmp_path):
     import subprocess
     import sys
 
-    from conftest import field_dataset
-
-    steps, lat, lon = 480, np.linspace(-89.5, 89.5, 180), np.arange(0, 360, 0.5)
-    rng = np.random.default_rng(0)
-    paths = []
-    for part in range(2):
-        values = (280 + rng.standard_normal((steps // 2, lat.size, lon.size), dtype=np.float32)).astype(np.float32)
-        time = xr.date_range(f"{1900 + 20 * part}-01-01", periods=steps // 2, freq="MS")
-        paths.append(tmp_path / f"tiles{part}.nc")
-        field_dataset(values, lat, lon, time=time).to_netcdf(
-            paths[-1], encoding={"tas": {"zlib": True, "complevel": 1, "chunksizes": (60, 20, 90)}})
-        del values
+    paths = tiled_half_degree_files(tmp_path, 480, 2, (60, 20, 90))
     config = write_config(tmp_path, paths, modes={"count": 3, "method": "randomized"}, compute={"memory": "600MB"})
     other = tmp_path / "other"
     other.mkdir()
