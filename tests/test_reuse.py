@@ -125,6 +125,24 @@ def test_the_rerun_commands_name_absolute_paths(tmp_path, cli, trained, monkeypa
     assert rebuilt.endswith(f"climodes reconstruct {results} --modes 1-2 -o {tmp_path / 'rebuilt.nc'}")
 
 
+def test_spellings_of_one_unit_are_one_unit(tmp_path, cli, trained):
+    """``kelvin`` and ``K``, ``degree_Celsius`` and ``degC`` name the same values (UDUNITS-2's names and
+    symbols, from memory): a projection of the training field written with ``units: kelvin`` gives its PCs;
+    degrees Celsius against kelvin are still refused."""
+    from climodes.fields import units_key
+
+    assert units_key("kelvin") == units_key(" K") == units_key("degK") and units_key("degC") != units_key("K")
+    assert units_key("degrees Celsius") == units_key("degree_Celsius") == "degC"
+    results, _, values, _ = trained("gram")
+    path = _write(tmp_path / "spelled", values, xr.date_range("1980-01-01", periods=240, freq="MS"), units="kelvin")
+    config = _project_config(tmp_path / "spelled", [path])
+    code, _, err = cli("project", results, config)
+    assert code == 0, err
+    projection = xr.open_dataset(tmp_path / "spelled" / "out" / "projection.nc")
+    np.testing.assert_allclose(projection["pc"].values, xr.open_dataset(results / "modes.nc")["pc"].values,
+                               rtol=0, atol=1e-6)
+
+
 def test_a_later_period_gives_the_planted_series(tmp_path, cli, trained):
     """A later period made of the same patterns with new series (and the seasonal cycle and trend going
     on): the pseudo-PCs correlate with the planted series above 0.99, and each step's congruence with a

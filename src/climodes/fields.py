@@ -522,6 +522,26 @@ def _grid_mapping(da: xr.DataArray, ds: xr.Dataset) -> xr.DataArray | None:
     return None
 
 
+# spellings of one unit (UDUNITS-2's names, symbols and aliases for the temperatures archives use, from
+# memory): compared as one, since they name the same values
+_SAME_UNIT = {spelling: unit for unit, spellings in {
+    "K": ("k", "kelvin", "kelvins", "degk", "deg_k", "degreek", "degree_k", "degrees_k", "degree_kelvin",
+          "degrees_kelvin"),
+    "degC": ("degc", "deg_c", "celsius", "degreec", "degree_c", "degrees_c", "degree_celsius", "degrees_celsius",
+             "°c"),
+}.items() for spelling in spellings}
+
+
+def units_key(units: object) -> str | None:
+    """The units attribute as compared between files and against a training's: stripped, and a known
+    spelling of kelvin or degrees Celsius as one (``kelvin`` and ``K`` name the same values); ``None``
+    without units."""
+    if units is None:
+        return None
+    text = str(units).strip()
+    return _SAME_UNIT.get(text.lower().replace(" ", "_"), text)
+
+
 def _check_agreement(first: tuple, other: tuple, variable: str) -> None:
     """Refuse files whose calendars or units differ from those of the first file (both named)."""
     (path_a, a, encoding_a, *_), (path_b, b, encoding_b, *_) = first, other
@@ -538,7 +558,7 @@ def _check_agreement(first: tuple, other: tuple, variable: str) -> None:
                         f"those of {path_a} (from {_date(a['time'].values[0])}) in calendar {calendar_a!r}: dates "
                         "before 1582-10-15 or outside 1678-2262 are stored differently; analyse them separately")
     units_a, units_b = (str(d.attrs["units"]).strip() if "units" in d.attrs else None for d in (a, b))
-    if units_a != units_b:
+    if units_key(units_a) != units_key(units_b):
         said_a = f"in {units_a!r}" if units_a else "without units"
         said_b = f"is in {units_b!r}" if units_b else "has no units"
         raise UserError(f"{path_b}: {variable} {said_b}, but {said_a} in {path_a}; give every file the same "

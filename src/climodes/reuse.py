@@ -53,6 +53,7 @@ from climodes.cluster import resident_bytes
 from climodes.config import size_text
 from climodes.diagnostics import unexplained_fractions
 from climodes.errors import UserError
+from climodes.fields import units_key
 from climodes.grid import grid_coordinates, map_coordinates
 from climodes.prepare import (
     Fitted,
@@ -257,7 +258,7 @@ def check_same_units(field: xr.DataArray, results: xr.Dataset, variable: str, so
     """Refuse a field in other units than the training's (as written in the files)."""
     given = field.attrs.get("units")
     trained = fitted_units(results)
-    if (str(given).strip() if given is not None else None) != (str(trained).strip() if trained is not None else None):
+    if units_key(given) != units_key(trained):
         said = f"in {given!r}" if given is not None else "without units"
         fitted = f"in {trained!r}" if trained is not None else "without units"
         raise UserError(f"input.variable: {variable} is {said}, but the modes in {source} were computed from a field "
