@@ -449,3 +449,17 @@ def test_centring_sets_gaps_to_zero_anomaly_in_a_new_array(gap):
                                rtol=1e-6)
     np.testing.assert_array_equal(values, before)
     assert centred.dtype == np.float32 and not np.shares_memory(centred, values)
+
+
+def test_a_calendar_refusal_names_the_calendar_the_file_states():
+    """A field whose file says ``calendar = "standard"`` decodes to numpy dates, which xarray calls
+    proleptic_gregorian (the two differ only before 1582-10-15, CF conventions 4.4.1); refused against a
+    noleap fit, the message names the calendar as the file states it."""
+    from climodes.prepare import Fitted, Preparation, keys_of
+
+    time = xr.DataArray(pd.date_range("2000-01-01", periods=24, freq="MS"), dims="time", name="time")
+    time.encoding["calendar"] = "standard"
+    fitted = Fitted(Preparation(("climatology",), "month", tuple(range(1, 13)), "", "noleap"), {})
+    with pytest.raises(UserError, match="the field's calendar is standard, but the preparation was fitted on the "
+                                        "noleap calendar"):
+        keys_of(time, fitted)

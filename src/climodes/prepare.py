@@ -586,6 +586,7 @@ def keys_of(time: xr.DataArray, fitted: Fitted) -> TimeKeys:
     prep = fitted.preparation
     calendar = time.dt.calendar
     if prep.calendar and _SAME_CALENDAR.get(calendar, calendar) != _SAME_CALENDAR.get(prep.calendar, prep.calendar):
+        calendar = _stated_calendar(time)  # as the file says it
         raise UserError(f"input.paths: the field's calendar is {calendar}, but the preparation was fitted on the "
                         f"{prep.calendar} calendar; give the field on the {prep.calendar} calendar")
     if prep.key_rule not in ("mean", "none") and time.size > 1 and (rule := key_rule(time)) != prep.key_rule:
