@@ -93,16 +93,18 @@ def first_damaged(paths: list[str], variable: str) -> tuple[str, str] | None:
 
     Each file is read through once, in slabs of whole chunks along its first dimension of about 64 MiB:
     meant for after a read has failed, to name the file.  The HDF5 library is not thread-safe, and the
-    blocks read beside the one that failed may still be reading: each file is read holding the locks
-    xarray's reads take (without them, two threads in the library crashed or gave the wrong file).
+    blocks read beside the one that failed may still be reading: each file is read holding the HDF5 lock
+    that every xarray read of a NetCDF-4 file takes too (without it, two threads in the library crashed or
+    gave the wrong file).  That lock alone: holding xarray's other one too, taken in another order by a
+    read waiting for this one, deadlocked.
     """
     import netCDF4
-    from xarray.backends.locks import HDF5_LOCK, NETCDFC_LOCK
+    from xarray.backends.locks import HDF5_LOCK
 
     for path in paths:
         where = "on opening"
         try:
-            with NETCDFC_LOCK, HDF5_LOCK, netCDF4.Dataset(path) as nc:
+            with HDF5_LOCK, netCDF4.Dataset(path) as nc:
                 var = nc.variables.get(variable)
                 if var is None or not var.shape:
                     continue
