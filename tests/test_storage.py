@@ -263,7 +263,7 @@ def test_a_zarr_store_gives_the_modes_of_the_netcdf_files(tmp_path, cli, files):
         config = write_config(folder, paths, modes={"count": 3, "method": "gram"}, prepare={"max_missing": 0.2})
         code, out, err = cli("run", config)
         assert code == 0 and "Warning" not in err, err
-        assert f"of tas from {counted}, " in out + err  # a store of many files is one input
+        assert f"of tas from {counted}, " in out + err  # a store of many files is one input (Zarr's own model)
         runs[name] = xr.open_dataset(folder / "out" / "modes.nc")
     _same(runs["zarr"], runs["netcdf"], 1e-8)
     assert "field.zarr" in runs["zarr"].attrs["climodes_input_files"]

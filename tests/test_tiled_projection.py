@@ -170,7 +170,8 @@ def test_slabs_are_planned_where_they_fit_and_rows_where_not():
 
 def test_one_slab_is_read_by_one_reader_with_all_the_room():
     """A field of one slab has nothing for a second reader: the plan gives the one reader the room two
-    would share (its pieces grow with the budget, never shrink) and does not say "1 at a time"."""
+    would share (its pieces grow with the budget, never shrink) and does not say "1 at a time" (common
+    practice: more memory never makes a plan do less at once)."""
     results = xr.Dataset(coords={"mode": [1, 2, 3]})
     storage = Storage((144, 5, 9), True, (25, 36), steps=144, cached=True)
     pieces = []
