@@ -568,7 +568,8 @@ def _check_agreement(first: tuple, other: tuple, variable: str) -> None:
 def _standard_piece(da: xr.DataArray, ds: xr.Dataset, axes: dict[str, str], grid: tuple[str, str] | None,
                     spec: InputSection, choice: SelectSection | None, where: str):
     """One file's field (or an in-memory one) checked and put in the standard form: dimensions named
-    ``time``, ``lat``, ``lon`` (in the file's order: :func:`rechunked` puts them in that one), an extra axis reduced, a curvilinear grid's coordinates renamed, cell areas attached,
+    ``time``, ``lat``, ``lon`` (in the file's order: :func:`rechunked` puts them in that one), an extra axis
+    reduced, a curvilinear grid's coordinates renamed, cell areas attached,
     stamps at the middles of the time bounds, longitudes in order.  ``ds`` holds the variables the field's
     attributes name.  Returns the field, whether its stamps moved, the note on rolled longitudes (or None)
     and its grid-mapping variable (or None)."""
